@@ -1,0 +1,175 @@
+"""Validated, read-only settings in physical units, and the named profiles.
+
+Settings are frozen dataclasses validated once at construction; everything derived
+(analysis rate, FFT length, bands in Hz) is a property computed from the physical
+values. Users give seconds, Hz and per-minute rates, never raw sample counts.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field, replace
+
+from estimators.errors import ParameterError
+
+SIGNAL_KINDS = ("ppg", "ecg", "resp", "acc")
+
+
+def _check(condition: bool, message: str) -> None:
+    if not condition:
+        raise ParameterError(message)
+
+
+@dataclass(frozen=True)
+class RateSettings:
+    """How one quantity (heart rate or breathing rate) is estimated.
+
+    Parameters
+    ----------
+    quantity : ``"hr"`` or ``"rr"``.
+    band_per_min : lowest and highest plausible rate (events per minute).
+    window_s : STFT window length (Hann), seconds.
+    min_window_s : at start-up the window grows from this length to ``window_s`` so the
+        first estimate comes out after ``min_window_s`` seconds.
+    hop_s : time between estimates, seconds.
+    analysis_fs : target sampling rate after decimation (Hz); the actual rate is the
+        source rate divided by an integer.
+    grid_step_per_min : wanted frequency-grid spacing (per minute); sets the FFT length
+        (zero padding), a power of two.
+    gamma : exponent of the soft log ``|V|**gamma`` in the de-shape cepstrum.
+    deshape : apply the de-shape filter (False: plain STFT magnitude).
+    sharpen : synchrosqueeze each column before de-shape.
+    max_change_per_min_per_s : standard deviation of rate change per second allowed
+        by the tracker's jump prior (per minute per second).
+    jump_probability : per-hop probability of a jump anywhere in the band (lets the
+        tracker re-acquire after a wrong lock).
+    emission_power : sharpness of the emission likelihood ``(S / max S) ** power``.
+    lag_hops : fixed-lag smoothing of this many hops (delay grows by ``lag_hops * hop_s``).
+    confidence_halfwidth_per_min : confidence is the posterior mass within this
+        distance of the reported rate.
+    min_quality : below this quality index the estimate is withheld ('no estimate').
+    """
+
+    quantity: str = "hr"
+    band_per_min: tuple = (40.0, 200.0)
+    window_s: float = 8.0
+    min_window_s: float = 8.0
+    hop_s: float = 0.25
+    analysis_fs: float = 25.0
+    grid_step_per_min: float = 0.75
+    gamma: float = 0.2
+    deshape: bool = True
+    sharpen: bool = False
+    max_change_per_min_per_s: float = 3.0
+    jump_probability: float = 1e-3
+    emission_power: float = 2.0
+    lag_hops: int = 0
+    confidence_halfwidth_per_min: float = 4.0
+    min_quality: float = 0.25
+
+    def __post_init__(self):
+        _check(self.quantity in ("hr", "rr"), f"quantity={self.quantity!r} must be 'hr' or 'rr'")
+        lo, hi = self.band_per_min
+        _check(0 < lo < hi, f"band_per_min={self.band_per_min} must satisfy 0 < low < high")
+        _check(self.hop_s > 0, f"hop_s={self.hop_s} must be > 0")
+        _check(self.window_s > 0, f"window_s={self.window_s} must be > 0")
+        _check(0 < self.min_window_s <= self.window_s,
+               f"min_window_s={self.min_window_s} must be in (0, window_s={self.window_s}]")
+        _check(self.window_s >= 1.5 * 60.0 / lo,
+               f"window_s={self.window_s} must hold at least 1.5 periods of the lowest "
+               f"rate {lo}/min (>= {1.5 * 60.0 / lo:.2f} s)")
+        _check(self.analysis_fs > 2.0 * hi / 60.0,
+               f"analysis_fs={self.analysis_fs} must exceed twice the highest rate "
+               f"({2.0 * hi / 60.0:.2f} Hz)")
+        _check(self.grid_step_per_min > 0, f"grid_step_per_min={self.grid_step_per_min} must be > 0")
+        _check(0 < self.gamma <= 1, f"gamma={self.gamma} must be in (0, 1]")
+        _check(self.max_change_per_min_per_s > 0,
+               f"max_change_per_min_per_s={self.max_change_per_min_per_s} must be > 0")
+        _check(0 <= self.jump_probability < 1,
+               f"jump_probability={self.jump_probability} must be in [0, 1)")
+        _check(self.emission_power > 0, f"emission_power={self.emission_power} must be > 0")
+        _check(int(self.lag_hops) == self.lag_hops and self.lag_hops >= 0,
+               f"lag_hops={self.lag_hops} must be a whole number >= 0")
+        _check(self.confidence_halfwidth_per_min > 0,
+               f"confidence_halfwidth_per_min={self.confidence_halfwidth_per_min} must be > 0")
+        _check(0 <= self.min_quality <= 1, f"min_quality={self.min_quality} must be in [0, 1]")
+
+    @property
+    def band_hz(self) -> tuple:
+        return (self.band_per_min[0] / 60.0, self.band_per_min[1] / 60.0)
+
+    def decimation(self, fs: float) -> int:
+        """Integer decimation factor from the source rate ``fs`` to about ``analysis_fs``."""
+        return max(1, int(math.floor(fs / self.analysis_fs + 1e-9)))
+
+    def n_fft(self, fs_analysis: float) -> int:
+        """FFT length (power of two) giving at most ``grid_step_per_min`` spacing."""
+        needed = fs_analysis * 60.0 / self.grid_step_per_min
+        return max(16, 1 << int(math.ceil(math.log2(needed))))
+
+
+@dataclass(frozen=True)
+class Profile:
+    """A named set of settings for a kind of recording."""
+
+    name: str
+    description: str
+    hr: RateSettings = field(default_factory=RateSettings)
+    rr: RateSettings = field(default_factory=lambda: BREATHING)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    def with_hop(self, hop_s: float) -> "Profile":
+        return replace(self, hr=replace(self.hr, hop_s=hop_s), rr=replace(self.rr, hop_s=hop_s))
+
+
+BREATHING = RateSettings(
+    quantity="rr",
+    band_per_min=(4.0, 60.0),
+    window_s=32.0,
+    min_window_s=24.0,
+    analysis_fs=5.0,
+    grid_step_per_min=0.15,
+    gamma=0.2,
+    max_change_per_min_per_s=0.5,
+    confidence_halfwidth_per_min=2.0,
+)
+
+PROFILES = {
+    p.name: p
+    for p in (
+        Profile(
+            "fingertip-rest",
+            "Fingertip PPG (or ECG) at rest: heart rate 40-180 bpm, slow changes.",
+            hr=RateSettings(band_per_min=(40.0, 180.0), max_change_per_min_per_s=2.0),
+        ),
+        Profile(
+            "wrist",
+            "Wrist PPG in daily activity: heart rate 40-200 bpm, moderate changes.",
+            hr=RateSettings(band_per_min=(40.0, 200.0), max_change_per_min_per_s=3.0),
+        ),
+        Profile(
+            "chest-ecg",
+            "Chest ECG: heart rate 30-220 bpm; the beat envelope is tracked.",
+            hr=RateSettings(band_per_min=(30.0, 220.0), max_change_per_min_per_s=4.0),
+        ),
+        Profile(
+            "resp-belt",
+            "Respiration belt or impedance pneumography: breathing rate 4-60 per minute.",
+            hr=RateSettings(band_per_min=(40.0, 200.0)),
+            rr=BREATHING,
+        ),
+    )
+}
+DEFAULT_PROFILE = "wrist"
+
+
+def get_profile(name: str) -> Profile:
+    """The profile called ``name``; :class:`ParameterError` listing the names otherwise."""
+    try:
+        return PROFILES[name]
+    except KeyError:
+        raise ParameterError(
+            f"profile={name!r} is not known; profiles are: {', '.join(sorted(PROFILES))}"
+        ) from None

@@ -1,0 +1,42 @@
+"""The estimate record every stage downstream of the engine reads."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+QUANTITIES = ("hr", "rr")
+"""``hr``: heart rate (beats per minute); ``rr``: breathing rate (breaths per minute)."""
+
+
+@dataclass(frozen=True, slots=True)
+class Estimate:
+    """One estimate of one quantity from one channel (or ``"fused"``) at one hop.
+
+    Attributes
+    ----------
+    quantity : ``"hr"`` or ``"rr"``.
+    source : channel name, or ``"fused"`` when several channels combine.
+    time_s : stream time the estimate refers to (centre of the analysis window, minus
+        nothing: the window is symmetric, so its centre is the instant it describes).
+    emitted_s : stream time of the newest sample the estimate used.
+    rate_per_min : rate in events per minute; NaN when there is no estimate.
+    confidence : in [0, 1], posterior mass of the tracker near the reported rate.
+    quality : in [0, 1], the data-quality index of the window.
+    """
+
+    quantity: str
+    source: str
+    time_s: float
+    emitted_s: float
+    rate_per_min: float
+    confidence: float
+    quality: float
+
+    @property
+    def delay_s(self) -> float:
+        return self.emitted_s - self.time_s
+
+    @property
+    def has_rate(self) -> bool:
+        return not math.isnan(self.rate_per_min)

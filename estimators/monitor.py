@@ -1,0 +1,377 @@
+"""The engine: composes pre-processing, sliding STFT, de-shape, tracker and quality
+for a set of channels and a profile.
+
+``RateMonitor(channels, fs, profile).update(samples, timestamps) -> list[Estimate]``
+
+* every PPG or ECG channel gives a heart-rate estimate (``source`` = its name);
+* two or more heart-rate channels also give a ``fused`` estimate from the
+  integrity-weighted mean of their normalised de-shape spectra;
+* every respiration channel gives a breathing-rate estimate;
+* accelerometer channels are accepted as motion references (their spectra are formed
+  on the heart-rate grid and exposed in :attr:`RateMonitor.motion_spectra`).
+
+The offline twin (:func:`offline_estimates`) runs the same chain over a whole record
+with zero-phase filters, forward-backward posteriors and a Viterbi ridge.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Sequence
+
+import numpy as np
+
+from estimators import deshape as deshape_mod
+from estimators import quality as quality_mod
+from estimators import tracker as tracker_mod
+from estimators.config import PROFILES, SIGNAL_KINDS, Profile, RateSettings, get_profile
+from estimators.errors import ParameterError
+from estimators.estimate import Estimate
+from estimators.preprocess import Analysis, Preprocessor, STUCK_RUN_S, preprocess_batch
+from estimators.stft import Columns, SlidingSTFT, stft_batch
+
+FUSED = "fused"
+
+
+@dataclass(frozen=True)
+class PathGeometry:
+    """Sample-count geometry of one path, derived from the settings and ``fs``."""
+
+    decimation: int
+    fs_analysis: float
+    window: int
+    min_window: int
+    hop: float
+    n_fft: int
+
+    @classmethod
+    def of(cls, settings: RateSettings, fs: float) -> "PathGeometry":
+        m_dec = settings.decimation(fs)
+        fs_a = fs / m_dec
+        window = max(4, int(round(settings.window_s * fs_a)))
+        min_window = max(4, min(window, int(round(settings.min_window_s * fs_a))))
+        n_fft = max(settings.n_fft(fs_a), 1 << int(np.ceil(np.log2(window))))
+        return cls(m_dec, fs_a, window, min_window, settings.hop_s * fs_a, n_fft)
+
+
+@dataclass(frozen=True)
+class HopBlock:
+    """Per-hop output of a channel path: band spectra (P, F) and hop facts (P,)."""
+
+    spectra: np.ndarray
+    time_s: np.ndarray
+    emitted_s: np.ndarray
+    integrity: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.time_s)
+
+
+def column_spectra(columns: Columns, grid: deshape_mod.DeshapeGrid,
+                   settings: RateSettings) -> np.ndarray:
+    """Band spectra of the columns: de-shape (default) or plain magnitude."""
+    if len(columns) == 0:
+        return np.empty((0, len(grid.freqs_hz)))
+    if settings.sharpen:
+        magnitude = deshape_mod.squeeze(columns.spectra, columns.spectra_dw, grid.n_fft)
+    else:
+        magnitude = np.abs(columns.spectra)
+    if settings.deshape:
+        return deshape_mod.deshape(magnitude, grid, settings.gamma)
+    return deshape_mod.plain(magnitude, grid)
+
+
+def window_integrity(columns: Columns, cum_nonfinite, cum_stuck, decimation: int) -> np.ndarray:
+    """Integrity per column from running counts indexed by analysis-sample count."""
+    if len(columns) == 0:
+        return np.empty(0)
+    first, last = columns.first_count, columns.last_count
+    raw = (last - first) * decimation
+    nf = cum_nonfinite(last) - cum_nonfinite(first)
+    st = cum_stuck(last) - cum_stuck(first)
+    return quality_mod.integrity(nf / raw, st / raw)
+
+
+class ChannelPath:
+    """One channel, one quantity: pre-process, sliding STFT, band spectra."""
+
+    def __init__(self, name: str, kind: str, settings: RateSettings, fs: float,
+                 chain_kind: str | None = None):
+        self.name, self.kind, self.settings = name, kind, settings
+        self.geometry = g = PathGeometry.of(settings, fs)
+        self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation)
+        self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen)
+        self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.band_hz)
+        self._cum = np.zeros((0, 2))
+
+    def reset(self) -> None:
+        self.pre.reset()
+        self.stft.reset()
+        self._cum = np.zeros((0, 2))
+
+    def update(self, x: np.ndarray, t: np.ndarray) -> HopBlock:
+        analysis = self.pre.update(x, t)
+        before = self.stft.count
+        columns = self.stft.update(analysis.values, analysis.timestamps)
+        cum = np.concatenate((self._cum, np.column_stack(
+            (analysis.cum_nonfinite, analysis.cum_stuck))))
+        offset = before - len(self._cum)  # count of the sample before cum[0]
+
+        def lookup(col):
+            def at(count):
+                idx = count - 1 - offset
+                return np.where(count > 0, cum[np.maximum(idx, 0), col], 0.0)
+            return at
+
+        integrity = window_integrity(columns, lookup(0), lookup(1), self.geometry.decimation)
+        keep = min(len(cum), self.geometry.window + 1)
+        self._cum = cum[len(cum) - keep:].copy()
+        return HopBlock(column_spectra(columns, self.grid, self.settings), columns.time_s,
+                        columns.emitted_s, integrity)
+
+    def batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> HopBlock:
+        """The whole record in one call (causal twin, or zero-phase for offline)."""
+        g = self.geometry
+        analysis: Analysis = preprocess_batch(x, t, self.pre.chain, g.decimation,
+                                              self.pre.min_run, zero_phase)
+        columns = stft_batch(analysis.values, analysis.timestamps, g.window, g.min_window,
+                             g.hop, g.n_fft, self.settings.sharpen)
+
+        def lookup(arr):
+            return lambda count: np.where(count > 0, arr[np.maximum(count - 1, 0)], 0.0)
+
+        integrity = window_integrity(columns, lookup(analysis.cum_nonfinite),
+                                     lookup(analysis.cum_stuck), g.decimation)
+        return HopBlock(column_spectra(columns, self.grid, self.settings), columns.time_s,
+                        columns.emitted_s, integrity)
+
+
+def fuse_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
+    """Integrity-weighted mean of peak-normalised spectra of aligned hop blocks."""
+    weights = np.stack([b.integrity for b in blocks])  # (C, P)
+    spectra = []
+    for b in blocks:
+        peak = b.spectra.max(axis=1, keepdims=True) if len(b) else np.ones((0, 1))
+        spectra.append(np.where(peak > 0, b.spectra / np.where(peak > 0, peak, 1.0), 0.0))
+    spectra = np.stack(spectra)  # (C, P, F)
+    total = weights.sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        fused = np.where(total[:, None] > 0,
+                         (weights[:, :, None] * spectra).sum(axis=0)
+                         / np.where(total > 0, total, 1.0)[:, None],
+                         spectra.mean(axis=0))
+    ref = blocks[0]
+    return HopBlock(fused, ref.time_s, np.max([b.emitted_s for b in blocks], axis=0),
+                    weights.max(axis=0))
+
+
+def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.ndarray,
+                         confidence: np.ndarray, rates_grid: np.ndarray,
+                         settings: RateSettings, emitted_s: np.ndarray) -> list[Estimate]:
+    """Estimate records from tracker output aligned with ``block`` (same hops)."""
+    step = rates_grid[1] - rates_grid[0]
+    halfwidth = settings.confidence_halfwidth_per_min / step
+    centre = (rate - rates_grid[0]) / step
+    conc = quality_mod.concentration(block.spectra, centre, halfwidth)
+    quality = quality_mod.quality_index(block.integrity, conc)
+    withheld = (quality < settings.min_quality) | ~np.isfinite(rate)
+    shown = np.where(withheld, np.nan, rate)
+    return [Estimate(quantity, source, float(t), float(e), float(r), float(c), float(q))
+            for t, e, r, c, q in zip(block.time_s, emitted_s, shown, confidence, quality)]
+
+
+class _Output:
+    """One reported (quantity, source): a tracker plus the lag history of hops."""
+
+    def __init__(self, quantity: str, source: str, grid_rates: np.ndarray,
+                 settings: RateSettings):
+        self.quantity, self.source, self.settings = quantity, source, settings
+        self.rates = grid_rates
+        step = grid_rates[1] - grid_rates[0]
+        params = tracker_mod.make_params(step, settings.hop_s, settings.max_change_per_min_per_s,
+                                         settings.jump_probability,
+                                         settings.confidence_halfwidth_per_min,
+                                         settings.lag_hops)
+        self.tracker = tracker_mod.RidgeTracker(grid_rates, params, settings.emission_power)
+        self._held: list[HopBlock] = []
+
+    def reset(self) -> None:
+        self.tracker.reset()
+        self._held = []
+
+    def update(self, block: HopBlock) -> list[Estimate]:
+        if len(block) == 0:
+            return []
+        rate, conf, index = self.tracker.update(block.spectra, block.integrity)
+        lag = self.settings.lag_hops
+        if lag == 0:
+            return estimates_from_track(self.quantity, self.source, block, rate, conf,
+                                        self.rates, self.settings, block.emitted_s)
+        # Hops the smoothed outputs refer to: held from earlier updates plus this block.
+        self._held.append(block)
+        spectra = np.concatenate([b.spectra for b in self._held])
+        times = np.concatenate([b.time_s for b in self._held])
+        emitted = np.concatenate([b.emitted_s for b in self._held])
+        integ = np.concatenate([b.integrity for b in self._held])
+        first_index = self.tracker.hops_seen - len(times)
+        pos = index - first_index
+        referred = HopBlock(spectra[pos], times[pos], emitted[pos], integ[pos])
+        newest = emitted[pos + lag]
+        keep = lag + 1
+        self._held = [HopBlock(spectra[-keep:], times[-keep:], emitted[-keep:], integ[-keep:])]
+        return estimates_from_track(self.quantity, self.source, referred, rate, conf,
+                                    self.rates, self.settings, newest)
+
+
+def _normalise_channels(channels) -> list[tuple[str, str]]:
+    out = []
+    for ch in channels:
+        name, kind = (ch.name, ch.kind) if hasattr(ch, "name") else (ch[0], ch[1])
+        if kind not in SIGNAL_KINDS:
+            raise ParameterError(
+                f"channel {name!r}: kind={kind!r} must be one of {', '.join(SIGNAL_KINDS)}")
+        out.append((str(name), kind))
+    if len({n for n, _ in out}) != len(out):
+        raise ParameterError(f"channel names must be unique, got {[n for n, _ in out]}")
+    if not any(k in ("ppg", "ecg", "resp") for _, k in out):
+        raise ParameterError("at least one ppg, ecg or resp channel is needed "
+                             f"(got {', '.join(f'{n}={k}' for n, k in out) or 'none'})")
+    return out
+
+
+class RateMonitor:
+    """Live heart-rate and breathing-rate estimation for a set of channels.
+
+    Parameters
+    ----------
+    channels : sequence of ``(name, kind)`` pairs or objects with ``name`` and
+        ``kind``; kind is one of ``ppg``, ``ecg``, ``resp``, ``acc``.
+    fs : sampling rate of all channels (Hz).
+    profile : a :class:`~estimators.config.Profile` or its name.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> fs = 125.0
+    >>> t = np.arange(int(20 * fs)) / fs
+    >>> ppg = np.sin(2 * np.pi * 1.2 * t) + 0.5 * np.sin(2 * np.pi * 2.4 * t)
+    >>> monitor = RateMonitor([("finger", "ppg")], fs, "fingertip-rest")
+    >>> estimates = monitor.update(ppg[:, None], t)
+    >>> round(estimates[-1].rate_per_min)
+    72
+    """
+
+    def __init__(self, channels, fs: float, profile="wrist"):
+        if not (np.isfinite(fs) and fs > 0):
+            raise ParameterError(f"fs={fs} must be a finite rate > 0 Hz")
+        self.profile: Profile = get_profile(profile) if isinstance(profile, str) else profile
+        self.channels = _normalise_channels(channels)
+        self.fs = float(fs)
+        hr, rr = self.profile.hr, self.profile.rr
+        self.paths: dict[tuple[str, str], ChannelPath] = {}
+        self.motion_paths: dict[str, ChannelPath] = {}
+        for name, kind in self.channels:
+            if kind in ("ppg", "ecg"):
+                self.paths[("hr", name)] = ChannelPath(name, kind, hr, fs)
+            elif kind == "resp":
+                self.paths[("rr", name)] = ChannelPath(name, kind, rr, fs)
+            else:
+                self.motion_paths[name] = ChannelPath(name, kind, hr, fs, chain_kind="acc")
+        self.outputs: dict[tuple[str, str], _Output] = {}
+        for (quantity, name), path in self.paths.items():
+            self.outputs[(quantity, name)] = _Output(quantity, name, path.grid.rates_per_min,
+                                                     path.settings)
+        hr_paths = [k for k in self.paths if k[0] == "hr"]
+        if len(hr_paths) >= 2:
+            grid = self.paths[hr_paths[0]].grid.rates_per_min
+            self.outputs[("hr", FUSED)] = _Output("hr", FUSED, grid, hr)
+        self._index = {name: i for i, (name, _) in enumerate(self.channels)}
+        self.last_blocks: dict[tuple[str, str], HopBlock] = {}
+        self.motion_spectra: dict[str, HopBlock] = {}
+
+    def grid(self, quantity: str) -> np.ndarray | None:
+        """Rates (per minute) of the spectra's bins for ``quantity``, or None."""
+        for (q, _), path in self.paths.items():
+            if q == quantity:
+                return path.grid.rates_per_min
+        return None
+
+    def reset(self) -> None:
+        for path in list(self.paths.values()) + list(self.motion_paths.values()):
+            path.reset()
+        for out in self.outputs.values():
+            out.reset()
+
+    def _check(self, samples, timestamps):
+        samples = np.asarray(samples, dtype=np.float64)
+        timestamps = np.asarray(timestamps, dtype=np.float64)
+        if samples.ndim == 1 and len(self.channels) == 1:
+            samples = samples[:, None]
+        if samples.ndim != 2 or samples.shape[1] != len(self.channels):
+            raise ParameterError(
+                f"samples.shape={samples.shape} must be (n, {len(self.channels)})")
+        if timestamps.shape != (samples.shape[0],):
+            raise ParameterError(
+                f"timestamps.shape={timestamps.shape} must be ({samples.shape[0]},)")
+        return samples, timestamps
+
+    def update(self, samples, timestamps) -> list[Estimate]:
+        """Feed a chunk ``(n, channels)`` with timestamps ``(n,)``; return the estimates
+        of every hop it completes, ordered by hop, then by quantity and source."""
+        samples, timestamps = self._check(samples, timestamps)
+        blocks = {}
+        for key, path in self.paths.items():
+            blocks[key] = path.update(samples[:, self._index[key[1]]], timestamps)
+        for name, path in self.motion_paths.items():
+            self.motion_spectra[name] = path.update(samples[:, self._index[name]], timestamps)
+        hr_blocks = [b for (q, _), b in blocks.items() if q == "hr"]
+        if ("hr", FUSED) in self.outputs:
+            blocks[("hr", FUSED)] = fuse_blocks(hr_blocks)
+        self.last_blocks = blocks
+        estimates = []
+        for key, out in self.outputs.items():
+            estimates.extend(out.update(blocks[key]))
+        estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
+        return estimates
+
+
+def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist") -> list[Estimate]:
+    """The non-causal twin over a whole record.
+
+    Zero-phase filters, the same STFT columns (each describes the centre of its
+    window), forward-backward posteriors for the confidence and a Viterbi ridge for the
+    rate. Every estimate used the whole record, so ``emitted_s`` is the time of the last
+    sample.
+    """
+    monitor = RateMonitor(channels, fs, profile)
+    samples, timestamps = monitor._check(samples, timestamps)
+    if len(timestamps) == 0:
+        return []
+    end = float(timestamps[-1])
+    blocks = {key: path.batch(samples[:, monitor._index[key[1]]], timestamps, True)
+              for key, path in monitor.paths.items()}
+    hr_blocks = [b for (q, _), b in blocks.items() if q == "hr"]
+    if ("hr", FUSED) in monitor.outputs:
+        blocks[("hr", FUSED)] = fuse_blocks(hr_blocks)
+    estimates = []
+    for key, out in monitor.outputs.items():
+        block = blocks[key]
+        if len(block) == 0:
+            continue
+        params = out.tracker.params
+        emissions = tracker_mod.emissions_from_spectra(block.spectra, out.tracker.power)
+        path = tracker_mod.viterbi_path(emissions, block.integrity, params)
+        post = tracker_mod.smooth_all(emissions, block.integrity, params)
+        idx = np.arange(post.shape[1])
+        near = np.abs(idx[None, :] - path[:, None]) <= params.halfwidth_bins
+        mass = np.where(near, post, 0.0)
+        conf = np.clip(mass.sum(axis=1), 0.0, 1.0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rate = np.where(conf > 0, (mass * out.rates).sum(axis=1) / conf, out.rates[path])
+        estimates.extend(estimates_from_track(key[0], key[1], block, rate, conf, out.rates,
+                                              out.settings, np.full(len(block), end)))
+    estimates.sort(key=lambda e: (e.time_s, e.quantity, e.source))
+    return estimates
+
+
+__all__ = ["RateMonitor", "offline_estimates", "PROFILES", "FUSED", "STUCK_RUN_S"]

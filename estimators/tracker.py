@@ -1,0 +1,209 @@
+"""Causal ridge tracker (hidden-Markov forward filter) and its offline Viterbi twin.
+
+Model
+-----
+The hidden state is the frequency bin ``f`` of the fundamental. Between hops the rate
+moves by a Gaussian step of standard deviation ``sigma = max_change * hop_s`` (per
+minute), truncated at 3 sigma, and with probability ``jump_probability`` it jumps
+anywhere in the band (re-acquisition after a wrong lock). The emission of a hop is
+
+.. math:: e_p(f) = \\epsilon + (S_p(f) / \\max_f S_p)^{\\beta}
+
+from the de-shape spectrum ``S_p`` (``epsilon = 1e-2`` keeps every bin reachable),
+tempered by a per-hop weight ``w_p`` in [0, 1] from the signal-integrity part of the
+quality index: ``e_p ** w_p``, so a flat or non-finite window is uninformative and the
+posterior coasts and spreads instead of locking onto garbage.
+
+Forward filter (Rabiner, "A tutorial on hidden Markov models...", Proc. IEEE 1989):
+``alpha_p = normalise(e_p * (T alpha_{p-1}))``. The reported rate is the posterior mean
+within ``confidence_halfwidth`` of the posterior mode; the **confidence** is the posterior
+mass in that interval, so it falls when the posterior splits (e.g. between the pulse
+and a double or half of it, or between pulse and cadence).
+
+Fixed-lag smoothing of ``L`` hops runs the backward recursion over the newest ``L + 1``
+hops; the estimate then refers to hop ``p - L`` and its delay grows by ``L * hop_s``.
+
+Offline, the Viterbi algorithm finds the globally optimal path through the same
+emissions and transitions (log domain).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from estimators import _kernels
+from estimators.errors import ParameterError
+
+EMISSION_FLOOR = 1e-2
+
+
+def transition_kernel(sigma_bins: float) -> np.ndarray:
+    """Normalised Gaussian step kernel over ``+-ceil(3 sigma)`` bins (at least +-1)."""
+    if sigma_bins <= 0:
+        raise ParameterError(f"sigma_bins={sigma_bins} must be > 0")
+    half = max(1, int(np.ceil(3.0 * sigma_bins)))
+    d = np.arange(-half, half + 1)
+    g = np.exp(-0.5 * (d / sigma_bins) ** 2)
+    return g / g.sum()
+
+
+def emissions_from_spectra(spectra: np.ndarray, power: float) -> np.ndarray:
+    """``epsilon + (S / max S) ** power`` per hop; all-zero hops give a flat emission."""
+    spectra = np.atleast_2d(spectra)
+    peak = spectra.max(axis=1, keepdims=True)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rel = np.where(peak > 0, spectra / np.where(peak > 0, peak, 1.0), 0.0)
+    rel = np.nan_to_num(rel, nan=0.0, posinf=0.0, neginf=0.0)
+    return EMISSION_FLOOR + rel ** power
+
+
+@dataclass(frozen=True)
+class TrackerParams:
+    transition: np.ndarray
+    jump_probability: float
+    halfwidth_bins: float
+    lag_hops: int = 0
+
+
+def make_params(grid_step_per_min: float, hop_s: float, max_change_per_min_per_s: float,
+                jump_probability: float, confidence_halfwidth_per_min: float,
+                lag_hops: int = 0) -> TrackerParams:
+    sigma = max_change_per_min_per_s * hop_s / grid_step_per_min
+    return TrackerParams(transition_kernel(sigma), float(jump_probability),
+                         confidence_halfwidth_per_min / grid_step_per_min, int(lag_hops))
+
+
+def initial_posterior(n_bins: int) -> np.ndarray:
+    """Uniform over the band: nothing is known before the first hop."""
+    return np.full(n_bins, 1.0 / n_bins)
+
+
+def read_posterior(posterior: np.ndarray, rates: np.ndarray, halfwidth_bins: float):
+    """Rate (posterior mean near the mode) and confidence (mass near the mode) per hop.
+
+    ``posterior`` (P, F) -> ``(rate (P,), confidence (P,))``.
+    """
+    posterior = np.atleast_2d(posterior)
+    n_hops, n_bins = posterior.shape
+    mode = np.argmax(posterior, axis=1)
+    idx = np.arange(n_bins)
+    near = np.abs(idx[None, :] - mode[:, None]) <= halfwidth_bins
+    mass = np.where(near, posterior, 0.0)
+    confidence = mass.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rate = (mass * rates[None, :]).sum(axis=1) / confidence
+    return rate, np.clip(confidence, 0.0, 1.0)
+
+
+def forward_step(posterior: np.ndarray, emissions: np.ndarray, weights: np.ndarray,
+                 params: TrackerParams) -> tuple[np.ndarray, np.ndarray]:
+    """``step(state, inputs, params) -> (state, output)`` for one or more hops.
+
+    Parameters
+    ----------
+    posterior : (F,) posterior before these hops (not modified).
+    emissions : (P, F) from :func:`emissions_from_spectra`.
+    weights : (P,) emission tempering in [0, 1].
+
+    Returns
+    -------
+    (new posterior (F,), posteriors after each hop (P, F)).
+    """
+    emissions = np.ascontiguousarray(emissions, dtype=np.float64)
+    weights = np.ascontiguousarray(np.clip(weights, 0.0, 1.0), dtype=np.float64)
+    alpha = np.array(posterior, dtype=np.float64, copy=True)
+    out = np.empty_like(emissions)
+    _kernels.forward_filter(alpha, emissions, weights, params.transition,
+                            params.jump_probability, out)
+    return alpha, out
+
+
+def backward_betas(emissions: np.ndarray, weights: np.ndarray, params: TrackerParams) -> np.ndarray:
+    """Backward variables (P, F) of the forward-backward algorithm."""
+    emissions = np.ascontiguousarray(emissions, dtype=np.float64)
+    out = np.empty_like(emissions)
+    _kernels.backward_pass(emissions,
+                           np.ascontiguousarray(np.clip(weights, 0, 1), dtype=np.float64),
+                           params.transition, params.jump_probability, out)
+    return out
+
+
+def smooth_oldest(alphas: np.ndarray, emissions: np.ndarray, weights: np.ndarray,
+                  params: TrackerParams) -> np.ndarray:
+    """Smoothed posterior of the oldest of ``L + 1`` held hops (fixed-lag smoothing)."""
+    post = alphas[0] * backward_betas(emissions, weights, params)[0]
+    return post / post.sum()
+
+
+def smooth_all(emissions: np.ndarray, weights: np.ndarray, params: TrackerParams) -> np.ndarray:
+    """Posterior marginals of every hop given the whole record (forward-backward)."""
+    n_bins = emissions.shape[1]
+    _, alphas = forward_step(initial_posterior(n_bins), emissions, weights, params)
+    post = alphas * backward_betas(emissions, weights, params)
+    return post / post.sum(axis=1, keepdims=True)
+
+
+def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerParams) -> np.ndarray:
+    """Globally optimal bin path (P,) through tempered emissions (offline twin)."""
+    emissions = np.atleast_2d(emissions)
+    n_hops, n_bins = emissions.shape
+    if n_hops == 0:
+        return np.empty(0, dtype=np.int64)
+    log_e = np.ascontiguousarray(np.log(emissions) * np.clip(weights, 0, 1)[:, None])
+    mix = params.jump_probability
+    log_t = np.log((1.0 - mix) * params.transition + mix / n_bins)
+    log_jump = np.log(mix / n_bins) if mix > 0 else -np.inf
+    path = np.empty(n_hops, dtype=np.int64)
+    _kernels.viterbi(log_e, log_t, float(log_jump), path)
+    return path
+
+
+class RidgeTracker:
+    """Causal tracker owning its posterior and the fixed-lag history.
+
+    ``update(spectra, weights) -> (rate, confidence, lag_index)`` for the hops given:
+    ``lag_index[i]`` is the index (into all hops seen so far) of the hop that output
+    ``i`` refers to; with no lag it is the hop itself. Outputs start once ``L`` hops
+    have been seen.
+    """
+
+    def __init__(self, rates_per_min: np.ndarray, params: TrackerParams, emission_power: float):
+        self.rates = np.asarray(rates_per_min, dtype=np.float64)
+        self.params, self.power = params, emission_power
+        self.reset()
+
+    def reset(self) -> None:
+        self.posterior = initial_posterior(len(self.rates))
+        self.hops_seen = 0
+        self._hist_alpha: list[np.ndarray] = []
+        self._hist_em: list[np.ndarray] = []
+        self._hist_w: list[float] = []
+
+    def update(self, spectra: np.ndarray, weights: np.ndarray):
+        emissions = emissions_from_spectra(spectra, self.power)
+        self.posterior, posts = forward_step(self.posterior, emissions, weights, self.params)
+        lag = self.params.lag_hops
+        first_hop = self.hops_seen
+        self.hops_seen += len(posts)
+        if lag == 0:
+            rate, conf = read_posterior(posts, self.rates, self.params.halfwidth_bins)
+            return rate, conf, np.arange(first_hop, self.hops_seen)
+        smoothed, index = [], []
+        for i in range(len(posts)):
+            self._hist_alpha.append(posts[i])
+            self._hist_em.append(emissions[i])
+            self._hist_w.append(float(np.clip(weights[i], 0, 1)))
+            if len(self._hist_alpha) > lag + 1:
+                del self._hist_alpha[0], self._hist_em[0], self._hist_w[0]
+            if len(self._hist_alpha) == lag + 1:
+                smoothed.append(smooth_oldest(np.array(self._hist_alpha),
+                                              np.array(self._hist_em),
+                                              np.array(self._hist_w), self.params))
+                index.append(first_hop + i - lag)
+        if not smoothed:
+            e = np.empty(0)
+            return e, e, np.empty(0, dtype=np.int64)
+        rate, conf = read_posterior(np.array(smoothed), self.rates, self.params.halfwidth_bins)
+        return rate, conf, np.array(index, dtype=np.int64)

@@ -62,23 +62,29 @@ class HopBlock:
     time_s: np.ndarray
     emitted_s: np.ndarray
     integrity: np.ndarray
+    magnitude: np.ndarray | None = None
+    """Band of the plain STFT magnitude (P, F): where the rate is read off, near the
+    ridge the tracker picked (its peak is not pulled by the de-shape mask's slope)."""
 
     def __len__(self) -> int:
         return len(self.time_s)
 
 
 def column_spectra(columns: Columns, grid: deshape_mod.DeshapeGrid,
-                   settings: RateSettings) -> np.ndarray:
-    """Band spectra of the columns: de-shape (default) or plain magnitude."""
+                   settings: RateSettings) -> tuple[np.ndarray, np.ndarray]:
+    """Band spectra of the columns (de-shape by default, else plain magnitude) and the
+    band of the plain magnitude."""
     if len(columns) == 0:
-        return np.empty((0, len(grid.freqs_hz)))
+        empty = np.empty((0, len(grid.freqs_hz)))
+        return empty, empty
     if settings.sharpen:
         magnitude = deshape_mod.squeeze(columns.spectra, columns.spectra_dw, grid.n_fft)
     else:
         magnitude = np.abs(columns.spectra)
+    band = deshape_mod.plain(magnitude, grid)
     if settings.deshape:
-        return deshape_mod.deshape(magnitude, grid, settings.gamma)
-    return deshape_mod.plain(magnitude, grid)
+        return deshape_mod.deshape(magnitude, grid, settings.gamma), band
+    return band, band
 
 
 def window_integrity(columns: Columns, cum_nonfinite, cum_stuck, decimation: int) -> np.ndarray:
@@ -126,8 +132,8 @@ class ChannelPath:
         integrity = window_integrity(columns, lookup(0), lookup(1), self.geometry.decimation)
         keep = min(len(cum), self.geometry.window + 1)
         self._cum = cum[len(cum) - keep:].copy()
-        return HopBlock(column_spectra(columns, self.grid, self.settings), columns.time_s,
-                        columns.emitted_s, integrity)
+        spectra, magnitude = column_spectra(columns, self.grid, self.settings)
+        return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude)
 
     def batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> HopBlock:
         """The whole record in one call (causal twin, or zero-phase for offline)."""
@@ -142,27 +148,36 @@ class ChannelPath:
 
         integrity = window_integrity(columns, lookup(analysis.cum_nonfinite),
                                      lookup(analysis.cum_stuck), g.decimation)
-        return HopBlock(column_spectra(columns, self.grid, self.settings), columns.time_s,
-                        columns.emitted_s, integrity)
+        spectra, magnitude = column_spectra(columns, self.grid, self.settings)
+        return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude)
+
+
+def _peak_normalised(spectra: np.ndarray) -> np.ndarray:
+    if len(spectra) == 0:
+        return spectra
+    peak = spectra.max(axis=1, keepdims=True)
+    return np.where(peak > 0, spectra / np.where(peak > 0, peak, 1.0), 0.0)
 
 
 def fuse_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
     """Integrity-weighted mean of peak-normalised spectra of aligned hop blocks."""
     weights = np.stack([b.integrity for b in blocks])  # (C, P)
-    spectra = []
-    for b in blocks:
-        peak = b.spectra.max(axis=1, keepdims=True) if len(b) else np.ones((0, 1))
-        spectra.append(np.where(peak > 0, b.spectra / np.where(peak > 0, peak, 1.0), 0.0))
-    spectra = np.stack(spectra)  # (C, P, F)
     total = weights.sum(axis=0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        fused = np.where(total[:, None] > 0,
-                         (weights[:, :, None] * spectra).sum(axis=0)
-                         / np.where(total > 0, total, 1.0)[:, None],
-                         spectra.mean(axis=0))
-    ref = blocks[0]
-    return HopBlock(fused, ref.time_s, np.max([b.emitted_s for b in blocks], axis=0),
-                    weights.max(axis=0))
+
+    def fuse(arrays):
+        stacked = np.stack([_peak_normalised(a) for a in arrays])  # (C, P, F)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(total[:, None] > 0,
+                            (weights[:, :, None] * stacked).sum(axis=0)
+                            / np.where(total > 0, total, 1.0)[:, None],
+                            stacked.mean(axis=0))
+
+    magnitude = None
+    if all(b.magnitude is not None for b in blocks):
+        magnitude = fuse([b.magnitude for b in blocks])
+    return HopBlock(fuse([b.spectra for b in blocks]), blocks[0].time_s,
+                    np.max([b.emitted_s for b in blocks], axis=0), weights.max(axis=0),
+                    magnitude)
 
 
 def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.ndarray,
@@ -202,25 +217,36 @@ class _Output:
     def update(self, block: HopBlock) -> list[Estimate]:
         if len(block) == 0:
             return []
-        rate, conf, index = self.tracker.update(block.spectra, block.integrity)
+        rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         lag = self.settings.lag_hops
         if lag == 0:
             return estimates_from_track(self.quantity, self.source, block, rate, conf,
                                         self.rates, self.settings, block.emitted_s)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
         self._held.append(block)
-        spectra = np.concatenate([b.spectra for b in self._held])
-        times = np.concatenate([b.time_s for b in self._held])
-        emitted = np.concatenate([b.emitted_s for b in self._held])
-        integ = np.concatenate([b.integrity for b in self._held])
-        first_index = self.tracker.hops_seen - len(times)
+        held = concat_blocks(self._held)
+        first_index = self.tracker.hops_seen - len(held)
         pos = index - first_index
-        referred = HopBlock(spectra[pos], times[pos], emitted[pos], integ[pos])
-        newest = emitted[pos + lag]
-        keep = lag + 1
-        self._held = [HopBlock(spectra[-keep:], times[-keep:], emitted[-keep:], integ[-keep:])]
+        referred = take_hops(held, pos)
+        newest = held.emitted_s[pos + lag]
+        self._held = [take_hops(held, np.arange(max(0, len(held) - lag - 1), len(held)))]
         return estimates_from_track(self.quantity, self.source, referred, rate, conf,
                                     self.rates, self.settings, newest)
+
+
+def concat_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
+    mags = [b.magnitude for b in blocks]
+    return HopBlock(np.concatenate([b.spectra for b in blocks]),
+                    np.concatenate([b.time_s for b in blocks]),
+                    np.concatenate([b.emitted_s for b in blocks]),
+                    np.concatenate([b.integrity for b in blocks]),
+                    None if any(m is None for m in mags) else np.concatenate(mags))
+
+
+def take_hops(block: HopBlock, index: np.ndarray) -> HopBlock:
+    return HopBlock(block.spectra[index], block.time_s[index], block.emitted_s[index],
+                    block.integrity[index],
+                    None if block.magnitude is None else block.magnitude[index])
 
 
 def _normalise_channels(channels) -> list[tuple[str, str]]:
@@ -366,8 +392,9 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
         near = np.abs(idx[None, :] - path[:, None]) <= params.halfwidth_bins
         mass = np.where(near, post, 0.0)
         conf = np.clip(mass.sum(axis=1), 0.0, 1.0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rate = np.where(conf > 0, (mass * out.rates).sum(axis=1) / conf, out.rates[path])
+        # Rate at the spectral peak near the Viterbi ridge (as live reads it near the mode).
+        readout = block.spectra if block.magnitude is None else block.magnitude
+        rate = tracker_mod.refine_peak(readout, path, params.halfwidth_bins, out.rates)
         estimates.extend(estimates_from_track(key[0], key[1], block, rate, conf, out.rates,
                                               out.settings, np.full(len(block), end)))
     estimates.sort(key=lambda e: (e.time_s, e.quantity, e.source))

@@ -80,10 +80,15 @@ def initial_posterior(n_bins: int) -> np.ndarray:
     return np.full(n_bins, 1.0 / n_bins)
 
 
-def read_posterior(posterior: np.ndarray, rates: np.ndarray, halfwidth_bins: float):
-    """Rate (posterior mean near the mode) and confidence (mass near the mode) per hop.
+def read_posterior(posterior: np.ndarray, rates: np.ndarray, halfwidth_bins: float,
+                   spectra: np.ndarray | None = None):
+    """Rate and confidence per hop from posteriors (P, F).
 
-    ``posterior`` (P, F) -> ``(rate (P,), confidence (P,))``.
+    The posterior picks the ridge: its mode, and the **confidence** is the posterior mass
+    within ``halfwidth_bins`` of the mode. The rate is read where the evidence is
+    sharpest: with ``spectra`` given, the highest spectral peak within the half-width of
+    the mode, refined by parabolic interpolation (no lag from the prior); without, the
+    posterior mean within the half-width.
     """
     posterior = np.atleast_2d(posterior)
     n_hops, n_bins = posterior.shape
@@ -91,10 +96,35 @@ def read_posterior(posterior: np.ndarray, rates: np.ndarray, halfwidth_bins: flo
     idx = np.arange(n_bins)
     near = np.abs(idx[None, :] - mode[:, None]) <= halfwidth_bins
     mass = np.where(near, posterior, 0.0)
-    confidence = mass.sum(axis=1)
+    confidence = np.clip(mass.sum(axis=1), 0.0, 1.0)
+    if spectra is None:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rate = (mass * rates[None, :]).sum(axis=1) / mass.sum(axis=1)
+        return rate, confidence
+    rate = refine_peak(np.atleast_2d(spectra), mode, halfwidth_bins, rates)
+    return rate, confidence
+
+
+def refine_peak(spectra: np.ndarray, centre: np.ndarray, halfwidth_bins: float,
+                rates: np.ndarray) -> np.ndarray:
+    """Rate of the highest spectral peak within ``halfwidth_bins`` of ``centre`` (P,)
+    bins, refined by parabolic interpolation; the centre's rate where the spectrum is
+    empty there."""
+    n_hops, n_bins = spectra.shape
+    idx = np.arange(n_bins)
+    near = np.abs(idx[None, :] - centre[:, None]) <= halfwidth_bins
+    peak = np.argmax(np.where(near, spectra, -np.inf), axis=1)
+    rows = np.arange(n_hops)
+    left = spectra[rows, np.maximum(peak - 1, 0)]
+    mid = spectra[rows, peak]
+    right = spectra[rows, np.minimum(peak + 1, n_bins - 1)]
+    denom = left - 2.0 * mid + right
     with np.errstate(invalid="ignore", divide="ignore"):
-        rate = (mass * rates[None, :]).sum(axis=1) / confidence
-    return rate, np.clip(confidence, 0.0, 1.0)
+        delta = np.where((denom < 0) & (peak > 0) & (peak < n_bins - 1),
+                         0.5 * (left - right) / denom, 0.0)
+    delta = np.clip(delta, -0.5, 0.5)
+    step = rates[1] - rates[0] if len(rates) > 1 else 0.0
+    return np.where(mid > 0, rates[peak] + delta * step, rates[centre])
 
 
 def forward_step(posterior: np.ndarray, emissions: np.ndarray, weights: np.ndarray,
@@ -180,30 +210,37 @@ class RidgeTracker:
         self._hist_alpha: list[np.ndarray] = []
         self._hist_em: list[np.ndarray] = []
         self._hist_w: list[float] = []
+        self._hist_sp: list[np.ndarray] = []
 
-    def update(self, spectra: np.ndarray, weights: np.ndarray):
+    def update(self, spectra: np.ndarray, weights: np.ndarray, readout: np.ndarray | None = None):
+        """Track the hops of ``spectra`` (P, F) with emission weights (P,); the rate is
+        read off ``readout`` (P, F) near the posterior mode (default: ``spectra``)."""
+        readout = spectra if readout is None else readout
         emissions = emissions_from_spectra(spectra, self.power)
         self.posterior, posts = forward_step(self.posterior, emissions, weights, self.params)
         lag = self.params.lag_hops
         first_hop = self.hops_seen
         self.hops_seen += len(posts)
         if lag == 0:
-            rate, conf = read_posterior(posts, self.rates, self.params.halfwidth_bins)
+            rate, conf = read_posterior(posts, self.rates, self.params.halfwidth_bins, readout)
             return rate, conf, np.arange(first_hop, self.hops_seen)
-        smoothed, index = [], []
+        smoothed, index, referred = [], [], []
         for i in range(len(posts)):
             self._hist_alpha.append(posts[i])
             self._hist_em.append(emissions[i])
+            self._hist_sp.append(np.atleast_2d(readout)[i])
             self._hist_w.append(float(np.clip(weights[i], 0, 1)))
             if len(self._hist_alpha) > lag + 1:
-                del self._hist_alpha[0], self._hist_em[0], self._hist_w[0]
+                del self._hist_alpha[0], self._hist_em[0], self._hist_w[0], self._hist_sp[0]
             if len(self._hist_alpha) == lag + 1:
                 smoothed.append(smooth_oldest(np.array(self._hist_alpha),
                                               np.array(self._hist_em),
                                               np.array(self._hist_w), self.params))
                 index.append(first_hop + i - lag)
+                referred.append(self._hist_sp[0])
         if not smoothed:
             e = np.empty(0)
             return e, e, np.empty(0, dtype=np.int64)
-        rate, conf = read_posterior(np.array(smoothed), self.rates, self.params.halfwidth_bins)
+        rate, conf = read_posterior(np.array(smoothed), self.rates, self.params.halfwidth_bins,
+                                    np.array(referred))
         return rate, conf, np.array(index, dtype=np.int64)

@@ -17,6 +17,7 @@ statistics, never turned into zeros.
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -353,7 +354,8 @@ class Agreement:
     bias : mean of ``estimate - reference``.
     sd : sample standard deviation (ddof = 1) of ``estimate - reference``.
     loa_lower, loa_upper : 95 % limits of agreement, ``bias -/+ 1.96 sd``.
-    pearson_r : Pearson correlation; NaN with fewer than 3 pairs or a constant side.
+    pearson_r : Pearson correlation (``scipy.stats.pearsonr``); NaN with fewer than 3
+        pairs or a side constant to within floating-point precision.
     within_tolerance : fraction of pairs within the tolerance.
     tolerance_abs, tolerance_rel : the tolerance used, ``max(abs, rel * reference)``.
     """
@@ -434,13 +436,24 @@ def agreement(estimate, reference, tolerance_abs: float = HR_TOLERANCE_ABS,
     sd = float(np.std(err, ddof=1)) if n >= 2 else nan
     # 1.96: the two-sided 95 % point of the standard normal, as in Bland & Altman (1986).
     loa_lower, loa_upper = bias - 1.96 * sd, bias + 1.96 * sd
-    if n >= 3 and np.ptp(x) > 0 and np.ptp(y) > 0:
-        r = float(stats.pearsonr(x, y).statistic)
-    else:
-        r = nan
+    r = _pearson_r(x, y)
     within = float(np.mean(within_tolerance(x, y, tolerance_abs, tolerance_rel)))
     return Agreement(n, mae, rmse, mape, bias, sd, loa_lower, loa_upper, r, within,
                      float(tolerance_abs), float(tolerance_rel))
+
+
+def _pearson_r(x: np.ndarray, y: np.ndarray) -> float:
+    """Pearson r, or NaN with fewer than 3 pairs or a side that is constant to within
+    floating-point precision (where scipy warns that r would be meaningless)."""
+    if x.size < 3 or np.ptp(x) == 0 or np.ptp(y) == 0:
+        return math.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", stats.ConstantInputWarning)
+        warnings.simplefilter("error", stats.NearConstantInputWarning)
+        try:
+            return float(stats.pearsonr(x, y).statistic)
+        except (stats.ConstantInputWarning, stats.NearConstantInputWarning):
+            return math.nan
 
 
 def coverage(rate) -> float:

@@ -126,6 +126,11 @@ class EstimateLog:
         self._write(format_row(estimate, compute_ms))
         self.rows_written += 1
 
+    def write_event(self, kind: str, message: str, time_s: float = float("nan")) -> None:
+        """A status line in the body (``# event ...``), e.g. a stream lost or resumed;
+        readers skip it like any ``#`` line."""
+        self._write(f"# event {_fmt(time_s, 4) or 'nan'} {kind}: {message}\n")
+
     def close(self) -> None:
         if self._file.closed:
             return
@@ -206,7 +211,8 @@ def read_log(path) -> LogTable:
             f"{path} is not a ridgewatch estimate log (expected the header row "
             f"'{','.join(COLUMNS)}' after the '#' lines)"
         )
-    rows = [line.split(",") for line in lines[i + 1:] if line.strip()]
+    rows = [line.split(",") for line in lines[i + 1:]
+            if line.strip() and not line.startswith("#")]
     cols: dict = {}
     for j, name in enumerate(COLUMNS):
         if name in ("quantity", "source"):
@@ -238,4 +244,4 @@ def rows_text(path) -> list[str]:
     with io.open(path, encoding="utf-8") as fh:
         lines = [ln for ln in fh.read().split("\n")]
     start = next(i for i, ln in enumerate(lines) if ln.startswith("emitted_s,"))
-    return [ln for ln in lines[start + 1:] if ln]
+    return [ln for ln in lines[start + 1:] if ln and not ln.startswith("#")]

@@ -1,0 +1,465 @@
+"""The ``ridgewatch`` command line: argument parsing and one-line errors only.
+
+Every error a user can cause ends in one line ``ridgewatch: error: ...`` naming the
+file, stream or channel and what to do, and exit code 2. An unexpected internal error
+prints one line too, writes the traceback to ``ridgewatch-crash.txt`` and exits 3.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import logging
+import math
+import os
+import sys
+import threading
+import time
+import traceback
+from pathlib import Path
+
+from estimators.config import DEFAULT_PROFILE, PROFILES, get_profile
+from estimators.errors import ParameterError
+from streamer import __version__
+from streamer.errors import InputError
+
+CAUTION = ("ridgewatch is a research tool, not a medical device: it must not be used for "
+           "diagnosis or treatment. Defer to licensed clinical practice and local regulations.")
+
+DEMO_NAME = "cycling_trial.csv.gz"
+log = logging.getLogger("ridgewatch")
+
+
+def _speed(text: str) -> float:
+    if text.lower() in ("max", "inf", "fast"):
+        return math.inf
+    try:
+        value = float(text.rstrip("xX"))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--speed {text!r}: give a number (e.g. 1, 20) or 'max'")
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"--speed {text!r} must be > 0")
+    return value
+
+
+def _positive(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number")
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"{text!r} must be > 0")
+    return value
+
+
+def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> None:
+    p.add_argument("--channel", action="append", metavar="NAME=KIND",
+                   help="use channel NAME (label or 0-based index) as KIND: ppg, ecg, resp "
+                        "or acc; repeatable. Default: from the source's metadata or labels")
+    p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES),
+                   help=f"settings preset (default {DEFAULT_PROFILE}; see 'ridgewatch profiles')")
+    p.add_argument("--hop", type=_positive, metavar="SECONDS",
+                   help="time between estimates (default from the profile, 0.25 s)")
+    p.add_argument("--log", metavar="PATH",
+                   help="estimate log (CSV); default ridgewatch-logs/<source>-<time>.csv")
+    p.add_argument("--no-log", action="store_true", help="write no estimate log")
+    p.add_argument("--publish", action="store_true",
+                   help="publish the estimates as an LSL stream")
+    p.add_argument("--display", choices=("qt", "text", "none"),
+                   help="window, terminal lines, or nothing (default: qt when a screen "
+                        "is available, else text)")
+    p.add_argument("--duration", type=_positive, metavar="SECONDS",
+                   help="stop after this many seconds of wall-clock time")
+    if speed_default is not None:
+        p.add_argument("--speed", type=_speed, default=_speed(speed_default),
+                       help=f"replay speed: N x real time or 'max' (default {speed_default})")
+        p.add_argument("--publish-samples", action="store_true",
+                       help="also publish the replayed samples as an LSL stream")
+    p.add_argument("-q", "--quiet", action="store_true", help="no progress or summary lines")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="ridgewatch",
+        description="Live heart-rate and breathing-rate estimation from LSL streams and "
+                    "recordings. " + CAUTION)
+    parser.add_argument("--version", action="version", version=f"ridgewatch {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    sub.required = True
+
+    p = sub.add_parser("replay", help="replay a recording (CSV, WFDB, EDF, XDF) into the engine")
+    p.add_argument("file", help="recording: .csv, .csv.gz, .hea (WFDB), .edf, .xdf")
+    p.add_argument("--fs", type=_positive, help="sampling rate for a CSV without a time column")
+    _common(p, speed_default="max")
+
+    p = sub.add_parser("demo", help="replay the bundled synthetic demo session")
+    _common(p, speed_default="4")
+
+    p = sub.add_parser("live", help="follow a live LSL stream")
+    p.add_argument("--name", help="LSL stream name to look for")
+    p.add_argument("--type", help="LSL stream type to look for (e.g. PPG)")
+    p.add_argument("--source-id", help="LSL source_id to look for")
+    p.add_argument("--timeout", type=_positive, default=5.0, metavar="SECONDS",
+                   help="how long to look for the stream (default 5)")
+    _common(p)
+
+    p = sub.add_parser("simulate",
+                       help="publish the synthetic cycling trial as an LSL stream (no hardware)")
+    p.add_argument("--name", default="ridgewatch-sim", help="stream name (default ridgewatch-sim)")
+    p.add_argument("--fs", type=_positive, default=125.0, help="sampling rate (default 125)")
+    p.add_argument("--speed", type=_speed, default=1.0, help="N x real time (default 1)")
+    p.add_argument("--duration", type=_positive, metavar="SECONDS",
+                   help="stop after this many wall-clock seconds (default: loop until Ctrl-C)")
+    p.add_argument("-q", "--quiet", action="store_true")
+
+    sub.add_parser("profiles", help="list the settings presets")
+
+    p = sub.add_parser("offline", help="non-causal estimates over a whole recording")
+    p.add_argument("file")
+    p.add_argument("--fs", type=_positive)
+    p.add_argument("--channel", action="append", metavar="NAME=KIND")
+    p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES))
+    p.add_argument("--hop", type=_positive, metavar="SECONDS")
+    p.add_argument("--log", metavar="PATH", required=True, help="where to write the log")
+    p.add_argument("-q", "--quiet", action="store_true")
+
+    p = sub.add_parser("compare", help="compare an estimate log with another log or a reference")
+    p.add_argument("log", help="estimate log written by replay, live, demo or offline")
+    p.add_argument("--against", required=True, metavar="OTHER",
+                   help="another estimate log, beat/breath times (WFDB annotation or CSV "
+                        "of times) or a CSV of time,rate")
+    p.add_argument("--quantity", choices=("hr", "rr"), help="only this quantity")
+    p.add_argument("--source", help="only this source (channel name or 'fused')")
+    p.add_argument("--report", metavar="DIR", help="write a report folder (Markdown, HTML, PNG)")
+    p.add_argument("-q", "--quiet", action="store_true")
+    return parser
+
+
+def _screen_available() -> bool:
+    return bool(os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY")
+                or os.environ.get("QT_QPA_PLATFORM") == "offscreen")
+
+
+def _default_log_path(source_name: str) -> Path:
+    stem = Path(str(source_name)).name
+    for suffix in (".gz", ".csv", ".hea", ".edf", ".xdf", ".dat"):
+        stem = stem[: -len(suffix)] if stem.endswith(suffix) else stem
+    stamp = time.strftime("%Y%m%d-%H%M%S")
+    return Path("ridgewatch-logs") / f"{stem or 'stream'}-{stamp}.csv"
+
+
+def find_demo() -> Path | None:
+    """The bundled demo session: in ./replay_files, or beside the source tree."""
+    for base in (Path.cwd(), Path(__file__).resolve().parents[1]):
+        candidate = base / "replay_files" / DEMO_NAME
+        if candidate.exists():
+            return candidate
+    return None
+
+
+def _profile(args):
+    profile = get_profile(args.profile)
+    if getattr(args, "hop", None):
+        profile = profile.with_hop(args.hop)
+    return profile
+
+
+def _progress_printer(quiet: bool):
+    if quiet or not sys.stderr.isatty():
+        return None
+    state = {"last": -1}
+
+    def show(fraction: float) -> None:
+        pct = int(fraction * 100)
+        if pct != state["last"]:
+            state["last"] = pct
+            sys.stderr.write(f"\rreplaying: {pct:3d} %")
+            if fraction >= 1.0:
+                sys.stderr.write("\n")
+            sys.stderr.flush()
+
+    return show
+
+
+def _run(args, source, mode: str, input_id: str) -> int:
+    from streamer.channels import select
+    from streamer.runner import Runner, install_signal_handlers
+    from streamer.sinks.estimate_log import EstimateLog
+
+    selected = select(source.info, args.channel)
+    profile = _profile(args)
+    mapping = {s.name: s.kind for s in selected}
+    config = {"profile": profile.to_dict(), "fs": source.info.fs,
+              "speed": getattr(args, "speed", None), "mode": mode}
+    config["speed"] = "max" if config["speed"] == math.inf else config["speed"]
+    display = args.display or ("qt" if _screen_available() else "text")
+    if display == "qt" and not _screen_available():
+        raise InputError("--display qt needs a screen (DISPLAY is not set); use --display text "
+                         "or set QT_QPA_PLATFORM=offscreen")
+    log_sink = None
+    log_path = None
+    if not args.no_log:
+        log_path = Path(args.log) if args.log else _default_log_path(source.info.name)
+        log_sink = EstimateLog(log_path, mode, source.info.name, mapping, config)
+    runner = Runner(source, selected, profile, log=log_sink, duration_s=args.duration)
+    if args.publish:
+        from streamer.sinks.outlet import EstimateOutlet
+        runner.outlet = EstimateOutlet(list(runner.monitor.outputs), profile.hr.hop_s,
+                                       input_id=input_id, use_stream_time=(mode == "live"))
+    publisher = None
+    if getattr(args, "publish_samples", False):
+        from streamer.sources.lsl_publish import SamplePublisher
+        publisher = SamplePublisher(source.info)
+        runner.listeners.append(lambda u: u.chunk is not None and publisher.push_chunk(
+            _full_chunk(u)))
+    if not args.quiet:
+        print(f"ridgewatch {__version__}: {CAUTION}", file=sys.stderr)
+        print("channels: " + ", ".join(f"{s.name}={s.kind}" for s in selected)
+              + f"; profile {profile.name}" + (f"; log {log_path}" if log_path else ""),
+              file=sys.stderr)
+    try:
+        if display == "qt":
+            from streamer.display.qt_window import run_with_window
+            stats = run_with_window(runner, profile, duration_s=args.duration)
+        else:
+            stats = _run_threaded(runner, display, install_signal_handlers)
+    finally:
+        if publisher is not None:
+            publisher.close()
+    if not args.quiet:
+        speed = stats.stream_seconds / stats.compute_s if stats.compute_s > 0 else math.nan
+        print(f"done ({stats.stopped_by}): {stats.stream_seconds:.1f} s of signal, "
+              f"{stats.estimates} estimates, engine at {speed:.0f}x real time"
+              + (f"; log complete: {log_path}" if log_path else ""), file=sys.stderr)
+    return 0
+
+
+def _full_chunk(update):
+    return update.chunk
+
+
+def _run_threaded(runner, display: str, install_signal_handlers):
+    """Estimation in a worker thread; the main thread draws and takes the signals."""
+    from streamer.display.text import TextDisplay
+
+    text = TextDisplay() if display == "text" else None
+    if text is not None:
+        runner.listeners.append(text.listener)
+    restore = install_signal_handlers(runner)
+    result = {}
+    errors = []
+
+    def work():
+        try:
+            result["stats"] = runner.run()
+        except BaseException as exc:  # handed to the main thread, reported there
+            errors.append(exc)
+
+    worker = threading.Thread(target=work, name="ridgewatch-engine", daemon=True)
+    worker.start()
+    try:
+        if text is not None:
+            text.run_until(lambda: not worker.is_alive())
+        while worker.is_alive():
+            worker.join(0.1)
+    finally:
+        restore()
+    if errors:
+        raise errors[0]
+    return result["stats"]
+
+
+def cmd_replay(args) -> int:
+    from streamer.sources.files import read_recording
+    from streamer.sources.replay import RecordingSource
+
+    recording = read_recording(args.file, fs=args.fs)
+    source = RecordingSource(recording, speed=args.speed, chunk_s=0.25,
+                             progress=_progress_printer(args.quiet or args.display == "text"))
+    return _run(args, source, "replay", recording.info.source_id or str(args.file))
+
+
+def cmd_demo(args) -> int:
+    from streamer.simulation import cycling_trial
+    from streamer.sources.base import ChannelInfo, Recording, SourceInfo
+    from streamer.sources.files import read_recording
+    from streamer.sources.replay import RecordingSource
+
+    path = find_demo()
+    if path is not None:
+        recording = read_recording(path)
+    else:  # installed without the source tree: rebuild the same synthetic session
+        sim = cycling_trial()
+        info = SourceInfo(DEMO_NAME + " (regenerated)", 125.0, tuple(
+            ChannelInfo(n, k, u) for n, k, u in zip(sim.names, sim.kinds, sim.units)),
+            "file:" + DEMO_NAME)
+        recording = Recording(sim.samples, sim.timestamps, info)
+    if not args.quiet:
+        print(f"demo: synthetic cycling bench trial ({recording.duration_s:.0f} s: rest, "
+              f"ramp, intervals, recovery) at {args.speed:g}x", file=sys.stderr)
+    source = RecordingSource(recording, speed=args.speed, chunk_s=0.25)
+    return _run(args, source, "replay", "demo")
+
+
+def cmd_live(args) -> int:
+    from streamer.sources.lsl_source import LslSource
+
+    kinds = None
+    source = LslSource(name=args.name, type=args.type, source_id=args.source_id,
+                       timeout_s=args.timeout, channel_kinds=kinds)
+    return _run(args, source, "live", source.info.source_id or source.info.name)
+
+
+def cmd_simulate(args) -> int:
+    import numpy as np
+
+    from streamer.simulation import cycling_trial
+    from streamer.sources.base import ChannelInfo, Chunk, SourceInfo
+    from streamer.sources.lsl_publish import SamplePublisher
+
+    sim = cycling_trial(args.fs)
+    info = SourceInfo(args.name, args.fs, tuple(
+        ChannelInfo(n, k, u) for n, k, u in zip(sim.names, sim.kinds, sim.units)),
+        f"ridgewatch-sim-{args.name}")
+    publisher = SamplePublisher(info, name=args.name)
+    stop = threading.Event()
+    import signal as _signal
+    for sig in (_signal.SIGINT, _signal.SIGTERM):
+        _signal.signal(sig, lambda *_: stop.set())
+    if not args.quiet:
+        print(f"publishing LSL stream '{args.name}' (synthetic cycling trial, "
+              f"{', '.join(sim.names)} at {args.fs:g} Hz); Ctrl-C stops", file=sys.stderr)
+    step = max(1, int(round(0.05 * args.fs)))
+    start = time.monotonic()
+    n = len(sim.timestamps)
+    k = 0
+    loop_offset = 0.0
+    try:
+        while not stop.is_set():
+            if args.duration and time.monotonic() - start >= args.duration:
+                break
+            due = start + (loop_offset + sim.timestamps[k % n]) / args.speed \
+                if math.isfinite(args.speed) else 0
+            wait = due - time.monotonic()
+            if wait > 0:
+                stop.wait(min(wait, 0.1))
+                continue
+            j = min(k % n + step, n)
+            block = sim.samples[k % n:j]
+            stamps = sim.timestamps[k % n:j] + loop_offset
+            publisher.push_chunk(Chunk(np.ascontiguousarray(block), stamps))
+            k += j - k % n
+            if k % n == 0:
+                loop_offset += sim.timestamps[-1] + 1.0 / args.fs
+    finally:
+        publisher.close()
+    return 0
+
+
+def cmd_profiles(args) -> int:
+    for name, profile in sorted(PROFILES.items()):
+        marker = " (default)" if name == DEFAULT_PROFILE else ""
+        print(f"{name}{marker}: {profile.description}")
+        for q in ("hr", "rr"):
+            s = getattr(profile, q)
+            print(f"  {q}: band {s.band_per_min[0]:g}-{s.band_per_min[1]:g}/min, window "
+                  f"{s.window_s:g} s (first estimate after {s.min_window_s:g} s), hop "
+                  f"{s.hop_s:g} s, de-shape {'on' if s.deshape else 'off'} (gamma {s.gamma:g}), "
+                  f"max change {s.max_change_per_min_per_s:g}/min per s, lag {s.lag_hops} hops")
+    return 0
+
+
+def cmd_offline(args) -> int:
+    from estimators.monitor import offline_estimates
+    from streamer.channels import select
+    from streamer.sinks.estimate_log import EstimateLog
+    from streamer.sources.files import read_recording
+
+    recording = read_recording(args.file, fs=args.fs)
+    selected = select(recording.info, args.channel)
+    profile = _profile(args)
+    samples = recording.samples[:, [s.index for s in selected]]
+    start = time.perf_counter()
+    estimates = offline_estimates(samples, recording.timestamps,
+                                  [(s.name, s.kind) for s in selected], recording.info.fs,
+                                  profile)
+    elapsed = time.perf_counter() - start
+    config = {"profile": profile.to_dict(), "fs": recording.info.fs, "mode": "offline"}
+    with EstimateLog(args.log, "offline", recording.info.name,
+                     {s.name: s.kind for s in selected}, config) as out:
+        per_row = 1e3 * elapsed / max(1, len(estimates))
+        for est in estimates:
+            out.write(est, per_row)
+    if not args.quiet:
+        print(f"offline: {len(estimates)} estimates over {recording.duration_s:.1f} s "
+              f"in {elapsed:.1f} s; log {args.log}", file=sys.stderr)
+    return 0
+
+
+def _log_windows(table) -> dict | None:
+    """Window length per quantity from a log's configuration header, if present."""
+    profile = (table.header.get("config") or {}).get("profile") if isinstance(
+        table.header.get("config"), dict) else None
+    if not profile:
+        return None
+    return {q: float(profile[q]["window_s"]) for q in ("hr", "rr") if q in profile}
+
+
+def cmd_compare(args) -> int:
+    from streamer.compare import add_overlay, load_other, pair_up, summarize
+    from streamer.sinks.estimate_log import read_log
+
+    table = read_log(args.log)
+    other = load_other(args.against)
+    series = pair_up(table, other, args.quantity, args.source, _log_windows(table))
+    results = [summarize(s) for s in series]
+    if args.report:
+        from streamer.report import write_report
+        if hasattr(other, "table"):
+            add_overlay(series, Path(args.against).name, other.table)
+        paths = write_report(results, series, args.report,
+                             f"ridgewatch comparison: {Path(args.log).name} vs "
+                             f"{Path(args.against).name}")
+        if not args.quiet:
+            print(f"report written to {args.report} ({len(paths)} files)", file=sys.stderr)
+    for r in results:
+        print(f"{r['quantity']} {r['source']}: n={r['n']} MAE {r['mae']:.2f} RMSE {r['rmse']:.2f} "
+              f"bias {r['bias']:+.2f} LoA [{r['loa_lower']:.2f}, {r['loa_upper']:.2f}] "
+              f"r {r['pearson_r']:.3f} within tolerance {100 * r['within_tolerance']:.1f} % "
+              f"coverage {100 * r['coverage']:.1f} % lag {r['lag_s']:+.2f} s "
+              f"delay median {r['delay_median_s']:.2f} s")
+    return 0
+
+
+COMMANDS = {"replay": cmd_replay, "demo": cmd_demo, "live": cmd_live,
+            "simulate": cmd_simulate, "profiles": cmd_profiles, "offline": cmd_offline,
+            "compare": cmd_compare}
+
+
+def main(argv=None) -> int:
+    logging.basicConfig(level=logging.WARNING, format="ridgewatch: %(message)s")
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if getattr(args, "quiet", False):
+        logging.getLogger("ridgewatch").setLevel(logging.ERROR)
+    try:
+        return COMMANDS[args.command](args)
+    except (InputError, ParameterError) as exc:
+        print(f"ridgewatch: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("ridgewatch: stopped", file=sys.stderr)
+        return 0
+    except Exception as exc:  # last resort: one line for the user, the details in a file
+        crash = Path("ridgewatch-crash.txt")
+        try:
+            crash.write_text(traceback.format_exc())
+            where = f"; details in {crash.resolve()}"
+        except OSError:
+            where = ""
+        print(f"ridgewatch: internal error: {type(exc).__name__}: {exc}{where}", file=sys.stderr)
+        return 3
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,78 @@
+"""Terminal display: one refreshing line per quantity and source.
+
+Works over SSH and in CI logs. On a terminal (a TTY) the block of lines is redrawn in
+place a few times per second; otherwise a plain line is printed per refresh so logs
+stay readable. It only draws: the runner hands it updates through a bounded queue and
+never waits for it.
+"""
+
+from __future__ import annotations
+
+import math
+import queue
+import sys
+import time
+
+from streamer.display.state import DisplayState, quality_word
+
+CAUTION = "research tool, not a medical device"
+
+
+def format_line(key, est) -> str:
+    quantity, source = key
+    unit = "bpm" if quantity == "hr" else "br/min"
+    label = "heart rate" if quantity == "hr" else "breathing"
+    rate = "  -- " if math.isnan(est.rate_per_min) else f"{est.rate_per_min:5.1f}"
+    return (f"{label:<10} {source:<10} {rate} {unit:<6}  confidence {est.confidence:4.2f}  "
+            f"quality {est.quality:4.2f} ({quality_word(est.quality)})  "
+            f"delay {est.delay_s:4.1f} s")
+
+
+class TextDisplay:
+    """Drains a queue of runner updates and prints the latest value per quantity/source."""
+
+    def __init__(self, stream=None, refresh_s: float = 0.5, maxsize: int = 256):
+        self.stream = stream or sys.stdout
+        self.refresh_s = refresh_s
+        self.queue: queue.Queue = queue.Queue(maxsize=maxsize)
+        self.state = DisplayState()
+        self._lines_drawn = 0
+        self._last_draw = 0.0
+        self._tty = hasattr(self.stream, "isatty") and self.stream.isatty()
+
+    def listener(self, update) -> None:
+        """Runner-side hook: never blocks; drops the update when the queue is full."""
+        try:
+            self.queue.put_nowait(update)
+        except queue.Full:
+            self.state.dropped += 1
+
+    def drain(self) -> None:
+        while True:
+            try:
+                update = self.queue.get_nowait()
+            except queue.Empty:
+                return
+            self.state.apply(update)
+
+    def draw(self, force: bool = False) -> None:
+        now = time.monotonic()
+        if not force and now - self._last_draw < self.refresh_s:
+            return
+        self._last_draw = now
+        lines = [f"ridgewatch ({CAUTION}) - {self.state.status}"]
+        lines += [format_line(k, e) for k, e in sorted(self.state.latest.items())]
+        if self._tty and self._lines_drawn:
+            self.stream.write(f"\x1b[{self._lines_drawn}F\x1b[J")
+        self.stream.write("\n".join(lines) + "\n")
+        self.stream.flush()
+        self._lines_drawn = len(lines)
+
+    def run_until(self, done) -> None:
+        """Drain and draw until ``done()`` is true (called from the main thread)."""
+        while not done():
+            self.drain()
+            self.draw()
+            time.sleep(0.05)
+        self.drain()
+        self.draw(force=True)

@@ -1,0 +1,197 @@
+"""Source -> engine -> sinks. Threads, shutdown and signals live here.
+
+The :class:`Runner` pulls items from a source, feeds chunks to the engine
+(:class:`estimators.monitor.RateMonitor`), writes every estimate to the log (flushed per
+line) and the LSL outlet, and hands copies to listeners (the display) without ever
+waiting for them. A stop request (Ctrl-C, SIGTERM, a closed window, ``--duration``)
+ends the loop at the next item; the log is closed in a ``finally`` block so it is
+complete up to the last hop processed.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import signal
+import threading
+import time
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+
+from estimators.config import Profile
+from estimators.estimate import Estimate
+from estimators.monitor import RateMonitor
+from streamer.channels import Selected
+from streamer.sources.base import Chunk, SourceEvent
+
+log = logging.getLogger("ridgewatch")
+
+
+@dataclass
+class RunStats:
+    """What a run did, for the closing line and the tests."""
+
+    chunks: int = 0
+    samples: int = 0
+    estimates: int = 0
+    stream_start_s: float = math.nan
+    stream_end_s: float = math.nan
+    compute_s: float = 0.0
+    stopped_by: str = ""
+    events: list = field(default_factory=list)
+
+    @property
+    def stream_seconds(self) -> float:
+        if math.isnan(self.stream_start_s):
+            return 0.0
+        return self.stream_end_s - self.stream_start_s
+
+
+@dataclass(frozen=True)
+class Update:
+    """What listeners (the display) receive after each chunk."""
+
+    estimates: list
+    chunk: Chunk | None
+    blocks: dict
+    event: SourceEvent | None = None
+
+
+class Runner:
+    """Runs one source through the engine into the sinks.
+
+    Parameters
+    ----------
+    source : any object following the source protocol.
+    selected : channels chosen from the source (:func:`streamer.channels.select`).
+    profile : engine profile.
+    log : an :class:`~streamer.sinks.estimate_log.EstimateLog` or None.
+    outlet : an estimate outlet with ``push(estimates)`` and ``close()``, or None.
+    duration_s : stop after this many wall-clock seconds (None: run to the end).
+    listeners : callables receiving an :class:`Update`; they must not block.
+    clock : wall clock (injectable for tests).
+    """
+
+    def __init__(self, source, selected: list[Selected], profile: Profile, log=None,
+                 outlet=None, duration_s: float | None = None,
+                 listeners: list[Callable] | None = None, clock=time.monotonic):
+        self.source, self.selected, self.profile = source, selected, profile
+        self.log, self.outlet = log, outlet
+        self.duration_s = duration_s
+        self.listeners = list(listeners or [])
+        self.clock = clock
+        self.monitor = RateMonitor([(s.name, s.kind) for s in selected], source.info.fs, profile)
+        self._columns = np.array([s.index for s in selected], dtype=np.int64)
+        self.stop_event = threading.Event()
+        self.stats = RunStats()
+        self.stop_reason = ""
+
+    def stop(self, reason: str = "stop requested") -> None:
+        """Ask the loop to end at the next item (safe from any thread or signal handler)."""
+        if not self.stop_event.is_set():
+            self.stop_reason = reason
+            self.stop_event.set()
+        try:
+            self.source.close()
+        except Exception:  # closing is best effort; the loop ends on the event anyway
+            pass
+
+    def _notify(self, update: Update) -> None:
+        for listener in self.listeners:
+            try:
+                listener(update)
+            except Exception as exc:  # a broken display never stops estimation or logging
+                log.warning("display listener failed and was removed: %s", exc)
+                self.listeners.remove(listener)
+
+    def _handle_chunk(self, chunk: Chunk) -> None:
+        if len(chunk) == 0:
+            return
+        samples = chunk.samples[:, self._columns]
+        start = time.perf_counter()
+        estimates: list[Estimate] = self.monitor.update(samples, chunk.timestamps)
+        elapsed = time.perf_counter() - start
+        st = self.stats
+        st.chunks += 1
+        st.samples += len(chunk)
+        st.compute_s += elapsed
+        if math.isnan(st.stream_start_s):
+            st.stream_start_s = float(chunk.timestamps[0])
+        st.stream_end_s = float(chunk.timestamps[-1])
+        hops = len({e.emitted_s for e in estimates}) or 1
+        compute_ms = 1e3 * elapsed / hops
+        if self.log is not None:
+            for est in estimates:
+                self.log.write(est, compute_ms)
+        if self.outlet is not None and estimates:
+            self.outlet.push(estimates)
+        st.estimates += len(estimates)
+        if self.listeners:
+            view = Chunk(samples, chunk.timestamps)
+            self._notify(Update(estimates, view, self.monitor.last_blocks))
+
+    def _handle_event(self, event: SourceEvent) -> None:
+        self.stats.events.append(event)
+        if event.kind in ("lost", "resumed", "gap", "irregular"):
+            log.warning("%s", event.message)
+        else:
+            log.info("%s", event.message)
+        if self.log is not None and event.kind != "replaying":
+            self.log.write_event(event.kind, event.message, event.time_s)
+        self._notify(Update([], None, {}, event))
+
+    def run(self) -> RunStats:
+        """Process items until the source ends, a stop is requested or time is up."""
+        started = self.clock()
+        try:
+            for item in self.source.chunks():
+                if self.stop_event.is_set():
+                    break
+                if isinstance(item, Chunk):
+                    self._handle_chunk(item)
+                else:
+                    self._handle_event(item)
+                    if item.kind == "end":
+                        self.stop_reason = self.stop_reason or "end of recording"
+                        break
+                if self.duration_s is not None and self.clock() - started >= self.duration_s:
+                    self.stop_reason = self.stop_reason or f"--duration {self.duration_s:g} s reached"
+                    break
+        finally:
+            self.stats.stopped_by = self.stop_reason or "source ended"
+            self.close()
+        return self.stats
+
+    def close(self) -> None:
+        for sink in (self.log, self.outlet):
+            if sink is not None:
+                try:
+                    sink.close()
+                except Exception as exc:
+                    log.warning("closing %s failed: %s", type(sink).__name__, exc)
+        try:
+            self.source.close()
+        except Exception:
+            pass
+
+
+def install_signal_handlers(runner: Runner, also: Callable[[], None] | None = None):
+    """SIGINT and SIGTERM ask the runner to stop (log closed cleanly). Returns a function
+    restoring the previous handlers. Only callable from the main thread."""
+    previous = {}
+
+    def handler(signum, frame):
+        runner.stop(f"stopped by {signal.Signals(signum).name}")
+        if also is not None:
+            also()
+
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        previous[sig] = signal.signal(sig, handler)
+
+    def restore():
+        for sig, old in previous.items():
+            signal.signal(sig, old)
+
+    return restore

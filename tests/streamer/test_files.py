@@ -1,0 +1,753 @@
+"""File readers: CSV, WFDB (own reader, checked against the wfdb package), EDF, XDF."""
+
+from __future__ import annotations
+
+import gzip
+import logging
+import struct
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from streamer.errors import InputError
+from streamer.sources import wfdb_reader
+from streamer.sources.files import read_recording
+
+DATA = Path(__file__).resolve().parents[2] / ".." / "shared" / "data"
+WFDB_DIR = DATA / "physionet_wfdb"
+BIDMC_DIR = DATA / "bidmc" / "bidmc_csv"
+
+
+@pytest.fixture
+def rng():
+    return np.random.default_rng(20240611)
+
+
+def write_text(path: Path, text: str) -> Path:
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def csv_text(header: list[str], rows: np.ndarray) -> str:
+    lines = [", ".join(header)]
+    lines += [",".join(repr(float(v)) for v in row) for row in rows]
+    return "\n".join(lines) + "\n"
+
+
+# ---------------------------------------------------------------------------- CSV
+
+
+def test_csv_with_time_column_reads_values_times_and_rate(tmp_path, rng):
+    n = 400
+    t = 12.5 + np.arange(n) / 250.0
+    x = rng.standard_normal((n, 2))
+    path = write_text(tmp_path / "rec.csv", csv_text(["Time [s]", "PLETH", "RESP"],
+                                                     np.column_stack([t, x])))
+    rec = read_recording(path)
+    # repr() round-trips float64 exactly, so the parse must too.
+    np.testing.assert_array_equal(rec.samples, x)
+    np.testing.assert_array_equal(rec.timestamps, t)
+    assert rec.samples.dtype == np.float64 and rec.samples.flags.c_contiguous
+    assert rec.info.fs == pytest.approx(250.0, rel=1e-9)
+    assert rec.info.channel_names == ["PLETH", "RESP"]
+    assert rec.info.name == str(path)
+    assert rec.info.source_id == "file:rec.csv"
+    assert rec.events == {}
+
+
+def test_csv_gz_gives_the_same_recording(tmp_path, rng):
+    x = rng.standard_normal((100, 3))
+    text = csv_text(["a", "b", "c"], x)
+    plain = read_recording(write_text(tmp_path / "r.csv", text), fs=50)
+    with gzip.open(tmp_path / "r.csv.gz", "wt") as f:
+        f.write(text)
+    packed = read_recording(tmp_path / "r.csv.gz", fs=50)
+    np.testing.assert_array_equal(plain.samples, packed.samples)
+    np.testing.assert_array_equal(plain.timestamps, packed.timestamps)
+    assert packed.info.source_id == "file:r.csv.gz"
+
+
+def test_csv_gz_truncated_or_not_gzip_is_refused(tmp_path):
+    packed = gzip.compress(("a\n" + "1\n" * 5000).encode())
+    (tmp_path / "cut.csv.gz").write_bytes(packed[: len(packed) // 2])
+    with pytest.raises(InputError, match=r"cut\.csv\.gz: the compressed file is truncated"):
+        read_recording(tmp_path / "cut.csv.gz", fs=1)
+    (tmp_path / "plain.csv.gz").write_bytes(b"a\n1\n")
+    with pytest.raises(InputError, match=r"plain\.csv\.gz: cannot read: Not a gzipped file"):
+        read_recording(tmp_path / "plain.csv.gz", fs=1)
+
+
+def test_csv_without_time_column_uses_fs(tmp_path, rng):
+    x = rng.standard_normal((64, 2))
+    rec = read_recording(write_text(tmp_path / "r.csv", csv_text(["ppg", "ecg"], x)), fs=32.0)
+    np.testing.assert_array_equal(rec.timestamps, np.arange(64) / 32.0)
+    assert rec.info.fs == 32.0
+    np.testing.assert_array_equal(rec.samples, x)
+
+
+def test_csv_without_time_column_or_fs_is_refused(tmp_path):
+    path = write_text(tmp_path / "r.csv", "ppg,ecg\n1,2\n3,4\n")
+    with pytest.raises(InputError, match=r"r\.csv: no time column \(looked for .*\) and no "
+                                         r"--fs given; add a time column or pass --fs HZ"):
+        read_recording(path)
+
+
+@pytest.mark.parametrize("name", ["time", "t", "Timestamp", "TIME [s]", "time_s"])
+def test_csv_time_column_names_are_recognised(tmp_path, name):
+    path = write_text(tmp_path / "r.csv", f"x,{name}\n5,0.0\n6,0.5\n7,1.0\n")
+    rec = read_recording(path)
+    assert rec.info.channel_names == ["x"]
+    np.testing.assert_array_equal(rec.timestamps, [0.0, 0.5, 1.0])
+    assert rec.info.fs == 2.0
+
+
+def test_csv_time_column_in_ms_is_converted(tmp_path):
+    rec = read_recording(write_text(tmp_path / "r.csv", "Time [ms],x\n0,1\n4,2\n8,3\n"))
+    np.testing.assert_allclose(rec.timestamps, [0.0, 0.004, 0.008], rtol=0, atol=1e-15)
+    assert rec.info.fs == pytest.approx(250.0)
+
+
+def test_csv_time_column_with_unknown_unit_is_refused(tmp_path):
+    path = write_text(tmp_path / "r.csv", "Time [min],x\n0,1\n1,2\n")
+    with pytest.raises(InputError, match=r"time column 'Time \[min\]' has unit 'min'"):
+        read_recording(path)
+
+
+def test_csv_fs_with_time_column_keeps_file_times(tmp_path, caplog):
+    path = write_text(tmp_path / "r.csv", "t,x\n0,1\n0.5,2\n1.0,3\n")
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(path, fs=3.0)
+    np.testing.assert_array_equal(rec.timestamps, [0.0, 0.5, 1.0])
+    assert rec.info.fs == 3.0
+    assert "differs from the rate of the time column" in caplog.text
+
+
+def test_csv_non_numeric_cell_names_line_and_column(tmp_path):
+    path = write_text(tmp_path / "r.csv", "# a comment\nt,a,b\n0,1,2\n0.1,3,abc\n0.2,5,6\n")
+    with pytest.raises(InputError, match=r"r\.csv: line 4, column 3 \('b'\): 'abc' is not a "
+                                         r"number; fix the cell"):
+        read_recording(path)
+
+
+def test_csv_empty_cells_read_as_nan_and_other_cells_exactly(tmp_path, rng):
+    x = rng.standard_normal((50, 3))
+    lines = csv_text(["a", "b", "c"], x).splitlines()
+    lines[7] = lines[7].split(",", 1)[0] + ",," + lines[7].split(",")[2]  # row 6, column b
+    rec = read_recording(write_text(tmp_path / "r.csv", "\n".join(lines) + "\n"), fs=10)
+    expected = x.copy()
+    expected[6, 1] = np.nan
+    np.testing.assert_array_equal(rec.samples, expected)
+
+
+def test_csv_trailing_delimiter_column_is_ignored(tmp_path):
+    rec = read_recording(write_text(tmp_path / "r.csv", "time,a,\n0,1,\n0.5,,\n1.0,3,\n"))
+    assert rec.info.channel_names == ["a"]
+    np.testing.assert_array_equal(rec.samples[:, 0], [1.0, np.nan, 3.0])
+
+
+def test_csv_empty_file_and_header_only_are_refused(tmp_path):
+    with pytest.raises(InputError, match=r"e\.csv: file is empty; expected a header row"):
+        read_recording(write_text(tmp_path / "e.csv", "\n\n"))
+    with pytest.raises(InputError, match=r"h\.csv: no data rows after the header"):
+        read_recording(write_text(tmp_path / "h.csv", "time,x\n"))
+
+
+def test_csv_without_header_is_refused(tmp_path):
+    with pytest.raises(InputError, match=r"line 1 looks like data, not a header"):
+        read_recording(write_text(tmp_path / "r.csv", "0,1\n1,2\n"), fs=1)
+
+
+def test_csv_truncated_last_line_is_dropped_with_a_warning(tmp_path, caplog):
+    path = write_text(tmp_path / "r.csv", "t,a,b\n0,1,2\n0.5,3,4\n1.0,5")
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(path)
+    np.testing.assert_array_equal(rec.samples, [[1, 2], [3, 4]])
+    np.testing.assert_array_equal(rec.timestamps, [0.0, 0.5])
+    assert "r.csv: line 4 has 2 of 3 cells (truncated last line); dropped it" in caplog.text
+
+
+def test_csv_short_line_in_the_middle_is_refused(tmp_path):
+    path = write_text(tmp_path / "r.csv", "t,a,b\n0,1,2\n0.5,3\n1.0,5,6\n")
+    with pytest.raises(InputError, match=r"line 3 has 2 cells but the header has 3"):
+        read_recording(path)
+
+
+def test_csv_time_that_goes_backwards_is_refused(tmp_path):
+    path = write_text(tmp_path / "r.csv", "t,a\n0,1\n0.5,2\n0.25,3\n")
+    with pytest.raises(InputError, match=r"time column 't' goes backwards at data row 3 "
+                                         r"\(0\.5 then 0\.25\); sort the rows"):
+        read_recording(path)
+
+
+def test_csv_time_rounded_to_few_digits_becomes_a_regular_grid(tmp_path, rng, caplog):
+    # As in the BIDMC CSV files: 125 Hz times written with 5 significant digits repeat
+    # (100.02, 100.02) and their one-sample median step is 0.01 s, not 0.008 s.
+    n = 20000
+    true_times = np.arange(n) / 125.0
+    x = rng.standard_normal(n)
+    text = "Time [s],x\n" + "".join(f"{t:.5g},{float(v)!r}\n" for t, v in zip(true_times, x))
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(write_text(tmp_path / "r.csv", text))
+    assert rec.info.fs == pytest.approx(125.0, rel=1e-6)
+    np.testing.assert_allclose(rec.timestamps, true_times, rtol=0, atol=1e-9)
+    np.testing.assert_array_equal(rec.samples[:, 0], x)
+    assert "repeats times (written with too few digits); using a regular 125 Hz grid" in caplog.text
+
+
+def test_csv_repeated_times_off_a_regular_grid_are_refused(tmp_path):
+    times = np.arange(1000) / 10.0
+    times[2] = times[1]
+    times[500:] += 5.0  # a gap: no regular grid explains the repeat
+    text = "t,a\n" + "".join(f"{float(t)!r},1\n" for t in times)
+    with pytest.raises(InputError, match=r"repeats the time 0\.1 at data row 3 and is not a "
+                                         r"regular 10 Hz grid; fix the time column"):
+        read_recording(write_text(tmp_path / "r.csv", text))
+
+
+def test_csv_rate_ignores_gaps_and_times_with_gaps_are_kept(tmp_path):
+    times = np.concatenate([np.arange(300) / 100.0, 5.0 + np.arange(300) / 100.0])
+    text = "t,a\n" + "".join(f"{float(t)!r},1\n" for t in times)
+    rec = read_recording(write_text(tmp_path / "r.csv", text))
+    assert rec.info.fs == pytest.approx(100.0, rel=1e-9)
+    np.testing.assert_array_equal(rec.timestamps, times)
+
+
+def test_csv_single_row_needs_fs(tmp_path):
+    with pytest.raises(InputError, match=r"only one row; cannot infer the sampling rate"):
+        read_recording(write_text(tmp_path / "r.csv", "t,a\n0,1\n"))
+
+
+@pytest.mark.parametrize("delimiter", [";", "\t"])
+def test_csv_other_delimiters(tmp_path, delimiter):
+    path = write_text(tmp_path / "r.tsv", delimiter.join(["t", "a"]) + "\n"
+                      + "\n".join(f"{k / 4}{delimiter}{k}" for k in range(8)) + "\n")
+    rec = read_recording(path)
+    np.testing.assert_array_equal(rec.samples[:, 0], np.arange(8))
+    assert rec.info.fs == 4.0
+
+
+def test_channel_selection_by_name_index_and_order(tmp_path, rng):
+    x = rng.standard_normal((20, 3))
+    path = write_text(tmp_path / "r.csv", csv_text(["time", "a", "b", "c"],
+                                                   np.column_stack([np.arange(20) / 10, x])))
+    rec = read_recording(path, channels=["c", "0"])
+    assert rec.info.channel_names == ["c", "a"]
+    np.testing.assert_array_equal(rec.samples, x[:, [2, 0]])
+    assert read_recording(path, channels="b, C").info.channel_names == ["b", "c"]
+    with pytest.raises(InputError, match=r"r\.csv: no channel 'X'; channels are: a, b, c$"):
+        read_recording(path, channels=["a", "X"])
+    with pytest.raises(InputError, match=r"no channel '3'; channels are: a, b, c"):
+        read_recording(path, channels=["3"])
+
+
+def test_unknown_extension_missing_file_and_bad_fs(tmp_path):
+    with pytest.raises(InputError, match=r"r\.wav: unknown file type; supported: \.csv, "
+                                         r"\.csv\.gz, .*\.hea, \.edf, \.bdf, \.xdf"):
+        read_recording(write_text(tmp_path / "r.wav", "x"))
+    with pytest.raises(InputError, match=r"nope\.csv: no such file; check the path"):
+        read_recording(tmp_path / "nope.csv")
+    with pytest.raises(InputError, match=r"--fs -5 must be a positive number"):
+        read_recording(write_text(tmp_path / "r.csv", "a\n1\n"), fs=-5)
+
+
+def test_csv_fast_and_slow_paths_agree(tmp_path, rng):
+    # Values over 16 decades, inf and nan go through the fast path; an empty cell in
+    # the last row sends the second file through the line-by-line path.
+    x = rng.standard_normal((300, 4)) * 10.0 ** rng.integers(-8, 8, (300, 4))
+    x[5, 2] = np.inf
+    x[9, 0] = np.nan
+    text = csv_text(["a", "b", "c", "d"], x)
+    fast = read_recording(write_text(tmp_path / "fast.csv", text), fs=1)
+    lines = text.splitlines()
+    lines[-1] = ",".join(lines[-1].split(",")[:3]) + ","
+    slow = read_recording(write_text(tmp_path / "slow.csv", "\n".join(lines) + "\n"), fs=1)
+    np.testing.assert_array_equal(fast.samples, x)
+    np.testing.assert_array_equal(slow.samples[:-1], x[:-1])
+    assert np.isnan(slow.samples[-1, 3])
+
+
+@pytest.mark.data
+def test_bidmc_csv_record():
+    path = BIDMC_DIR / "bidmc_01_Signals.csv.gz"
+    if not path.is_file():
+        pytest.skip(f"shared data not found: {path}")
+    rec = read_recording(path, channels=["PLETH", "II"])
+    # BIDMC SOURCE.md: 60001 samples per record at 125 Hz, t = 0 ... 480 s.
+    assert rec.samples.shape == (60001, 2)
+    assert rec.info.fs == pytest.approx(125.0, rel=1e-9)
+    assert rec.timestamps[0] == 0.0 and rec.timestamps[-1] == pytest.approx(480.0)
+    assert rec.info.channel_names == ["PLETH", "II"]
+    assert not np.isnan(rec.samples).any()  # SOURCE.md: no NaN in any Signals file
+
+
+# ---------------------------------------------------------------------------- WFDB
+
+
+@pytest.mark.data
+def test_wfdb_record_100_matches_the_wfdb_package():
+    wfdb = pytest.importorskip("wfdb")
+    if not (WFDB_DIR / "100.hea").is_file():
+        pytest.skip(f"shared data not found: {WFDB_DIR}")
+    rec = read_recording(WFDB_DIR / "100.hea")
+    reference = wfdb.rdrecord(str(WFDB_DIR / "100"))
+    # SOURCE.md of physionet_wfdb: 650000 samples, 2 channels MLII, V5, fs 360 Hz.
+    assert rec.samples.shape == (650000, 2)
+    assert rec.info.fs == 360.0
+    assert rec.info.channel_names == ["MLII", "V5"]
+    assert [c.unit for c in rec.info.channels] == ["mV", "mV"]
+    np.testing.assert_array_equal(rec.samples, reference.p_signal)
+    np.testing.assert_array_equal(rec.timestamps, np.arange(650000) / 360.0)
+
+    annotations = wfdb_reader.read_annotations(WFDB_DIR / "100.atr", 360.0)
+    ann = wfdb.rdann(str(WFDB_DIR / "100"), "atr")
+    assert len(annotations.samples) == 2274  # SOURCE.md: 2274 annotations
+    np.testing.assert_array_equal(annotations.samples, ann.sample)
+    is_beat = np.array([s != "+" for s in ann.symbol])
+    assert rec.events.keys() == {"atr"}
+    assert len(rec.events["atr"]) == 2273  # SOURCE.md: 2273 beats + 1 rhythm label '+'
+    np.testing.assert_array_equal(rec.events["atr"], ann.sample[is_beat] / 360.0)
+
+
+@pytest.mark.data
+def test_wfdb_record_can_be_named_by_dat_or_record_name():
+    if not (WFDB_DIR / "100.hea").is_file():
+        pytest.skip(f"shared data not found: {WFDB_DIR}")
+    by_dat = read_recording(WFDB_DIR / "100.dat", channels=["V5"])
+    by_name = read_recording(WFDB_DIR / "100", channels=["V5"])
+    np.testing.assert_array_equal(by_dat.samples, by_name.samples)
+    assert by_dat.info.source_id == "file:100.hea"
+
+
+def _write_by_hand(directory: Path, fmt: str, d: np.ndarray, gains, baselines) -> None:
+    """Formats the wfdb package reads but does not write: 61 and 160."""
+    n, n_sig = d.shape
+    raw = (d.astype(">i2") if fmt == "61" else (d + 32768).astype("<u2")).tobytes()
+    (directory / "rec.dat").write_bytes(raw)
+    lines = [f"rec {n_sig} 128 {n}"]
+    lines += [f"rec.dat {fmt} {g}({b})/mV 16 0 0 0 0 s{i}"
+              for i, (g, b) in enumerate(zip(gains, baselines))]
+    write_text(directory / "rec.hea", "\n".join(lines) + "\n")
+
+
+@pytest.mark.parametrize("fmt, n_sig", [("16", 2), ("61", 2), ("80", 3), ("160", 2),
+                                        ("212", 3), ("212", 2), ("24", 1), ("32", 2)])
+def test_wfdb_formats_match_the_wfdb_package(tmp_path, rng, fmt, n_sig):
+    wfdb = pytest.importorskip("wfdb")
+    bits = {"16": 16, "61": 16, "80": 8, "160": 16, "212": 12, "24": 24, "32": 32}[fmt]
+    low, high = -(1 << (bits - 1)) + 1, (1 << (bits - 1)) - 1
+    n = 1001  # odd: the last format-212 frame of an odd signal count ends mid-triplet
+    d = rng.integers(low, high + 1, (n, n_sig))
+    d[0] = low
+    d[1] = high
+    gains = [100.0 + i for i in range(n_sig)]
+    baselines = [7 * i for i in range(n_sig)]
+    if fmt in ("61", "160"):
+        _write_by_hand(tmp_path, fmt, d, gains, baselines)
+    else:
+        wfdb.wrsamp("rec", fs=128, units=["mV"] * n_sig,
+                    sig_name=[f"s{i}" for i in range(n_sig)], d_signal=d, fmt=[fmt] * n_sig,
+                    adc_gain=gains, baseline=baselines, write_dir=str(tmp_path))
+    rec = read_recording(tmp_path / "rec.hea")
+    reference = wfdb.rdrecord(str(tmp_path / "rec"))
+    assert rec.samples.shape == (n, n_sig)
+    assert rec.info.fs == 128.0
+    np.testing.assert_array_equal(rec.samples, reference.p_signal)
+    np.testing.assert_array_equal(rec.samples, (d - np.array(baselines)) / np.array(gains))
+    assert rec.events == {}
+
+
+def test_wfdb_invalid_marker_becomes_nan(tmp_path):
+    header = "rec 1 100 3\nrec.dat 16 200(0)/mV 16 0 0 0 0 x\n"
+    write_text(tmp_path / "rec.hea", header)
+    (tmp_path / "rec.dat").write_bytes(np.array([200, -32768, -400], "<i2").tobytes())
+    rec = read_recording(tmp_path / "rec.hea")
+    np.testing.assert_array_equal(rec.samples[:, 0], [1.0, np.nan, -2.0])
+
+
+def test_wfdb_truncated_dat_gives_the_complete_frames_with_a_warning(tmp_path, rng, caplog):
+    wfdb = pytest.importorskip("wfdb")
+    d = rng.integers(-2000, 2000, (500, 2))
+    wfdb.wrsamp("rec", fs=100, units=["mV", "mV"], sig_name=["a", "b"], d_signal=d,
+                fmt=["212", "212"], adc_gain=[200.0, 200.0], baseline=[0, 0],
+                write_dir=str(tmp_path))
+    dat = tmp_path / "rec.dat"
+    dat.write_bytes(dat.read_bytes()[: 3 * 300 + 2])  # 300 frames and a partial one
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(tmp_path / "rec.hea")
+    np.testing.assert_array_equal(rec.samples, d[:300] / 200.0)
+    assert "holds 300 of the 500 samples the header declares" in caplog.text
+
+
+def test_wfdb_checksum_mismatch_is_reported(tmp_path, rng, caplog):
+    wfdb = pytest.importorskip("wfdb")
+    d = rng.integers(-2000, 2000, (50, 1))
+    wfdb.wrsamp("rec", fs=100, units=["mV"], sig_name=["a"], d_signal=d, fmt=["16"],
+                adc_gain=[200.0], baseline=[0], write_dir=str(tmp_path))
+    dat = tmp_path / "rec.dat"
+    raw = bytearray(dat.read_bytes())
+    raw[10] ^= 0x01
+    dat.write_bytes(bytes(raw))
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        read_recording(tmp_path / "rec.hea")
+    assert "fails its header checksum" in caplog.text
+
+
+def test_wfdb_errors(tmp_path):
+    write_text(tmp_path / "a.hea", "a 1 100 10\na.dat 310 200 10 0 0 0 0 x\n")
+    with pytest.raises(InputError, match=r"a\.hea: line 2: signal format 310 is not "
+                                         r"supported; supported formats: 16, 61"):
+        read_recording(tmp_path / "a.hea")
+    write_text(tmp_path / "b.hea", "b 1 100 10\nb.dat 16 200 16 0 0 0 0 x\n")
+    with pytest.raises(InputError, match=r"b\.hea: signal file .*b\.dat is missing"):
+        read_recording(tmp_path / "b.hea")
+    write_text(tmp_path / "c.hea", "c 2 100 10\nc.dat 16 200 16 0 0 0 0 x\n")
+    with pytest.raises(InputError, match=r"declares 2 signals but has 1 signal lines"):
+        read_recording(tmp_path / "c.hea")
+    write_text(tmp_path / "d.hea", "d/2 2 100 10\nd_1 10\n")
+    with pytest.raises(InputError, match=r"multi-segment WFDB records are not supported"):
+        read_recording(tmp_path / "d.hea")
+    write_text(tmp_path / "e.hea", "e 1 100 10\n")
+    (tmp_path / "e.dat").write_bytes(b"")
+    with pytest.raises(InputError, match=r"declares 1 signals but has 0"):
+        read_recording(tmp_path / "e.hea")
+    write_text(tmp_path / "f.hea", "f 1 100 10\nf.dat 16 200 16 0 0 0 0 x\n")
+    (tmp_path / "f.dat").write_bytes(b"\x01")
+    with pytest.raises(InputError, match=r"holds no complete sample"):
+        read_recording(tmp_path / "f.hea")
+
+
+def test_wfdb_annotations_with_skips_aux_and_non_beats_match_the_wfdb_package(tmp_path, rng):
+    wfdb = pytest.importorskip("wfdb")
+    d = rng.integers(-100, 100, (200000, 1))
+    wfdb.wrsamp("rec", fs=250, units=["mV"], sig_name=["ecg"], d_signal=d, fmt=["16"],
+                adc_gain=[200.0], baseline=[0], write_dir=str(tmp_path))
+    # Gaps above 1023 samples need SKIP words; aux text needs AUX words.
+    sample = np.array([5, 300, 2000, 2001, 90000, 150000, 150010, 199999])
+    symbol = ["N", "+", "V", "~", "N", "A", "|", "/"]
+    aux = ["", "(AFIB", "", "", "odd", "", "", "x"]
+    wfdb.wrann("rec", "qrs", sample, symbol=symbol, aux_note=aux, write_dir=str(tmp_path))
+    ours = wfdb_reader.read_annotations(tmp_path / "rec.qrs", 250.0)
+    theirs = wfdb.rdann(str(tmp_path / "rec"), "qrs")
+    np.testing.assert_array_equal(ours.samples, theirs.sample)
+    rec = read_recording(tmp_path / "rec.hea", annotators=["qrs"])
+    beats = [s for s, sym in zip(sample, symbol) if sym in "NVA/"]
+    np.testing.assert_array_equal(rec.events["qrs"], np.array(beats) / 250.0)
+    with pytest.raises(InputError, match=r"annotation file .*rec\.xyz not found; check the "
+                                         r"annotator name 'xyz'"):
+        read_recording(tmp_path / "rec.hea", annotators=["xyz"])
+
+
+def test_wfdb_truncated_annotation_file_keeps_what_was_read(tmp_path, caplog):
+    # Hand-made MIT words: N at 10, N at +20, then the file ends without the 0 word.
+    words = np.array([(1 << 10) | 10, (1 << 10) | 20], dtype="<u2")
+    (tmp_path / "r.atr").write_bytes(words.tobytes())
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        ann = wfdb_reader.read_annotations(tmp_path / "r.atr", 100.0)
+    np.testing.assert_array_equal(ann.samples, [10, 30])
+    np.testing.assert_array_equal(ann.beat_times_s(), [0.1, 0.3])
+    assert "ends without its end marker" in caplog.text
+
+
+# ---------------------------------------------------------------------------- EDF
+
+
+PHYSICAL_MIN, PHYSICAL_MAX, DIGITAL_MIN, DIGITAL_MAX = -5.0, 5.0, -32768, 32767
+
+
+def write_edf(path: Path, digital: list[np.ndarray], labels: list[str], rates: list[int]):
+    """Write digital values, so that the physical values expected back are exact."""
+    from pyedflib import highlevel
+
+    headers = [highlevel.make_signal_header(label, dimension="mV", sample_frequency=rate,
+                                            physical_min=PHYSICAL_MIN,
+                                            physical_max=PHYSICAL_MAX,
+                                            digital_min=DIGITAL_MIN, digital_max=DIGITAL_MAX)
+               for label, rate in zip(labels, rates)]
+    highlevel.write_edf(str(path), [np.asarray(d, dtype=np.int32) for d in digital], headers,
+                        digital=True)
+
+
+def edf_physical(d: np.ndarray) -> np.ndarray:
+    # EDF specification (from memory): physical is linear in digital, the two ranges'
+    # end points corresponding.
+    scale = (PHYSICAL_MAX - PHYSICAL_MIN) / (DIGITAL_MAX - DIGITAL_MIN)
+    return PHYSICAL_MIN + (np.asarray(d, dtype=np.float64) - DIGITAL_MIN) * scale
+
+
+def test_edf_round_trip(tmp_path, rng):
+    pytest.importorskip("pyedflib")
+    d = [rng.integers(DIGITAL_MIN, DIGITAL_MAX + 1, 2560) for _ in range(2)]
+    write_edf(tmp_path / "r.edf", d, ["PPG", "ECG"], [256, 256])
+    rec = read_recording(tmp_path / "r.edf")
+    assert rec.info.channel_names == ["PPG", "ECG"]
+    assert rec.info.fs == 256.0
+    assert [c.unit for c in rec.info.channels] == ["mV", "mV"]
+    assert rec.info.source_id == "file:r.edf"
+    np.testing.assert_array_equal(rec.timestamps, np.arange(2560) / 256.0)
+    np.testing.assert_allclose(rec.samples, np.column_stack([edf_physical(x) for x in d]),
+                               rtol=1e-12, atol=1e-12)
+    only_ecg = read_recording(tmp_path / "r.edf", channels=["1"])
+    np.testing.assert_array_equal(only_ecg.samples[:, 0], rec.samples[:, 1])
+
+
+def test_edf_mixed_rates_resample_to_the_highest(tmp_path, rng, caplog):
+    pytest.importorskip("pyedflib")
+    fast = rng.integers(DIGITAL_MIN, DIGITAL_MAX + 1, 2560)
+    slow = rng.integers(DIGITAL_MIN, DIGITAL_MAX + 1, 320)
+    write_edf(tmp_path / "r.edf", [fast, slow], ["PPG", "ACC X"], [256, 32])
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(tmp_path / "r.edf")
+    assert "resampled ACC X (32 Hz) to 256 Hz by linear interpolation" in caplog.text
+    assert rec.samples.shape == (2560, 2)
+    assert rec.info.fs == 256.0
+    np.testing.assert_allclose(rec.samples[:, 0], edf_physical(fast), rtol=1e-12, atol=1e-12)
+    # Where the two time grids meet (every 8th fast sample) the slow channel is unchanged;
+    # half-way between it is the mean of its neighbours; past its last sample it is NaN.
+    slow_physical = edf_physical(slow)
+    np.testing.assert_allclose(rec.samples[::8, 1], slow_physical, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(rec.samples[4:-8:8, 1],
+                               (slow_physical[:-1] + slow_physical[1:]) / 2,
+                               rtol=1e-12, atol=1e-12)
+    assert np.isnan(rec.samples[-7:, 1]).all() and not np.isnan(rec.samples[:-7]).any()
+
+
+def test_edf_selected_channels_of_one_rate_are_not_resampled(tmp_path, rng, caplog):
+    pytest.importorskip("pyedflib")
+    fast = rng.integers(DIGITAL_MIN, DIGITAL_MAX + 1, 2560)
+    slow = rng.integers(DIGITAL_MIN, DIGITAL_MAX + 1, 320)
+    write_edf(tmp_path / "r.edf", [fast, slow, slow[::-1]], ["PPG", "ACC X", "ACC Y"],
+              [256, 32, 32])
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(tmp_path / "r.edf", channels=["ACC Y", "acc x"])
+    assert caplog.records == []
+    assert rec.info.fs == 32.0 and rec.info.channel_names == ["ACC Y", "ACC X"]
+    np.testing.assert_allclose(rec.samples, edf_physical(np.column_stack([slow[::-1], slow])),
+                               rtol=1e-12, atol=1e-12)
+    np.testing.assert_array_equal(rec.timestamps, np.arange(320) / 32.0)
+    with pytest.raises(InputError, match=r"r\.edf: no channel 'ACC Z'; channels are: PPG, "
+                                         r"ACC X, ACC Y$"):
+        read_recording(tmp_path / "r.edf", channels=["ACC Z"])
+
+
+def test_edf_truncated_or_garbage_is_refused(tmp_path, rng):
+    pytest.importorskip("pyedflib")
+    write_edf(tmp_path / "r.edf", [np.zeros(2560, dtype=int)], ["PPG"], [256])
+    raw = (tmp_path / "r.edf").read_bytes()
+    (tmp_path / "cut.edf").write_bytes(raw[:-700])
+    with pytest.raises(InputError, match=r"cut\.edf: EDF file is truncated \(\d+ of \d+ bytes"):
+        read_recording(tmp_path / "cut.edf")
+    (tmp_path / "junk.edf").write_bytes(b"not an edf file at all")
+    with pytest.raises(InputError, match=r"junk\.edf: too short for an EDF/BDF header"):
+        read_recording(tmp_path / "junk.edf")
+    (tmp_path / "junk2.edf").write_bytes(b"x" * 600)
+    with pytest.raises(InputError, match=r"junk2\.edf: malformed EDF/BDF header"):
+        read_recording(tmp_path / "junk2.edf")
+
+
+# ---------------------------------------------------------------------------- XDF
+# Files written here by hand following the XDF 1.0 specification (from memory): the
+# magic "XDF:", then chunks [NumLengthBytes][Length][Tag uint16][Content], Length
+# counting tag and content; tags 1 FileHeader, 2 StreamHeader, 3 Samples, 4 ClockOffset,
+# 6 StreamFooter; stream chunks start with a uint32 StreamId.
+
+
+def _varlen(n: int) -> bytes:
+    if n < 256:
+        return struct.pack("<BB", 1, n)
+    if n < 1 << 32:
+        return struct.pack("<BI", 4, n)
+    return struct.pack("<BQ", 8, n)
+
+
+def _chunk(tag: int, content: bytes) -> bytes:
+    return _varlen(len(content) + 2) + struct.pack("<H", tag) + content
+
+
+def _stream_header(stream_id: int, name: str, kind: str, fmt: str, srate: float,
+                   channels: list[tuple[str, str, str]]) -> bytes:
+    labels = "".join(f"<channel><label>{label}</label><type>{ctype}</type><unit>{unit}</unit>"
+                     f"</channel>" for label, ctype, unit in channels)
+    xml = (f'<?xml version="1.0"?><info><name>{name}</name><type>{kind}</type>'
+           f"<channel_count>{len(channels)}</channel_count><nominal_srate>{srate}"
+           f"</nominal_srate><channel_format>{fmt}</channel_format><created_at>0</created_at>"
+           f"<desc><channels>{labels}</channels></desc></info>")
+    return _chunk(2, struct.pack("<I", stream_id) + xml.encode())
+
+
+def _samples(stream_id: int, stamps, values, fmt: str) -> bytes:
+    body = struct.pack("<I", stream_id) + _varlen(len(values))
+    for stamp, row in zip(stamps, values):
+        body += b"\x00" if stamp is None else b"\x08" + struct.pack("<d", stamp)
+        if fmt == "string":
+            for cell in row:
+                raw = cell.encode()
+                body += _varlen(len(raw)) + raw
+        else:
+            body += np.asarray(row, dtype={"float32": "<f4", "double64": "<f8",
+                                           "int16": "<i2"}[fmt]).tobytes()
+    return _chunk(3, body)
+
+
+def _footer(stream_id: int, first: float, last: float, count: int) -> bytes:
+    xml = (f'<?xml version="1.0"?><info><first_timestamp>{first}</first_timestamp>'
+           f"<last_timestamp>{last}</last_timestamp><sample_count>{count}</sample_count>"
+           f"<clock_offsets></clock_offsets></info>")
+    return _chunk(6, struct.pack("<I", stream_id) + xml.encode())
+
+
+def write_xdf(path: Path, rng, clock_offset: float | None = None):
+    """Three streams: markers (strings), a 1-channel double stream and a 3-channel
+    float32 PPG stream at 100 Hz whose samples come in 4 chunks, one sample without a
+    timestamp. Returns the expected stamps and values of the PPG stream."""
+    n, fs = 400, 100.0
+    stamps = 1000.0 + np.arange(n) / fs + rng.uniform(-1e-3, 1e-3, n)
+    values = rng.standard_normal((n, 3)).astype(np.float32)
+    written = [float(s) for s in stamps]
+    written_or_none = list(written)
+    written_or_none[101] = None  # the reader deduces it: previous + 1/fs
+    stamps[101] = stamps[100] + 1 / fs
+    out = b"XDF:" + _chunk(1, b'<?xml version="1.0"?><info><version>1.0</version></info>')
+    out += _stream_header(1, "Markers", "Markers", "string", 0, [("event", "", "")])
+    out += _stream_header(2, "Temperature", "Temp", "double64", 1, [("temp", "", "C")])
+    out += _stream_header(3, "Wrist", "PPG", "float32", fs,
+                          [("green", "PPG", "au"), ("red", "", "au"), ("accx", "ACC", "g")])
+    out += _samples(1, [1000.5], [["start"]], "string")
+    out += _samples(2, [1000.0, 1001.0, 1002.0], [[36.5], [36.6], [36.7]], "double64")
+    for a in range(0, n, 100):
+        out += _samples(3, written_or_none[a:a + 100], values[a:a + 100], "float32")
+        if clock_offset is not None:
+            out += _chunk(4, struct.pack("<Idd", 3, 1000.0 + a / fs, clock_offset))
+    out += _footer(1, 1000.5, 1000.5, 1)
+    out += _footer(2, 1000.0, 1002.0, 3)
+    out += _footer(3, written[0], written[-1], n)
+    path.write_bytes(out)
+    return stamps, values
+
+
+def test_xdf_picks_the_numeric_stream_with_most_channels(tmp_path, rng, caplog):
+    pytest.importorskip("pyxdf")
+    stamps, values = write_xdf(tmp_path / "r.xdf", rng)
+    with caplog.at_level(logging.WARNING):
+        rec = read_recording(tmp_path / "r.xdf")
+    assert caplog.records == []  # an intact file reads without any warning
+    assert rec.info.channel_names == ["green", "red", "accx"]
+    assert [c.kind for c in rec.info.channels] == ["ppg", "ppg", "acc"]  # stream type PPG
+    assert [c.unit for c in rec.info.channels] == ["au", "au", "g"]
+    assert rec.info.fs == 100.0
+    assert rec.info.source_id == "file:r.xdf"
+    np.testing.assert_array_equal(rec.samples, values.astype(np.float64))
+    np.testing.assert_allclose(rec.timestamps, stamps, rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(np.delete(rec.timestamps, 101), np.delete(stamps, 101))
+
+
+def test_xdf_stream_by_name_and_unknown_stream(tmp_path, rng):
+    pytest.importorskip("pyxdf")
+    write_xdf(tmp_path / "r.xdf", rng)
+    rec = read_recording(tmp_path / "r.xdf", stream="Temperature")
+    np.testing.assert_array_equal(rec.samples[:, 0], [36.5, 36.6, 36.7])
+    np.testing.assert_array_equal(rec.timestamps, [1000.0, 1001.0, 1002.0])
+    assert rec.info.channel_names == ["temp"] and rec.info.channels[0].kind is None
+    with pytest.raises(InputError, match=r"r\.xdf: no stream named 'EEG'; streams are: "
+                                         r"Markers \(type Markers, 1 x string, 1 samples\); "
+                                         r"Temperature"):
+        read_recording(tmp_path / "r.xdf", stream="EEG")
+    with pytest.raises(InputError, match=r"stream 'Markers' holds no numeric samples"):
+        read_recording(tmp_path / "r.xdf", stream="Markers")
+
+
+def test_xdf_clock_offsets_are_applied(tmp_path, rng):
+    pytest.importorskip("pyxdf")
+    stamps, _ = write_xdf(tmp_path / "r.xdf", rng, clock_offset=0.25)
+    rec = read_recording(tmp_path / "r.xdf")
+    np.testing.assert_allclose(rec.timestamps, stamps + 0.25, rtol=0, atol=1e-9)
+
+
+def test_xdf_truncated_file_keeps_complete_chunks_with_a_warning(tmp_path, rng, caplog):
+    pytest.importorskip("pyxdf")
+    stamps, values = write_xdf(tmp_path / "r.xdf", rng)
+    raw = (tmp_path / "r.xdf").read_bytes()
+    # Cut inside the last PPG samples chunk: samples 300-399 are lost with it.
+    last_chunk = raw.rfind(b"\x03\x00\x03\x00\x00\x00") - 5  # [4][uint32 length][tag 3][id 3]
+    cut = last_chunk + 200
+    (tmp_path / "cut.xdf").write_bytes(raw[:cut])
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(tmp_path / "cut.xdf")
+    np.testing.assert_array_equal(rec.samples, values[:300].astype(np.float64))
+    np.testing.assert_array_equal(rec.timestamps[:100], stamps[:100])
+    assert f"cut.xdf: XDF file ends inside a chunk at byte {last_chunk} of {cut}" in caplog.text
+    assert "cut.xdf: XDF file looks truncated or damaged (no stream footer)" in caplog.text
+    assert "using the 300 samples of stream 'Wrist'" in caplog.text
+
+
+def test_xdf_cut_anywhere_gives_a_clean_prefix_or_an_input_error(tmp_path, rng):
+    pytest.importorskip("pyxdf")
+    stamps, values = write_xdf(tmp_path / "r.xdf", rng)
+    raw = (tmp_path / "r.xdf").read_bytes()
+    for cut in range(4, len(raw), 97):
+        (tmp_path / "cut.xdf").write_bytes(raw[:cut])
+        try:
+            rec = read_recording(tmp_path / "cut.xdf")
+        except InputError:
+            continue
+        # Whatever is returned is a prefix of the PPG stream or of the 1-channel stream.
+        n = len(rec.timestamps)
+        if rec.info.channel_names == ["green", "red", "accx"]:
+            np.testing.assert_array_equal(rec.samples, values[:n].astype(np.float64))
+        else:
+            np.testing.assert_array_equal(rec.samples[:, 0], [36.5, 36.6, 36.7][:n])
+
+
+def test_xdfz_and_malformed_chunk(tmp_path, rng, caplog):
+    pytest.importorskip("pyxdf")
+    stamps, values = write_xdf(tmp_path / "r.xdf", rng)
+    raw = (tmp_path / "r.xdf").read_bytes()
+    (tmp_path / "r.xdfz").write_bytes(gzip.compress(raw))
+    rec = read_recording(tmp_path / "r.xdfz")
+    np.testing.assert_array_equal(rec.samples, values.astype(np.float64))
+    # A NumLengthBytes of 3 is not allowed: reading stops before that chunk.
+    last_chunk = raw.rfind(b"\x03\x00\x03\x00\x00\x00") - 5
+    broken = raw[:last_chunk] + b"\x03" + raw[last_chunk + 1:]
+    (tmp_path / "broken.xdf").write_bytes(broken)
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(tmp_path / "broken.xdf")
+    assert f"XDF file has a malformed chunk at byte {last_chunk}" in caplog.text
+    np.testing.assert_array_equal(rec.samples, values[:300].astype(np.float64))
+
+
+def test_xdf_not_xdf_is_refused(tmp_path):
+    pytest.importorskip("pyxdf")
+    (tmp_path / "r.xdf").write_bytes(b"RIFF....")
+    with pytest.raises(InputError, match=r"r\.xdf: cannot read as XDF \(no 'XDF:' magic at "
+                                         r"the start\); the file is not XDF"):
+        read_recording(tmp_path / "r.xdf")
+    (tmp_path / "r.xdfz").write_bytes(b"XDF:....")
+    with pytest.raises(InputError, match=r"r\.xdfz: cannot read: Not a gzipped file"):
+        read_recording(tmp_path / "r.xdfz")
+
+
+def test_xdf_without_numeric_streams_is_refused(tmp_path):
+    pytest.importorskip("pyxdf")
+    out = b"XDF:" + _chunk(1, b'<?xml version="1.0"?><info><version>1.0</version></info>')
+    out += _stream_header(1, "Markers", "Markers", "string", 0, [("event", "", "")])
+    out += _samples(1, [1.0], [["go"]], "string")
+    out += _footer(1, 1.0, 1.0, 1)
+    (tmp_path / "m.xdf").write_bytes(out)
+    with pytest.raises(InputError, match=r"m\.xdf: no stream with numeric samples; streams "
+                                         r"are: Markers"):
+        read_recording(tmp_path / "m.xdf")
+
+
+def test_xdf_irregular_stream_rate_from_median_step(tmp_path):
+    pytest.importorskip("pyxdf")
+    stamps = [10.0, 10.5, 11.0, 11.6, 12.1]
+    out = b"XDF:" + _chunk(1, b'<?xml version="1.0"?><info><version>1.0</version></info>')
+    out += _stream_header(1, "HR", "misc", "int16", 0, [("", "", "")])
+    out += _samples(1, stamps, [[k] for k in range(5)], "int16")
+    out += _footer(1, 10.0, 12.1, 5)
+    (tmp_path / "i.xdf").write_bytes(out)
+    rec = read_recording(tmp_path / "i.xdf")
+    assert rec.info.fs == pytest.approx(2.0)
+    assert rec.info.channel_names == ["ch0"]
+    np.testing.assert_array_equal(rec.samples[:, 0], np.arange(5.0))
+

@@ -180,3 +180,178 @@ def squeeze_column(magnitude, target_bins, out):
             i = int(np.floor(t + 0.5))
             if 0 <= i < n_bins:
                 out[i] += magnitude[f]
+
+
+@kernel
+def sos_filter(sos, x, zi, out):
+    """Second-order sections, transposed direct form II, state ``zi`` (S, 2) updated in
+    place; the same recursion as ``scipy.signal.sosfilt`` (which the tests compare)."""
+    n_sections = sos.shape[0]
+    for k in range(x.shape[0]):
+        v = x[k]
+        for s in range(n_sections):
+            y = sos[s, 0] * v + zi[s, 0]
+            zi[s, 0] = sos[s, 1] * v - sos[s, 4] * y + zi[s, 1]
+            zi[s, 1] = sos[s, 2] * v - sos[s, 5] * y
+            v = y
+        out[k] = v
+
+
+@kernel
+def preprocess_chunk(x, t, sos_pre, zi_pre, envelope, sos_post, zi_post, scalars,
+                     decimation, min_run, out_values, out_times, out_nonfinite, out_stuck):
+    """The whole causal pre-processing of one chunk in one pass.
+
+    Per raw sample: non-finite values are held at the last finite one and counted;
+    runs of identical finite values of ``min_run`` samples or more are counted as stuck;
+    the sample goes through the ``sos_pre`` cascade, optionally the squared first
+    difference (``envelope``) and the ``sos_post`` cascade; every ``decimation``-th
+    sample (raw index ``j M + M - 1``) is written out with its timestamp and the running
+    counts. ``scalars`` carries ``[last_filtered, last_finite, stuck_value, stuck_run,
+    count, cum_nonfinite, cum_stuck]`` between chunks. Returns the number written.
+    """
+    last_filtered = scalars[0]
+    last_finite = scalars[1]
+    stuck_value = scalars[2]
+    stuck_run = scalars[3]
+    count = int(scalars[4])
+    cum_nf = scalars[5]
+    cum_st = scalars[6]
+    n_pre = sos_pre.shape[0]
+    n_post = sos_post.shape[0]
+    n_out = 0
+    for k in range(x.shape[0]):
+        v = x[k]
+        if np.isfinite(v):
+            last_finite = v
+            if v == stuck_value:
+                stuck_run += 1.0
+            else:
+                stuck_run = 1.0
+            stuck_value = v
+            if stuck_run >= min_run:
+                cum_st += 1.0
+        else:
+            cum_nf += 1.0
+            v = last_finite
+            stuck_value = np.nan
+            stuck_run = 0.0
+        for s in range(n_pre):
+            y = sos_pre[s, 0] * v + zi_pre[s, 0]
+            zi_pre[s, 0] = sos_pre[s, 1] * v - sos_pre[s, 4] * y + zi_pre[s, 1]
+            zi_pre[s, 1] = sos_pre[s, 2] * v - sos_pre[s, 5] * y
+            v = y
+        if envelope:
+            d = v - last_filtered
+            last_filtered = v
+            v = d * d
+        for s in range(n_post):
+            y = sos_post[s, 0] * v + zi_post[s, 0]
+            zi_post[s, 0] = sos_post[s, 1] * v - sos_post[s, 4] * y + zi_post[s, 1]
+            zi_post[s, 1] = sos_post[s, 2] * v - sos_post[s, 5] * y
+            v = y
+        if count % decimation == decimation - 1:
+            out_values[n_out] = v
+            out_times[n_out] = t[k]
+            out_nonfinite[n_out] = cum_nf
+            out_stuck[n_out] = cum_st
+            n_out += 1
+        count += 1
+    scalars[0] = last_filtered
+    scalars[1] = last_finite
+    scalars[2] = stuck_value
+    scalars[3] = stuck_run
+    scalars[4] = count
+    scalars[5] = cum_nf
+    scalars[6] = cum_st
+    return n_out
+
+
+@kernel
+def track_block(spectra, readout, weights, alpha, transition, mix, power, floor, halfwidth,
+                out_position, out_confidence, out_concentration):
+    """Forward filter plus read-out for several hops in one call (the live hot path).
+
+    For each hop: the emission ``floor + (S / max S) ** power`` tempered by
+    ``weights[p]``, one forward step (as :func:`forward_filter`), then
+
+    * ``out_confidence[p]``: posterior mass within ``halfwidth`` bins of the mode;
+    * ``out_position[p]``: fractional bin of the highest ``readout`` peak within
+      ``halfwidth`` of the mode, refined by parabolic interpolation (the mode itself
+      when ``readout`` is empty there);
+    * ``out_concentration[p]``: fraction of the band energy of ``spectra`` within
+      ``halfwidth`` bins of that position.
+
+    ``alpha`` (F,) is updated in place.
+    """
+    n_hops, n_bins = spectra.shape
+    half = (transition.shape[0] - 1) // 2
+    prior = np.empty(n_bins)
+    for p in range(n_hops):
+        peak_s = 0.0
+        for f in range(n_bins):
+            v = spectra[p, f]
+            if np.isfinite(v) and v > peak_s:
+                peak_s = v
+        for f in range(n_bins):
+            acc = 0.0
+            lo = f - half
+            for j in range(transition.shape[0]):
+                g = lo + j
+                if 0 <= g < n_bins:
+                    acc += transition[j] * alpha[g]
+            prior[f] = (1.0 - mix) * acc + mix / n_bins
+        w = weights[p]
+        total = 0.0
+        for f in range(n_bins):
+            v = spectra[p, f]
+            rel = v / peak_s if (peak_s > 0.0 and np.isfinite(v)) else 0.0
+            e = floor + rel ** power
+            if w != 1.0:
+                e = e ** w
+            alpha[f] = prior[f] * e
+            total += alpha[f]
+        if total > 0.0 and np.isfinite(total):
+            for f in range(n_bins):
+                alpha[f] /= total
+        else:
+            for f in range(n_bins):
+                alpha[f] = prior[f]
+        mode = 0
+        for f in range(1, n_bins):
+            if alpha[f] > alpha[mode]:
+                mode = f
+        conf = 0.0
+        best = -1
+        best_v = -np.inf
+        for f in range(n_bins):
+            if abs(f - mode) <= halfwidth:
+                conf += alpha[f]
+                if readout[p, f] > best_v:
+                    best_v = readout[p, f]
+                    best = f
+        position = float(mode)
+        if best_v > 0.0:
+            position = float(best)
+            if 0 < best < n_bins - 1:
+                left = readout[p, best - 1]
+                right = readout[p, best + 1]
+                denom = left - 2.0 * best_v + right
+                if denom < 0.0:
+                    delta = 0.5 * (left - right) / denom
+                    if delta > 0.5:
+                        delta = 0.5
+                    elif delta < -0.5:
+                        delta = -0.5
+                    position += delta
+        near = 0.0
+        band = 0.0
+        for f in range(n_bins):
+            v = spectra[p, f]
+            if np.isfinite(v):
+                band += v
+                if abs(f - position) <= halfwidth:
+                    near += v
+        out_position[p] = position
+        out_confidence[p] = min(1.0, max(0.0, conf))
+        out_concentration[p] = near / band if band > 0.0 else 0.0

@@ -87,15 +87,14 @@ def column_spectra(columns: Columns, grid: deshape_mod.DeshapeGrid,
     return band, band
 
 
-def window_integrity(columns: Columns, cum_nonfinite, cum_stuck, decimation: int) -> np.ndarray:
-    """Integrity per column from running counts indexed by analysis-sample count."""
+def window_integrity(columns: Columns, decimation: int) -> np.ndarray:
+    """Integrity per column from the running counts of non-finite and stuck raw samples
+    carried beside the frames (``aux`` rows 0 and 1)."""
     if len(columns) == 0:
         return np.empty(0)
-    first, last = columns.first_count, columns.last_count
-    raw = (last - first) * decimation
-    nf = cum_nonfinite(last) - cum_nonfinite(first)
-    st = cum_stuck(last) - cum_stuck(first)
-    return quality_mod.integrity(nf / raw, st / raw)
+    raw = (columns.last_count - columns.first_count) * decimation
+    flagged = columns.aux_last - columns.aux_before
+    return quality_mod.integrity(flagged[0] / raw, flagged[1] / raw)
 
 
 class ChannelPath:
@@ -108,30 +107,16 @@ class ChannelPath:
         self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation)
         self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen)
         self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.band_hz)
-        self._cum = np.zeros((0, 2))
 
     def reset(self) -> None:
         self.pre.reset()
         self.stft.reset()
-        self._cum = np.zeros((0, 2))
 
     def update(self, x: np.ndarray, t: np.ndarray) -> HopBlock:
         analysis = self.pre.update(x, t)
-        before = self.stft.count
-        columns = self.stft.update(analysis.values, analysis.timestamps)
-        cum = np.concatenate((self._cum, np.column_stack(
-            (analysis.cum_nonfinite, analysis.cum_stuck))))
-        offset = before - len(self._cum)  # count of the sample before cum[0]
-
-        def lookup(col):
-            def at(count):
-                idx = count - 1 - offset
-                return np.where(count > 0, cum[np.maximum(idx, 0), col], 0.0)
-            return at
-
-        integrity = window_integrity(columns, lookup(0), lookup(1), self.geometry.decimation)
-        keep = min(len(cum), self.geometry.window + 1)
-        self._cum = cum[len(cum) - keep:].copy()
+        columns = self.stft.update(analysis.values, analysis.timestamps,
+                                   (analysis.cum_nonfinite, analysis.cum_stuck))
+        integrity = window_integrity(columns, self.geometry.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
         return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude)
 
@@ -141,13 +126,9 @@ class ChannelPath:
         analysis: Analysis = preprocess_batch(x, t, self.pre.chain, g.decimation,
                                               self.pre.min_run, zero_phase)
         columns = stft_batch(analysis.values, analysis.timestamps, g.window, g.min_window,
-                             g.hop, g.n_fft, self.settings.sharpen)
-
-        def lookup(arr):
-            return lambda count: np.where(count > 0, arr[np.maximum(count - 1, 0)], 0.0)
-
-        integrity = window_integrity(columns, lookup(analysis.cum_nonfinite),
-                                     lookup(analysis.cum_stuck), g.decimation)
+                             g.hop, g.n_fft, self.settings.sharpen,
+                             (analysis.cum_nonfinite, analysis.cum_stuck))
+        integrity = window_integrity(columns, g.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
         return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude)
 
@@ -182,17 +163,24 @@ def fuse_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
 
 def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.ndarray,
                          confidence: np.ndarray, rates_grid: np.ndarray,
-                         settings: RateSettings, emitted_s: np.ndarray) -> list[Estimate]:
-    """Estimate records from tracker output aligned with ``block`` (same hops)."""
+                         settings: RateSettings, emitted_s: np.ndarray,
+                         concentration: np.ndarray | None = None) -> list[Estimate]:
+    """Estimate records from tracker output aligned with ``block`` (same hops).
+
+    ``concentration`` is the fraction of band energy near each rate; computed here
+    when not given."""
     step = rates_grid[1] - rates_grid[0]
     halfwidth = settings.confidence_halfwidth_per_min / step
-    centre = (rate - rates_grid[0]) / step
-    conc = quality_mod.concentration(block.spectra, centre, halfwidth)
+    if concentration is None:
+        concentration = quality_mod.concentration_fraction(
+            block.spectra, (rate - rates_grid[0]) / step, halfwidth)
+    conc = quality_mod.concentration_score(concentration, halfwidth, len(rates_grid))
     quality = quality_mod.quality_index(block.integrity, conc)
     withheld = (quality < settings.min_quality) | ~np.isfinite(rate)
     shown = np.where(withheld, np.nan, rate)
-    return [Estimate(quantity, source, float(t), float(e), float(r), float(c), float(q))
-            for t, e, r, c, q in zip(block.time_s, emitted_s, shown, confidence, quality)]
+    return [Estimate(quantity, source, t, e, r, c, q) for t, e, r, c, q in zip(
+        block.time_s.tolist(), emitted_s.tolist(), shown.tolist(), confidence.tolist(),
+        quality.tolist())]
 
 
 class _Output:
@@ -217,11 +205,12 @@ class _Output:
     def update(self, block: HopBlock) -> list[Estimate]:
         if len(block) == 0:
             return []
-        rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         lag = self.settings.lag_hops
         if lag == 0:
+            rate, conf, frac = self.tracker.track(block.spectra, block.integrity, block.magnitude)
             return estimates_from_track(self.quantity, self.source, block, rate, conf,
-                                        self.rates, self.settings, block.emitted_s)
+                                        self.rates, self.settings, block.emitted_s, frac)
+        rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
         self._held.append(block)
         held = concat_blocks(self._held)

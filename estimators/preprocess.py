@@ -79,24 +79,29 @@ def design_chain(kind: str, quantity: str, fs: float, fs_analysis: float) -> Fil
 
 @dataclass
 class PreprocessState:
-    """Everything carried between chunks (the ``zi`` of the whole chain)."""
+    """Everything carried between chunks: the ``zi`` of both filter stages and the
+    scalars of :func:`estimators._kernels.preprocess_chunk` (last filtered value, last
+    finite value, value and length of the current run, raw samples seen, running counts
+    of non-finite and stuck samples)."""
 
     zi_pre: np.ndarray
-    zi_post: np.ndarray | None
-    last_filtered: float
-    last_finite: float
-    stuck_value: float
-    stuck_run: int
-    count: int  # raw samples seen
-    cum_nonfinite: float
-    cum_stuck: float
+    zi_post: np.ndarray
+    scalars: np.ndarray
+
+    @property
+    def count(self) -> int:
+        return int(self.scalars[4])
 
 
 def initial_state(chain: FilterChain) -> PreprocessState:
     """Starting state: filters at rest, nothing seen (like ``sosfilt_zi`` times 0)."""
     zi_pre = np.zeros((chain.pre.shape[0], 2))
-    zi_post = None if chain.post is None else np.zeros((chain.post.shape[0], 2))
-    return PreprocessState(zi_pre, zi_post, 0.0, 0.0, np.nan, 0, 0, 0.0, 0.0)
+    zi_post = np.zeros((0 if chain.post is None else chain.post.shape[0], 2))
+    scalars = np.array([0.0, 0.0, np.nan, 0.0, 0.0, 0.0, 0.0])
+    return PreprocessState(zi_pre, zi_post, scalars)
+
+
+_NO_SECTIONS = np.zeros((0, 6))
 
 
 @dataclass(frozen=True)
@@ -113,39 +118,9 @@ class Analysis:
     cum_stuck: np.ndarray
 
 
-def _flags_and_fill(state: PreprocessState, x: np.ndarray, min_run: int):
-    finite = np.isfinite(x)
-    nonfinite = (~finite).astype(np.float64)
-    filled = x.copy()
-    if not finite.all():
-        # Hold the last finite value: keeps filters bounded and the step visible as flat.
-        idx = np.where(finite, np.arange(len(x)), -1)
-        np.maximum.accumulate(idx, out=idx)
-        filled = np.where(idx >= 0, x[np.maximum(idx, 0)], state.last_finite)
-    if finite.any():
-        state.last_finite = float(x[finite][-1])
-    stuck = np.empty(len(x))
-    raw = np.where(finite, x, np.nan)  # NaN never equals NaN: non-finite breaks runs
-    state.stuck_run = int(_kernels.stuck_runs(raw, state.stuck_value, state.stuck_run,
-                                              min_run, stuck))
-    state.stuck_value = float(raw[-1])
-    return filled, nonfinite, stuck
-
-
-def _apply_chain(chain: FilterChain, state: PreprocessState, x: np.ndarray) -> np.ndarray:
-    y, state.zi_pre = signal.sosfilt(chain.pre, x, zi=state.zi_pre)
-    if chain.envelope:
-        prev = np.concatenate(([state.last_filtered], y[:-1]))
-        state.last_filtered = float(y[-1])
-        y = (y - prev) ** 2
-    if chain.post is not None:
-        y, state.zi_post = signal.sosfilt(chain.post, y, zi=state.zi_post)
-    return y
-
-
 def preprocess_step(state: PreprocessState, x: np.ndarray, t: np.ndarray, chain: FilterChain,
                     decimation: int, min_run: int) -> tuple[PreprocessState, Analysis]:
-    """Filter one chunk and keep the analysis samples it completes.
+    """Filter one chunk and keep the analysis samples it completes (one compiled pass).
 
     Parameters
     ----------
@@ -155,39 +130,48 @@ def preprocess_step(state: PreprocessState, x: np.ndarray, t: np.ndarray, chain:
     decimation : integer factor ``M``.
     min_run : identical samples in a row before samples count as stuck.
     """
-    n = len(x)
-    if n == 0:
-        empty = np.empty(0)
-        return state, Analysis(empty, empty, empty, empty)
-    filled, nonfinite, stuck = _flags_and_fill(state, x, min_run)
-    y = _apply_chain(chain, state, filled)
-    k0 = state.count
-    cum_nf = state.cum_nonfinite + np.cumsum(nonfinite)
-    cum_st = state.cum_stuck + np.cumsum(stuck)
-    state.cum_nonfinite = float(cum_nf[-1])
-    state.cum_stuck = float(cum_st[-1])
-    state.count = k0 + n
-    first = (decimation - 1 - k0) % decimation
-    keep = slice(first, n, decimation)
-    return state, Analysis(y[keep], t[keep], cum_nf[keep], cum_st[keep])
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    t = np.ascontiguousarray(t, dtype=np.float64)
+    n_max = (len(x) + decimation - 1) // decimation + 1
+    out = np.empty((4, n_max))
+    n_out = _kernels.preprocess_chunk(
+        x, t, chain.pre, state.zi_pre, bool(chain.envelope),
+        _NO_SECTIONS if chain.post is None else chain.post, state.zi_post, state.scalars,
+        int(decimation), float(min_run), out[0], out[1], out[2], out[3])
+    return state, Analysis(out[0, :n_out], out[1, :n_out], out[2, :n_out], out[3, :n_out])
+
+
+def _stuck_flags(x: np.ndarray, finite: np.ndarray, min_run: int) -> np.ndarray:
+    """Plain numpy twin of the run counting: lengths of runs of equal finite values."""
+    raw = np.where(finite, x, np.nan)
+    same = np.concatenate(([False], raw[1:] == raw[:-1]))
+    run_id = np.cumsum(~same)
+    starts = np.flatnonzero(~same)
+    position = np.arange(len(x)) - starts[run_id - 1] + 1
+    return ((position >= min_run) & finite).astype(np.float64)
 
 
 def preprocess_batch(x: np.ndarray, t: np.ndarray, chain: FilterChain, decimation: int,
                      min_run: int, zero_phase: bool = False) -> Analysis:
-    """The whole record at once: causal (equal to any chunking of
-    :func:`preprocess_step`) or, with ``zero_phase``, forward-backward filtered for the
-    offline twin."""
-    state = initial_state(chain)
-    if not zero_phase:
-        return preprocess_step(state, x, t, chain, decimation, min_run)[1]
-    filled, nonfinite, stuck = _flags_and_fill(state, x, min_run)
-    y = signal.sosfiltfilt(chain.pre, filled)
-    if chain.envelope:
-        y = np.diff(y, prepend=y[0]) ** 2
-    if chain.post is not None:
-        y = signal.sosfiltfilt(chain.post, y)
+    """The whole record at once with scipy's filters: causal (``sosfilt``, the batch twin
+    of :func:`preprocess_step`) or, with ``zero_phase``, forward-backward
+    (``sosfiltfilt``) for the offline twin."""
+    x = np.asarray(x, dtype=np.float64)
+    finite = np.isfinite(x)
+    idx = np.where(finite, np.arange(len(x)), -1)
+    np.maximum.accumulate(idx, out=idx)
+    filled = np.where(idx >= 0, x[np.maximum(idx, 0)], 0.0)
+    nonfinite = (~finite).astype(np.float64)
+    stuck = _stuck_flags(x, finite, min_run)
+    filt = signal.sosfiltfilt if zero_phase else signal.sosfilt
+    y = filt(chain.pre, filled) if len(x) else filled
+    if chain.envelope and len(x):
+        y = np.diff(y, prepend=y[0] if zero_phase else 0.0) ** 2
+    if chain.post is not None and len(x):
+        y = filt(chain.post, y)
     keep = slice(decimation - 1, len(x), decimation)
-    return Analysis(y[keep], t[keep], np.cumsum(nonfinite)[keep], np.cumsum(stuck)[keep])
+    return Analysis(y[keep], np.asarray(t, dtype=np.float64)[keep],
+                    np.cumsum(nonfinite)[keep], np.cumsum(stuck)[keep])
 
 
 class Preprocessor:

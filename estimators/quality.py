@@ -36,20 +36,32 @@ def integrity(nonfinite_fraction: np.ndarray, stuck_fraction: np.ndarray) -> np.
     return finite * unstuck
 
 
-def concentration(spectra: np.ndarray, centre_bins: np.ndarray, halfwidth_bins: float) -> np.ndarray:
-    """Rescaled fraction of each hop's band energy near ``centre_bins`` (P,) (float bins;
-    NaN centres give 0)."""
+def concentration_fraction(spectra: np.ndarray, centre_bins: np.ndarray,
+                           halfwidth_bins: float) -> np.ndarray:
+    """Fraction of each hop's band energy within ``halfwidth_bins`` of ``centre_bins``
+    (P,) (float bins; NaN centres give 0)."""
     spectra = np.atleast_2d(spectra)
-    n_hops, n_bins = spectra.shape
-    idx = np.arange(n_bins)
+    idx = np.arange(spectra.shape[1])
     centre = np.nan_to_num(np.asarray(centre_bins, dtype=np.float64), nan=-1e9)
     near = np.abs(idx[None, :] - centre[:, None]) <= halfwidth_bins
     total = spectra.sum(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
-        frac = np.where(total > 0, (spectra * near).sum(axis=1) / total, 0.0)
+        return np.where(total > 0, (spectra * near).sum(axis=1) / total, 0.0)
+
+
+def concentration_score(fraction: np.ndarray, halfwidth_bins: float, n_bins: int) -> np.ndarray:
+    """Rescale a concentration fraction: the level of a flat spectrum maps to 0,
+    :data:`CONCENTRATION_FULL` or more to 1."""
     chance = min(1.0, (2.0 * halfwidth_bins + 1.0) / n_bins)
-    scaled = (frac - chance) / max(CONCENTRATION_FULL - chance, 1e-9)
+    scaled = (np.asarray(fraction) - chance) / max(CONCENTRATION_FULL - chance, 1e-9)
     return np.clip(scaled, 0.0, 1.0)
+
+
+def concentration(spectra: np.ndarray, centre_bins: np.ndarray, halfwidth_bins: float) -> np.ndarray:
+    """Rescaled fraction of each hop's band energy near ``centre_bins`` (P,)."""
+    spectra = np.atleast_2d(spectra)
+    return concentration_score(concentration_fraction(spectra, centre_bins, halfwidth_bins),
+                               halfwidth_bins, spectra.shape[1])
 
 
 def quality_index(integrity_part: np.ndarray, concentration_part: np.ndarray) -> np.ndarray:

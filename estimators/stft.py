@@ -36,7 +36,9 @@ class Columns:
     ``spectra`` (P, n_fft // 2 + 1) complex; ``spectra_dw`` the same with the window's
     time derivative (for reassignment), or None; ``time_s`` and ``emitted_s`` (P,);
     ``first_count`` and ``last_count`` (P,) the analysis-sample counts the frames
-    span, ``(first, last]``.
+    span, ``(first, last]``. ``aux_before`` and ``aux_last`` (A, P) hold the values of
+    carried auxiliary series (running counts) at the sample just before each frame (0
+    when the frame starts at the first sample) and at its last sample.
     """
 
     spectra: np.ndarray
@@ -45,6 +47,8 @@ class Columns:
     emitted_s: np.ndarray
     first_count: np.ndarray
     last_count: np.ndarray
+    aux_before: np.ndarray | None = None
+    aux_last: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.time_s)
@@ -110,9 +114,10 @@ class SlidingSTFT:
 
     def __init__(self, window_samples: int, min_window_samples: int, hop_samples: float,
                  n_fft: int, with_derivative: bool = False):
-        if not 1 <= min_window_samples <= window_samples:
+        # A periodic Hann of one sample is all zero, so frames need at least two.
+        if not 2 <= min_window_samples <= window_samples:
             raise ParameterError(
-                f"min_window_samples={min_window_samples} must be in [1, {window_samples}]")
+                f"min_window_samples={min_window_samples} must be in [2, {window_samples}]")
         if n_fft < window_samples:
             raise ParameterError(f"n_fft={n_fft} must be >= window_samples={window_samples}")
         if hop_samples <= 0:
@@ -124,51 +129,79 @@ class SlidingSTFT:
 
     def reset(self) -> None:
         self.count = 0
-        self._values = np.empty(0)
-        self._times = np.empty(0)
+        self._rows = 0  # 2 + number of auxiliary series, fixed at the first update
+        self._buf = np.empty((0, 0))
+        self._len = 0
 
-    def update(self, values: np.ndarray, times: np.ndarray) -> Columns:
-        """Append analysis samples; return the columns of the hops they complete."""
+    def _append(self, rows: list) -> None:
+        n = len(rows[0])
+        if self._buf.shape[0] != len(rows):
+            if self.count:
+                raise ParameterError("the number of auxiliary series must not change")
+            self._buf = np.empty((len(rows), 2 * self.m + 256))
+            self._len = 0
+        if self._len + n > self._buf.shape[1]:
+            keep = min(self._len, self.m + 1)
+            cap = max(self._buf.shape[1], 2 * (keep + n))
+            buf = np.empty((len(rows), cap))
+            buf[:, :keep] = self._buf[:, self._len - keep:self._len]
+            self._buf, self._len = buf, keep
+        for i, row in enumerate(rows):
+            self._buf[i, self._len:self._len + n] = row
+        self._len += n
+
+    def update(self, values: np.ndarray, times: np.ndarray, aux=()) -> Columns:
+        """Append analysis samples (and auxiliary series of the same length); return the
+        columns of the hops they complete."""
         before = self.count
+        self._append([values, times, *aux])
         self.count += len(values)
-        ext_v = np.concatenate((self._values, values))
-        ext_t = np.concatenate((self._times, times))
-        offset = before - len(self._values)  # count of samples before ext_v[0]
-        counts = hop_counts(before, self.count, self.hop)
-        counts = counts[counts >= self.m_min]
-        frames, first = [], []
-        for c in counts:
-            length = min(self.m, int(c))
-            end = int(c) - offset
-            frames.append((ext_v[end - length:end], ext_t[end - length:end]))
-            first.append(int(c) - length)
-        keep = min(len(ext_v), self.m)
-        self._values = ext_v[len(ext_v) - keep:].copy()
-        self._times = ext_t[len(ext_t) - keep:].copy()
-        return self._columns(frames, np.asarray(first, dtype=np.int64), counts)
+        offset = self.count - self._len  # count of samples before buffer index 0
+        counts = []
+        p = max(1, int(before // self.hop))
+        while True:
+            c = int(np.floor(p * self.hop + 1e-9))
+            if c > self.count:
+                break
+            if c > before and c >= self.m_min:
+                counts.append(c)
+            p += 1
+        counts = np.array(counts, dtype=np.int64)
+        lengths = np.minimum(self.m, counts)
+        ends = counts - offset
+        return self._columns(self._buf, ends, lengths, counts)
 
-    def _columns(self, frames, first, counts) -> Columns:
-        if not frames:
-            n_bins = self.n_fft // 2 + 1
+    def _columns(self, buf, ends, lengths, counts) -> Columns:
+        n_bins = self.n_fft // 2 + 1
+        n_aux = buf.shape[0] - 2
+        if len(counts) == 0:
             e = np.empty(0)
             return Columns(np.empty((0, n_bins), complex),
                            np.empty((0, n_bins), complex) if self.with_derivative else None,
-                           e, e, first, counts)
+                           e, e, counts, counts, np.empty((n_aux, 0)), np.empty((n_aux, 0)))
+        frames = [(buf[0, e - L:e], buf[1, e - L:e]) for e, L in zip(ends, lengths)]
         spectra, spectra_dw = frames_to_columns(frames, self.n_fft, self.with_derivative,
                                                 self._windows)
-        t_first = np.array([f[1][0] for f in frames])
-        t_last = np.array([f[1][-1] for f in frames])
-        return Columns(spectra, spectra_dw, 0.5 * (t_first + t_last), t_last, first, counts)
+        starts = ends - lengths
+        t_first = buf[1, starts]
+        t_last = buf[1, ends - 1]
+        first = counts - lengths
+        aux_last = buf[2:, ends - 1]
+        aux_before = np.where(first > 0, buf[2:, np.maximum(starts - 1, 0)], 0.0)
+        return Columns(spectra, spectra_dw, 0.5 * (t_first + t_last), t_last, first, counts,
+                       aux_before, aux_last)
 
 
 def stft_batch(values: np.ndarray, times: np.ndarray, window_samples: int,
                min_window_samples: int, hop_samples: float, n_fft: int,
-               with_derivative: bool = False) -> Columns:
+               with_derivative: bool = False, aux=()) -> Columns:
     """All columns of a whole signal in one call (the batch twin of :class:`SlidingSTFT`)."""
+    sliding = SlidingSTFT(window_samples, min_window_samples, hop_samples, n_fft,
+                          with_derivative)  # validates the parameters first
     counts = hop_counts(0, len(values), hop_samples)
     counts = counts[counts >= min_window_samples]
     lengths = np.minimum(window_samples, counts)
-    frames = [(values[c - L:c], times[c - L:c]) for c, L in zip(counts, lengths)]
-    sliding = SlidingSTFT(window_samples, min_window_samples, hop_samples, n_fft,
-                          with_derivative)
-    return sliding._columns(frames, (counts - lengths).astype(np.int64), counts)
+    buf = np.vstack([np.asarray(values, dtype=np.float64), np.asarray(times, dtype=np.float64),
+                     *[np.asarray(a, dtype=np.float64) for a in aux]]) if len(values) else \
+        np.empty((2 + len(aux), 0))
+    return sliding._columns(buf, counts, lengths, counts)

@@ -212,6 +212,26 @@ class RidgeTracker:
         self._hist_w: list[float] = []
         self._hist_sp: list[np.ndarray] = []
 
+    def track(self, spectra: np.ndarray, weights: np.ndarray, readout: np.ndarray | None = None):
+        """Hot path without lag: ``(rate (P,), confidence (P,), concentration (P,))``,
+        the last being the fraction of band energy near the rate (for the quality
+        index). Equal to :meth:`update` followed by
+        :func:`estimators.quality.concentration_fraction`, in one compiled pass."""
+        if self.params.lag_hops:
+            raise ParameterError("track() is for lag_hops=0; use update()")
+        spectra = np.ascontiguousarray(np.atleast_2d(spectra), dtype=np.float64)
+        readout = spectra if readout is None else np.ascontiguousarray(readout, dtype=np.float64)
+        weights = np.ascontiguousarray(np.clip(weights, 0.0, 1.0), dtype=np.float64)
+        n = len(spectra)
+        position, confidence, concentration = np.empty(n), np.empty(n), np.empty(n)
+        _kernels.track_block(spectra, readout, weights, self.posterior, self.params.transition,
+                             self.params.jump_probability, float(self.power), EMISSION_FLOOR,
+                             float(self.params.halfwidth_bins), position, confidence,
+                             concentration)
+        self.hops_seen += n
+        step = self.rates[1] - self.rates[0]
+        return self.rates[0] + position * step, confidence, concentration
+
     def update(self, spectra: np.ndarray, weights: np.ndarray, readout: np.ndarray | None = None):
         """Track the hops of ``spectra`` (P, F) with emission weights (P,); the rate is
         read off ``readout`` (P, F) near the posterior mode (default: ``spectra``)."""

@@ -132,6 +132,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--source", help="only this source (channel name or 'fused')")
     p.add_argument("--report", metavar="DIR", help="write a report folder (Markdown, HTML, PNG)")
     p.add_argument("-q", "--quiet", action="store_true")
+
+    p = sub.add_parser("batch", help="live and offline runs, compared with references, over "
+                                     "a folder of recordings")
+    p.add_argument("folder", help="folder of recordings; a reference beside each one "
+                                  "(<name>_beats.csv, <name>_breaths.csv, <name>.atr) is used")
+    p.add_argument("--out", required=True, metavar="DIR", help="where logs and reports go")
+    p.add_argument("--pattern", help="file pattern, e.g. '*.csv.gz' (default: every format)")
+    p.add_argument("--channel", action="append", metavar="NAME=KIND")
+    p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES))
+    p.add_argument("--fs", type=_positive)
+    p.add_argument("--jobs", type=int, help="parallel processes (default: number of cores)")
+    p.add_argument("--no-report", action="store_true", help="summary table only")
+    p.add_argument("-q", "--quiet", action="store_true")
     return parser
 
 
@@ -431,7 +444,27 @@ def cmd_compare(args) -> int:
     return 0
 
 
-COMMANDS = {"replay": cmd_replay, "demo": cmd_demo, "live": cmd_live,
+def cmd_batch(args) -> int:
+    from streamer.batch import BatchOptions, run_batch
+
+    options = BatchOptions(out_dir=args.out, profile=args.profile,
+                           channels=tuple(args.channel or ()), fs=args.fs,
+                           report=not args.no_report)
+
+    def progress(done, total, path):
+        if not args.quiet:
+            print(f"[{done}/{total}] {Path(path).name}", file=sys.stderr)
+
+    rows, written = run_batch(args.folder, options, args.pattern, args.jobs, progress)
+    for row in rows:
+        if "error" in row:
+            print(f"{row['recording']}: {row['error']}", file=sys.stderr)
+    if not args.quiet:
+        print(f"summary: {written['markdown']} and {written['csv']}", file=sys.stderr)
+    return 0
+
+
+COMMANDS = {"batch": cmd_batch, "replay": cmd_replay, "demo": cmd_demo, "live": cmd_live,
             "simulate": cmd_simulate, "profiles": cmd_profiles, "offline": cmd_offline,
             "compare": cmd_compare}
 

@@ -1,0 +1,202 @@
+"""Batch mode: live (causal) and offline runs plus comparisons over a folder of recordings.
+
+For every recording in a folder, :func:`process_recording` replays it through the same
+path as ``ridgewatch replay --speed max`` (a causal log), runs the offline twin (an
+offline log), and, when a reference sits beside it, compares both against it and
+writes a report folder. :func:`run_batch` runs recordings in parallel on the local
+cores (``concurrent.futures.ProcessPoolExecutor``) and writes a summary table across
+recordings.
+
+Running the same batch on a cluster
+-----------------------------------
+:func:`process_recording` is a plain, picklable function of (path, options) returning
+a list of summary rows, so any distributed engine that maps a function over inputs can
+run it. With Dask (``pip install "dask[distributed]"``, not a dependency of ridgewatch)::
+
+    from dask.distributed import Client
+    from streamer.batch import BatchOptions, find_recordings, process_recording
+    from streamer.report import write_batch_summary
+
+    client = Client("tcp://scheduler:8786")          # your cluster's scheduler
+    options = BatchOptions(out_dir="results", profile="wrist")
+    futures = client.map(process_recording, find_recordings("data/", "*.csv.gz"),
+                         options=options)
+    rows = [row for part in client.gather(futures) for row in part]
+    write_batch_summary(rows, "results")
+
+The recordings and ``out_dir`` must be on storage every worker can reach.
+"""
+
+from __future__ import annotations
+
+import os
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from streamer.errors import InputError
+
+REFERENCE_SUFFIXES = (("_beats.csv", "hr"), ("_breaths.csv", "rr"), (".atr", "hr"),
+                      ("_reference.csv", None))
+"""Reference files looked for beside a recording, ``<stem><suffix>``, and the quantity
+they hold (None: whatever the file says, e.g. a rate series)."""
+
+RECORDING_PATTERNS = ("*.csv", "*.csv.gz", "*.hea", "*.edf", "*.xdf")
+
+
+@dataclass(frozen=True)
+class BatchOptions:
+    """What every recording of a batch is run with."""
+
+    out_dir: str
+    profile: str = "wrist"
+    channels: tuple = ()
+    fs: float | None = None
+    reference_suffixes: tuple = REFERENCE_SUFFIXES
+    report: bool = True
+    extra: dict = field(default_factory=dict)
+
+
+def recording_stem(path: Path) -> str:
+    name = path.name
+    for suffix in (".csv.gz", ".csv", ".hea", ".edf", ".xdf", ".gz"):
+        if name.endswith(suffix):
+            return name[: -len(suffix)]
+    return path.stem
+
+
+def find_recordings(folder, pattern: str | None = None) -> list[Path]:
+    """Recordings in ``folder`` (not its sub-folders), sorted; reference files and
+    ridgewatch logs are left out."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise InputError(f"{folder}: not a folder; give a folder of recordings")
+    found = set()
+    for pat in ([pattern] if pattern else RECORDING_PATTERNS):
+        found.update(folder.glob(pat))
+    recordings = []
+    for p in sorted(found):
+        if any(p.name.endswith(s) for s, _ in REFERENCE_SUFFIXES) or p.name.endswith("_truth.csv"):
+            continue
+        if p.suffix == ".csv" or p.name.endswith(".csv.gz"):
+            with open(p, "rb") as fh:
+                if fh.read(25).startswith(b"# ridgewatch estimate log"):
+                    continue
+        recordings.append(p)
+    if not recordings:
+        raise InputError(f"{folder}: no recordings found (looked for "
+                         f"{pattern or ', '.join(RECORDING_PATTERNS)})")
+    return recordings
+
+
+def find_references(path: Path, suffixes) -> list[tuple[Path, str | None]]:
+    """Every reference beside ``path`` with the quantity it holds."""
+    stem = recording_stem(path)
+    return [(path.with_name(stem + suffix), quantity) for suffix, quantity in suffixes
+            if path.with_name(stem + suffix).exists()]
+
+
+def process_recording(path, options: BatchOptions) -> list[dict]:
+    """Live and offline logs for one recording, compared with its reference if any.
+
+    Returns one summary row per (run, quantity, source) compared; a row with an
+    ``error`` key when the recording cannot be processed (so one bad file does not stop
+    a batch).
+    """
+    from estimators.config import get_profile
+    from estimators.monitor import offline_estimates
+    from streamer.channels import select
+    from streamer.runner import Runner
+    from streamer.sinks.estimate_log import EstimateLog, read_log
+    from streamer.sources.files import read_recording
+    from streamer.sources.replay import RecordingSource
+
+    path = Path(path)
+    stem = recording_stem(path)
+    out = Path(options.out_dir) / stem
+    out.mkdir(parents=True, exist_ok=True)
+    try:
+        recording = read_recording(path, fs=options.fs)
+        selected = select(recording.info, list(options.channels) or None)
+        profile = get_profile(options.profile)
+        mapping = {s.name: s.kind for s in selected}
+        config = {"profile": profile.to_dict(), "fs": recording.info.fs}
+        live_path = out / "live.csv"
+        log = EstimateLog(live_path, "replay", str(path), mapping, dict(config, mode="replay"))
+        Runner(RecordingSource(recording, chunk_s=0.25), selected, profile, log=log).run()
+        offline_path = out / "offline.csv"
+        estimates = offline_estimates(recording.samples[:, [s.index for s in selected]],
+                                      recording.timestamps,
+                                      [(s.name, s.kind) for s in selected],
+                                      recording.info.fs, profile)
+        with EstimateLog(offline_path, "offline", str(path), mapping,
+                         dict(config, mode="offline")) as off:
+            for est in estimates:
+                off.write(est)
+        references = find_references(path, options.reference_suffixes)
+        if not references:
+            return [{"recording": stem, "run": "live", "reference": "",
+                     "note": "no reference beside the recording"}]
+        live, offline = read_log(live_path), read_log(offline_path)
+        rows = []
+        for reference, quantity in references:
+            rows.extend(_compare_runs(stem, out, reference, quantity, live, offline,
+                                      options.report))
+        return rows
+    except InputError as exc:
+        return [{"recording": stem, "error": str(exc)}]
+
+
+def _compare_runs(stem, out, reference, quantity, live, offline, report: bool) -> list[dict]:
+    from streamer.compare import add_overlay, load_other, pair_up, summarize
+
+    other = load_other(reference)
+    rows = []
+    for run, table in (("live", live), ("offline", offline)):
+        windows = {q: float(table.header["config"]["profile"][q]["window_s"]) for q in ("hr", "rr")}
+        try:
+            series = pair_up(table, other, quantity=quantity, window_s=windows)
+        except InputError as exc:
+            rows.append({"recording": stem, "run": run, "error": str(exc)})
+            continue
+        results = [summarize(s) for s in series]
+        if report and run == "live":
+            from streamer.report import write_report
+            add_overlay(series, "offline", offline)
+            write_report(results, series, out / f"report-{quantity or 'rate'}",
+                         f"{stem}: live vs {Path(reference).name}")
+        for r in results:
+            rows.append({"recording": stem, "run": run, "quantity": r["quantity"],
+                         "source": r["source"], "reference": Path(reference).name,
+                         "n": r["n"], "mae": r["mae"], "rmse": r["rmse"], "bias": r["bias"],
+                         "within_tolerance": r["within_tolerance"], "coverage": r["coverage"],
+                         "delay_median_s": r["delay_median_s"]})
+    return rows
+
+
+def run_batch(folder, options: BatchOptions, pattern: str | None = None, jobs: int | None = None,
+              progress=None) -> tuple[list[dict], dict]:
+    """Process every recording of ``folder`` on ``jobs`` local processes (default: the
+    number of cores); write the summary table. Returns (rows, written paths)."""
+    from streamer.report import write_batch_summary
+
+    recordings = find_recordings(folder, pattern)
+    jobs = max(1, min(jobs or os.cpu_count() or 1, len(recordings)))
+    rows: list[dict] = []
+    if jobs == 1:
+        for i, path in enumerate(recordings):
+            rows.extend(process_recording(path, options))
+            if progress:
+                progress(i + 1, len(recordings), path)
+    else:
+        with ProcessPoolExecutor(max_workers=jobs) as pool:
+            futures = {pool.submit(process_recording, p, options): p for p in recordings}
+            for done, future in enumerate(as_completed(futures), start=1):
+                rows.extend(future.result())
+                if progress:
+                    progress(done, len(recordings), futures[future])
+    order = {recording_stem(p): i for i, p in enumerate(recordings)}
+    rows.sort(key=lambda r: (order.get(r["recording"], 0), r.get("run", ""),
+                             r.get("quantity", ""), r.get("source", "")))
+    written = write_batch_summary(rows, options.out_dir)
+    return rows, written

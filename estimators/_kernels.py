@@ -268,31 +268,87 @@ def preprocess_chunk(x, t, sos_pre, zi_pre, envelope, sos_post, zi_post, scalars
 
 
 @kernel
+def harmonic_score(power, centre, offset, halfwidth, chance_factor, span):
+    """How much of the band's ``power`` (F,) sits on the harmonic family of a rate.
+
+    The family is every multiple ``k r`` (k = 1, 2, ...) of the rate ``r`` at fractional
+    bin ``centre`` that falls in the band; bins are ``f`` with rate ``(f + offset) *
+    step``, so the ``k``-th multiple is bin ``k (centre + offset) - offset``. The
+    fraction of power within ``halfwidth`` bins of the family is compared with the share
+    ``K (2 halfwidth + 1) / F`` that ``K`` such intervals would hold of a flat spectrum:
+    ``clip((fraction - chance_factor * share) / span, 0, 1)``. A pulse puts its power on
+    its fundamental and harmonics whatever its shape; noise spreads it.
+    """
+    n_bins = power.shape[0]
+    base = centre + offset
+    if not (base > 0.0):
+        return 0.0
+    near = 0.0
+    total = 0.0
+    for f in range(n_bins):
+        v = power[f]
+        if not np.isfinite(v):
+            continue
+        total += v
+        k = np.floor((f + offset) / base + 0.5)
+        if k >= 1.0 and abs(f - (k * base - offset)) <= halfwidth:
+            near += v
+    if total <= 0.0:
+        return 0.0
+    count = 0
+    k = 1.0
+    while k * base - offset <= n_bins - 1 + halfwidth:
+        count += 1
+        k += 1.0
+    share = min(1.0, count * (2.0 * halfwidth + 1.0) / n_bins)
+    score = (near / total - chance_factor * share) / span
+    return min(1.0, max(0.0, score))
+
+
+@kernel
 def track_block(spectra, readout, weights, alpha, transition, mix, power, floor, halfwidth,
-                out_position, out_confidence, out_concentration):
+                offset, chance_factor, span, check_rhythm, out_position, out_confidence,
+                out_concentration):
     """Forward filter plus read-out for several hops in one call (the live hot path).
 
-    For each hop: the emission ``floor + (S / max S) ** power`` tempered by
-    ``weights[p]``, one forward step (as :func:`forward_filter`), then
+    For each hop:
 
+    * the rhythm score: :func:`harmonic_score` of ``readout ** 2`` on the family of the
+      highest bin of ``spectra`` (the de-shape peak, which sits on the fundamental); it
+      multiplies ``weights[p]``, so a window without rhythm (noise) leaves the posterior
+      to coast and spread instead of sharpening on a chance ridge (only with
+      ``check_rhythm``; otherwise 1);
+    * the emission ``floor + (S / max S) ** power`` tempered by that weight, and one
+      forward step (as :func:`forward_filter`);
     * ``out_confidence[p]``: posterior mass within ``halfwidth`` bins of the mode;
     * ``out_position[p]``: fractional bin of the highest ``readout`` peak within
       ``halfwidth`` of the mode, refined by parabolic interpolation (the mode itself
       when ``readout`` is empty there);
-    * ``out_concentration[p]``: fraction of the band energy of ``spectra`` within
-      ``halfwidth`` bins of that position.
+    * ``out_concentration[p]``: :func:`harmonic_score` of ``readout ** 2`` at that
+      position, or 0 when the peak is the first or last bin of the band (a slope rising
+      out of the band, not a local maximum: no rhythm).
 
     ``alpha`` (F,) is updated in place.
     """
     n_hops, n_bins = spectra.shape
     half = (transition.shape[0] - 1) // 2
     prior = np.empty(n_bins)
+    pw = np.empty(n_bins)
     for p in range(n_hops):
+        top = 0
         peak_s = 0.0
         for f in range(n_bins):
+            v = readout[p, f]
+            pw[f] = v * v
             v = spectra[p, f]
             if np.isfinite(v) and v > peak_s:
                 peak_s = v
+                top = f
+        rhythm = 1.0
+        if check_rhythm:
+            rhythm = harmonic_score(pw, float(top), offset, halfwidth, chance_factor, span)
+            if top == 0 or top == n_bins - 1:
+                rhythm = 0.0  # a slope rising out of the band is not a rhythm inside it
         for f in range(n_bins):
             acc = 0.0
             lo = f - half
@@ -301,7 +357,7 @@ def track_block(spectra, readout, weights, alpha, transition, mix, power, floor,
                 if 0 <= g < n_bins:
                     acc += transition[j] * alpha[g]
             prior[f] = (1.0 - mix) * acc + mix / n_bins
-        w = weights[p]
+        w = weights[p] * rhythm
         total = 0.0
         for f in range(n_bins):
             v = spectra[p, f]
@@ -344,14 +400,33 @@ def track_block(spectra, readout, weights, alpha, transition, mix, power, floor,
                     elif delta < -0.5:
                         delta = -0.5
                     position += delta
-        near = 0.0
-        band = 0.0
-        for f in range(n_bins):
-            v = spectra[p, f]
-            if np.isfinite(v):
-                band += v
-                if abs(f - position) <= halfwidth:
-                    near += v
         out_position[p] = position
         out_confidence[p] = min(1.0, max(0.0, conf))
-        out_concentration[p] = near / band if band > 0.0 else 0.0
+        if best == 0 or best == n_bins - 1:
+            out_concentration[p] = 0.0  # no local maximum: the rate sits on a band edge
+        else:
+            out_concentration[p] = harmonic_score(pw, position, offset, halfwidth,
+                                                  chance_factor, span)
+
+
+@kernel
+def rhythm_scores(spectra, readout, offset, halfwidth, chance_factor, span, out):
+    """Per hop, the rhythm score that :func:`track_block` multiplies into the emission
+    weight: :func:`harmonic_score` of ``readout ** 2`` on the family of the highest bin
+    of ``spectra``; 0 when that bin is a band edge."""
+    n_hops, n_bins = spectra.shape
+    pw = np.empty(n_bins)
+    for p in range(n_hops):
+        top = 0
+        peak_s = 0.0
+        for f in range(n_bins):
+            v = readout[p, f]
+            pw[f] = v * v
+            v = spectra[p, f]
+            if np.isfinite(v) and v > peak_s:
+                peak_s = v
+                top = f
+        if top == 0 or top == n_bins - 1:
+            out[p] = 0.0
+        else:
+            out[p] = harmonic_score(pw, float(top), offset, halfwidth, chance_factor, span)

@@ -105,6 +105,7 @@ class ChannelPath:
         self.name, self.kind, self.settings = name, kind, settings
         self.geometry = g = PathGeometry.of(settings, fs)
         self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation)
+        self.pre.min_run = max(3, int(round(settings.stuck_run_s * fs)))
         self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen)
         self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.band_hz)
 
@@ -164,17 +165,22 @@ def fuse_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
 def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.ndarray,
                          confidence: np.ndarray, rates_grid: np.ndarray,
                          settings: RateSettings, emitted_s: np.ndarray,
-                         concentration: np.ndarray | None = None) -> list[Estimate]:
+                         concentration: np.ndarray | None = None,
+                         smoothing: dict | None = None) -> list[Estimate]:
     """Estimate records from tracker output aligned with ``block`` (same hops).
 
-    ``concentration`` is the fraction of band energy near each rate; computed here
-    when not given."""
+    ``concentration`` is the harmonic concentration score at each rate; computed here
+    when not given. ``smoothing`` carries the state of its causal average between
+    calls (a dict, updated in place)."""
     step = rates_grid[1] - rates_grid[0]
     halfwidth = settings.confidence_halfwidth_per_min / step
     if concentration is None:
-        concentration = quality_mod.concentration_fraction(
-            block.spectra, (rate - rates_grid[0]) / step, halfwidth)
-    conc = quality_mod.concentration_score(concentration, halfwidth, len(rates_grid))
+        readout = block.spectra if block.magnitude is None else block.magnitude
+        concentration = quality_mod.harmonic_concentration(
+            readout, (rate - rates_grid[0]) / step, rates_grid[0] / step, halfwidth)
+    state = {} if smoothing is None else smoothing
+    conc, state["last"] = quality_mod.smooth_scores(concentration, state.get("last"),
+                                                    settings.hop_s)
     quality = quality_mod.quality_index(block.integrity, conc)
     withheld = (quality < settings.min_quality) | ~np.isfinite(rate)
     shown = np.where(withheld, np.nan, rate)
@@ -195,12 +201,16 @@ class _Output:
                                          settings.jump_probability,
                                          settings.confidence_halfwidth_per_min,
                                          settings.lag_hops)
-        self.tracker = tracker_mod.RidgeTracker(grid_rates, params, settings.emission_power)
+        self.tracker = tracker_mod.RidgeTracker(grid_rates, params, settings.emission_power,
+                                                True, quality_mod.CHANCE_FACTOR,
+                                                quality_mod.CONCENTRATION_SPAN)
         self._held: list[HopBlock] = []
+        self._smoothing: dict = {}
 
     def reset(self) -> None:
         self.tracker.reset()
         self._held = []
+        self._smoothing = {}
 
     def update(self, block: HopBlock) -> list[Estimate]:
         if len(block) == 0:
@@ -209,7 +219,8 @@ class _Output:
         if lag == 0:
             rate, conf, frac = self.tracker.track(block.spectra, block.integrity, block.magnitude)
             return estimates_from_track(self.quantity, self.source, block, rate, conf,
-                                        self.rates, self.settings, block.emitted_s, frac)
+                                        self.rates, self.settings, block.emitted_s, frac,
+                                        self._smoothing)
         rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
         self._held.append(block)
@@ -220,7 +231,7 @@ class _Output:
         newest = held.emitted_s[pos + lag]
         self._held = [take_hops(held, np.arange(max(0, len(held) - lag - 1), len(held)))]
         return estimates_from_track(self.quantity, self.source, referred, rate, conf,
-                                    self.rates, self.settings, newest)
+                                    self.rates, self.settings, newest, None, self._smoothing)
 
 
 def concat_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
@@ -236,6 +247,18 @@ def take_hops(block: HopBlock, index: np.ndarray) -> HopBlock:
     return HopBlock(block.spectra[index], block.time_s[index], block.emitted_s[index],
                     block.integrity[index],
                     None if block.magnitude is None else block.magnitude[index])
+
+
+def monotone_times(timestamps: np.ndarray, newest_s: float) -> np.ndarray:
+    """Each timestamp replaced by the newest of itself, every earlier one and
+    ``newest_s`` (NaN: none yet; NaN timestamps take the newest before them).
+
+    >>> monotone_times(np.array([1.0, 2.0, 1.5, 3.0]), 0.5)
+    array([1., 2., 2., 3.])
+    """
+    if len(timestamps) == 0:
+        return timestamps
+    return np.fmax.accumulate(np.concatenate(([newest_s], timestamps)))[1:]
 
 
 def _normalise_channels(channels) -> list[tuple[str, str]]:
@@ -303,6 +326,7 @@ class RateMonitor:
         self._index = {name: i for i, (name, _) in enumerate(self.channels)}
         self.last_blocks: dict[tuple[str, str], HopBlock] = {}
         self.motion_spectra: dict[str, HopBlock] = {}
+        self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
 
     def grid(self, quantity: str) -> np.ndarray | None:
         """Rates (per minute) of the spectra's bins for ``quantity``, or None."""
@@ -316,6 +340,7 @@ class RateMonitor:
             path.reset()
         for out in self.outputs.values():
             out.reset()
+        self._newest_s = np.nan
 
     def _check(self, samples, timestamps):
         samples = np.asarray(samples, dtype=np.float64)
@@ -332,8 +357,17 @@ class RateMonitor:
 
     def update(self, samples, timestamps) -> list[Estimate]:
         """Feed a chunk ``(n, channels)`` with timestamps ``(n,)``; return the estimates
-        of every hop it completes, ordered by hop, then by quantity and source."""
+        of every hop it completes, ordered by hop, then by quantity and source.
+
+        Hops fall by sample count (see :mod:`estimators.stft`); timestamps only label
+        the estimates. A timestamp earlier than one already seen (duplicated or
+        out-of-order samples, a clock stepped back) is labelled with the newest one
+        seen (:func:`monotone_times`), so ``emitted_s`` never decreases and
+        ``time_s <= emitted_s`` whatever the source delivers."""
         samples, timestamps = self._check(samples, timestamps)
+        timestamps = monotone_times(timestamps, self._newest_s)
+        if len(timestamps):
+            self._newest_s = float(timestamps[-1])
         blocks = {}
         for key, path in self.paths.items():
             blocks[key] = path.update(samples[:, self._index[key[1]]], timestamps)
@@ -360,6 +394,7 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
     """
     monitor = RateMonitor(channels, fs, profile)
     samples, timestamps = monitor._check(samples, timestamps)
+    timestamps = monotone_times(timestamps, np.nan)
     if len(timestamps) == 0:
         return []
     end = float(timestamps[-1])
@@ -375,8 +410,9 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
             continue
         params = out.tracker.params
         emissions = tracker_mod.emissions_from_spectra(block.spectra, out.tracker.power)
-        path = tracker_mod.viterbi_path(emissions, block.integrity, params)
-        post = tracker_mod.smooth_all(emissions, block.integrity, params)
+        weights = block.integrity * out.tracker.rhythm(block.spectra, block.magnitude)
+        path = tracker_mod.viterbi_path(emissions, weights, params)
+        post = tracker_mod.smooth_all(emissions, weights, params)
         idx = np.arange(post.shape[1])
         near = np.abs(idx[None, :] - path[:, None]) <= params.halfwidth_bins
         mass = np.where(near, post, 0.0)

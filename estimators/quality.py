@@ -12,11 +12,13 @@ The index is the product of three measures, each in [0, 1]:
     in PPG and ECG quality assessment (e.g. the review by Orphanidou et al., IEEE JBHI
     2015, cited from memory).
 ``concentration``
-    the fraction of the de-shape spectrum's band energy within the confidence
-    half-width of the tracked rate, rescaled so that the level expected of a flat
-    spectrum maps to 0 and :data:`CONCENTRATION_FULL` or more maps to 1. A rhythm
-    concentrates energy on its ridge; noise spreads it. Spectral-purity measures of
-    this kind are common practice.
+    how much of the band's power (plain STFT magnitude squared) lies within the
+    confidence half-width of the reported rate and of its harmonics, against the share a
+    flat spectrum would put there (:func:`estimators._kernels.harmonic_score`). A rhythm
+    concentrates power on its fundamental and harmonics whatever its wave shape; noise
+    spreads it. Spectral-concentration measures of this kind are common practice. A rate
+    on the very edge of the band (a slope, not a peak) scores 0. The score is averaged
+    causally over :data:`CONCENTRATION_SMOOTHING_S` seconds.
 
 ``finite * unstuck`` (the signal-integrity part) also tempers the tracker's emission,
 so the tracker does not follow a window it cannot trust.
@@ -25,8 +27,9 @@ so the tracker does not follow a window it cannot trust.
 from __future__ import annotations
 
 import numpy as np
+from scipy.signal import lfilter
 
-CONCENTRATION_FULL = 0.5
+from estimators import _kernels
 
 
 def integrity(nonfinite_fraction: np.ndarray, stuck_fraction: np.ndarray) -> np.ndarray:
@@ -36,32 +39,49 @@ def integrity(nonfinite_fraction: np.ndarray, stuck_fraction: np.ndarray) -> np.
     return finite * unstuck
 
 
-def concentration_fraction(spectra: np.ndarray, centre_bins: np.ndarray,
+CHANCE_FACTOR = 1.5
+"""The concentration score starts at this multiple of the share a flat spectrum would
+put on the harmonic family (white noise sits near 1x, with peak picking a little above).
+Our own choice, from measurements on white and coloured noise."""
+CONCENTRATION_SPAN = 0.3
+"""Fraction above the start at which the concentration score is full."""
+
+
+def harmonic_concentration(readout: np.ndarray, centre_bins: np.ndarray, offset_bins: float,
                            halfwidth_bins: float) -> np.ndarray:
-    """Fraction of each hop's band energy within ``halfwidth_bins`` of ``centre_bins``
-    (P,) (float bins; NaN centres give 0)."""
-    spectra = np.atleast_2d(spectra)
-    idx = np.arange(spectra.shape[1])
-    centre = np.nan_to_num(np.asarray(centre_bins, dtype=np.float64), nan=-1e9)
-    near = np.abs(idx[None, :] - centre[:, None]) <= halfwidth_bins
-    total = spectra.sum(axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(total > 0, (spectra * near).sum(axis=1) / total, 0.0)
+    """Concentration score per hop: :func:`estimators._kernels.harmonic_score` of the band
+    power ``readout ** 2`` on the harmonic family of the rate at ``centre_bins`` (P,);
+    NaN centres give 0."""
+    readout = np.atleast_2d(readout)
+    out = np.zeros(len(readout))
+    for p, centre in enumerate(np.asarray(centre_bins, dtype=np.float64)):
+        if np.isfinite(centre):
+            out[p] = _kernels.harmonic_score(np.ascontiguousarray(readout[p] ** 2), centre,
+                                             float(offset_bins), float(halfwidth_bins),
+                                             CHANCE_FACTOR, CONCENTRATION_SPAN)
+    return out
 
 
-def concentration_score(fraction: np.ndarray, halfwidth_bins: float, n_bins: int) -> np.ndarray:
-    """Rescale a concentration fraction: the level of a flat spectrum maps to 0,
-    :data:`CONCENTRATION_FULL` or more to 1."""
-    chance = min(1.0, (2.0 * halfwidth_bins + 1.0) / n_bins)
-    scaled = (np.asarray(fraction) - chance) / max(CONCENTRATION_FULL - chance, 1e-9)
-    return np.clip(scaled, 0.0, 1.0)
+CONCENTRATION_SMOOTHING_S = 3.0
+"""Time constant (s) of the causal exponential average of the concentration score. A
+rhythm persists while chance ridges of noise come and go: averaging over a few seconds
+halves the share of white-noise hops that pass as a rhythm (measured: 8 % -> 3-5 %)
+while real pulses keep their score. Integrity is not averaged: a flat line or missing
+samples lower quality at once. Our own choice."""
 
 
-def concentration(spectra: np.ndarray, centre_bins: np.ndarray, halfwidth_bins: float) -> np.ndarray:
-    """Rescaled fraction of each hop's band energy near ``centre_bins`` (P,)."""
-    spectra = np.atleast_2d(spectra)
-    return concentration_score(concentration_fraction(spectra, centre_bins, halfwidth_bins),
-                               halfwidth_bins, spectra.shape[1])
+def smooth_scores(values: np.ndarray, last: float | None, hop_s: float,
+                  time_constant_s: float = CONCENTRATION_SMOOTHING_S):
+    """Causal exponential average ``y_p = (1 - a) x_p + a y_{p-1}``, ``a = exp(-hop /
+    tau)``, started at the first value. Returns ``(smoothed, last)`` to carry on; any
+    chunking of the hops gives the same values."""
+    values = np.asarray(values, dtype=np.float64)
+    if len(values) == 0:
+        return values, last
+    a = float(np.exp(-hop_s / time_constant_s))
+    prev = values[0] if last is None else last
+    out = lfilter([1.0 - a], [1.0, -a], values, zi=[a * prev])[0]
+    return out, float(out[-1])
 
 
 def quality_index(integrity_part: np.ndarray, concentration_part: np.ndarray) -> np.ndarray:

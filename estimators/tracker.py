@@ -199,9 +199,16 @@ class RidgeTracker:
     have been seen.
     """
 
-    def __init__(self, rates_per_min: np.ndarray, params: TrackerParams, emission_power: float):
+    def __init__(self, rates_per_min: np.ndarray, params: TrackerParams, emission_power: float,
+                 check_rhythm: bool = False, chance_factor: float = 1.5, span: float = 0.3):
         self.rates = np.asarray(rates_per_min, dtype=np.float64)
         self.params, self.power = params, emission_power
+        self.step = float(self.rates[1] - self.rates[0])
+        self.offset_bins = float(self.rates[0] / self.step)
+        # Rhythm and concentration scores (see _kernels.harmonic_score). With the rhythm
+        # check on, hops whose power is not on a harmonic family do not pull the posterior.
+        self.check_rhythm = bool(check_rhythm)
+        self.chance_factor, self.span = float(chance_factor), float(span)
         self.reset()
 
     def reset(self) -> None:
@@ -214,9 +221,8 @@ class RidgeTracker:
 
     def track(self, spectra: np.ndarray, weights: np.ndarray, readout: np.ndarray | None = None):
         """Hot path without lag: ``(rate (P,), confidence (P,), concentration (P,))``,
-        the last being the fraction of band energy near the rate (for the quality
-        index). Equal to :meth:`update` followed by
-        :func:`estimators.quality.concentration_fraction`, in one compiled pass."""
+        the last being the harmonic concentration score at the rate (for the quality
+        index), in one compiled pass. Hops without rhythm do not pull the posterior."""
         if self.params.lag_hops:
             raise ParameterError("track() is for lag_hops=0; use update()")
         spectra = np.ascontiguousarray(np.atleast_2d(spectra), dtype=np.float64)
@@ -226,16 +232,32 @@ class RidgeTracker:
         position, confidence, concentration = np.empty(n), np.empty(n), np.empty(n)
         _kernels.track_block(spectra, readout, weights, self.posterior, self.params.transition,
                              self.params.jump_probability, float(self.power), EMISSION_FLOOR,
-                             float(self.params.halfwidth_bins), position, confidence,
-                             concentration)
+                             float(self.params.halfwidth_bins), self.offset_bins,
+                             self.chance_factor, self.span, self.check_rhythm, position,
+                             confidence, concentration)
         self.hops_seen += n
-        step = self.rates[1] - self.rates[0]
-        return self.rates[0] + position * step, confidence, concentration
+        return self.rates[0] + position * self.step, confidence, concentration
+
+    def rhythm(self, spectra: np.ndarray, readout: np.ndarray | None = None) -> np.ndarray:
+        """Rhythm score per hop (see :func:`estimators._kernels.rhythm_scores`); ones when
+        the check is off."""
+        spectra = np.ascontiguousarray(np.atleast_2d(spectra), dtype=np.float64)
+        if not self.check_rhythm:
+            return np.ones(len(spectra))
+        readout = spectra if readout is None else np.ascontiguousarray(readout, dtype=np.float64)
+        out = np.empty(len(spectra))
+        _kernels.rhythm_scores(spectra, readout, self.offset_bins,
+                               float(self.params.halfwidth_bins), self.chance_factor,
+                               self.span, out)
+        return out
 
     def update(self, spectra: np.ndarray, weights: np.ndarray, readout: np.ndarray | None = None):
-        """Track the hops of ``spectra`` (P, F) with emission weights (P,); the rate is
-        read off ``readout`` (P, F) near the posterior mode (default: ``spectra``)."""
+        """Track the hops of ``spectra`` (P, F) with emission weights (P,) times the
+        rhythm score; the rate is read off ``readout`` (P, F) near the posterior mode
+        (default: ``spectra``). The general path (fixed-lag smoothing); :meth:`track` is
+        the compiled hot path for no lag."""
         readout = spectra if readout is None else readout
+        weights = np.clip(weights, 0.0, 1.0) * self.rhythm(spectra, readout)
         emissions = emissions_from_spectra(spectra, self.power)
         self.posterior, posts = forward_step(self.posterior, emissions, weights, self.params)
         lag = self.params.lag_hops

@@ -48,6 +48,14 @@ class RateSettings:
     confidence_halfwidth_per_min : confidence is the posterior mass within this
         distance of the reported rate.
     min_quality : below this quality index the estimate is withheld ('no estimate').
+    stuck_run_s : seconds of identical raw values after which samples count as stuck
+        (flat line or clipping) in the quality index.
+    agreement_per_min : breathing from a pulse (PPG/ECG): largest spread of the
+        modulation rates (intensity, amplitude, frequency) that still counts as
+        agreement; wider spreads give no estimate.
+    min_agreeing : breathing from a pulse: the smallest group of agreeing modulations
+        that may carry an estimate.
+    min_support : breathing from a pulse: the smallest summed quality of that group.
     """
 
     quantity: str = "hr"
@@ -66,6 +74,10 @@ class RateSettings:
     lag_hops: int = 0
     confidence_halfwidth_per_min: float = 4.0
     min_quality: float = 0.25
+    stuck_run_s: float = 0.12
+    agreement_per_min: float = 4.0
+    min_agreeing: int = 1
+    min_support: float = 0.3
 
     def __post_init__(self):
         _check(self.quantity in ("hr", "rr"), f"quantity={self.quantity!r} must be 'hr' or 'rr'")
@@ -93,10 +105,25 @@ class RateSettings:
         _check(self.confidence_halfwidth_per_min > 0,
                f"confidence_halfwidth_per_min={self.confidence_halfwidth_per_min} must be > 0")
         _check(0 <= self.min_quality <= 1, f"min_quality={self.min_quality} must be in [0, 1]")
+        _check(self.stuck_run_s > 0, f"stuck_run_s={self.stuck_run_s} must be > 0")
+        _check(self.agreement_per_min > 0,
+               f"agreement_per_min={self.agreement_per_min} must be > 0")
+        _check(self.min_agreeing in (1, 2, 3),
+               f"min_agreeing={self.min_agreeing} must be 1, 2 or 3")
+        _check(0 <= self.min_support <= 3, f"min_support={self.min_support} must be in [0, 3]")
 
     @property
     def band_hz(self) -> tuple:
         return (self.band_per_min[0] / 60.0, self.band_per_min[1] / 60.0)
+
+    @property
+    def analysis_band_hz(self) -> tuple:
+        """The band widened by the confidence half-width on each side: the tracker's
+        grid, so that a rate on the edge of the band is still a peak inside the grid
+        (rates found outside the band itself are withheld)."""
+        margin = self.confidence_halfwidth_per_min
+        lo = max(self.band_per_min[0] - margin, 0.5 * self.band_per_min[0])
+        return (lo / 60.0, (self.band_per_min[1] + margin) / 60.0)
 
     def decimation(self, fs: float) -> int:
         """Integer decimation factor from the source rate ``fs`` to about ``analysis_fs``."""
@@ -134,6 +161,20 @@ BREATHING = RateSettings(
     gamma=0.2,
     max_change_per_min_per_s=0.5,
     confidence_halfwidth_per_min=2.0,
+    # A breathing signal holds still at end-expiration, and an impedance signal clips at
+    # its rails for seconds at a time (BIDMC record 05: runs of 2.4 s at both rails) while
+    # its rate stays plain; only a stretch of half the 10 s apnoea definition (AASM
+    # scoring manual, from memory) counts as a flat line.
+    stuck_run_s=5.0,
+)
+
+BREATHING_FROM_PULSE = replace(
+    BREATHING,
+    # Respiratory modulations of a pulse are close to sines: the plain spectrum is kept
+    # (on BIDMC records 01-12 the de-shape spectrum of the modulations locked on half the
+    # breathing rate more often than the plain one locked on its double).
+    deshape=False,
+    min_quality=0.1,
 )
 
 PROFILES = {

@@ -107,7 +107,7 @@ class ChannelPath:
         self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation)
         self.pre.min_run = max(3, int(round(settings.stuck_run_s * fs)))
         self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen)
-        self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.band_hz)
+        self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.analysis_band_hz)
 
     def reset(self) -> None:
         self.pre.reset()
@@ -182,8 +182,12 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     conc, state["last"] = quality_mod.smooth_scores(concentration, state.get("last"),
                                                     settings.hop_s)
     quality = quality_mod.quality_index(block.integrity, conc)
+    # The grid reaches the confidence half-width beyond the band, so that a rate on the
+    # band's edge is a peak; such rates are shown at the edge (off by less than the
+    # half-width), never outside the band.
+    lo, hi = settings.band_per_min
     withheld = (quality < settings.min_quality) | ~np.isfinite(rate)
-    shown = np.where(withheld, np.nan, rate)
+    shown = np.where(withheld, np.nan, np.clip(rate, lo, hi))
     return [Estimate(quantity, source, t, e, r, c, q) for t, e, r, c, q in zip(
         block.time_s.tolist(), emitted_s.tolist(), shown.tolist(), confidence.tolist(),
         quality.tolist())]

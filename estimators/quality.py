@@ -26,17 +26,18 @@ so the tracker does not follow a window it cannot trust.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
-from scipy.signal import lfilter
 
 from estimators import _kernels
 
 
 def integrity(nonfinite_fraction: np.ndarray, stuck_fraction: np.ndarray) -> np.ndarray:
     """Signal-integrity part of the quality index, per hop."""
-    finite = np.clip(1.0 - 5.0 * np.asarray(nonfinite_fraction), 0.0, 1.0)
-    unstuck = np.clip(1.0 - 3.0 * np.asarray(stuck_fraction), 0.0, 1.0)
-    return finite * unstuck
+    finite = np.maximum(1.0 - 5.0 * np.asarray(nonfinite_fraction), 0.0)
+    unstuck = np.maximum(1.0 - 3.0 * np.asarray(stuck_fraction), 0.0)
+    return np.minimum(finite * unstuck, 1.0)
 
 
 CHANCE_FACTOR = 1.5
@@ -78,10 +79,14 @@ def smooth_scores(values: np.ndarray, last: float | None, hop_s: float,
     values = np.asarray(values, dtype=np.float64)
     if len(values) == 0:
         return values, last
-    a = float(np.exp(-hop_s / time_constant_s))
-    prev = values[0] if last is None else last
-    out = lfilter([1.0 - a], [1.0, -a], values, zi=[a * prev])[0]
-    return out, float(out[-1])
+    a = math.exp(-hop_s / time_constant_s)
+    b = 1.0 - a
+    prev = float(values[0]) if last is None else last
+    out = []
+    for v in values.tolist():  # a handful of hops per call: a plain loop is cheapest
+        prev = b * v + a * prev
+        out.append(prev)
+    return np.array(out), prev
 
 
 def quality_index(integrity_part: np.ndarray, concentration_part: np.ndarray) -> np.ndarray:

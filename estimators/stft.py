@@ -87,6 +87,9 @@ def frames_to_columns(frames: list[tuple[np.ndarray, np.ndarray]], n_fft: int,
                       with_derivative: bool, windows: _WindowCache):
     """FFT of windowed frames; full-length frames are batched in one call."""
     n_bins = n_fft // 2 + 1
+    if len(frames) == 1 and not with_derivative:  # the live case: one hop per update
+        w, _ = windows.get(len(frames[0][0]))
+        return np.fft.rfft(frames[0][0] * w, n_fft)[None, :], None
     spectra = np.empty((len(frames), n_bins), dtype=np.complex128)
     spectra_dw = np.empty_like(spectra) if with_derivative else None
     by_len: dict[int, list[int]] = {}

@@ -154,7 +154,9 @@ def stuck_runs(x, last_value, last_run, min_run, out_flags):
     prev = last_value
     for k in range(x.shape[0]):
         v = x[k]
-        if v == prev:
+        if not np.isfinite(v):
+            run = 0  # inf == inf, so test finiteness rather than rely on NaN != NaN
+        elif v == prev:
             run += 1
         else:
             run = 1

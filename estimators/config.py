@@ -143,12 +143,18 @@ class Profile:
     description: str
     hr: RateSettings = field(default_factory=RateSettings)
     rr: RateSettings = field(default_factory=lambda: BREATHING)
+    breathing_from_pulse: bool = True
+    """PPG and ECG channels also give a breathing rate from their respiratory
+    modulations (:mod:`estimators.respiration`)."""
+    rr_pulse: RateSettings = field(default_factory=lambda: BREATHING_FROM_PULSE)
+    """Settings of the breathing rate from a pulse."""
 
     def to_dict(self) -> dict:
         return asdict(self)
 
     def with_hop(self, hop_s: float) -> "Profile":
-        return replace(self, hr=replace(self.hr, hop_s=hop_s), rr=replace(self.rr, hop_s=hop_s))
+        return replace(self, hr=replace(self.hr, hop_s=hop_s), rr=replace(self.rr, hop_s=hop_s),
+                       rr_pulse=replace(self.rr_pulse, hop_s=hop_s))
 
 
 BREATHING = RateSettings(

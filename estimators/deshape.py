@@ -75,7 +75,9 @@ def squeeze(spectra: np.ndarray, spectra_dw: np.ndarray, n_fft: int) -> np.ndarr
     mag = np.abs(spectra)
     with np.errstate(divide="ignore", invalid="ignore"):
         shift_bins = np.imag(spectra_dw / spectra) * n_fft / (2.0 * np.pi)
-    target = np.arange(spectra.shape[1]) + shift_bins
+    # For a tone at bin f0 the derivative theorem gives Im(V_dw / V) = 2 pi (f - f0) / n_fft,
+    # so the tone's own bin is f - shift (the sign of f_hat in the module notes).
+    target = np.arange(spectra.shape[1]) - shift_bins
     small = mag < 1e-8 * (mag.max(axis=1, keepdims=True) + 1e-300)
     target[small] = np.nan
     out = np.empty_like(mag)

@@ -7,6 +7,9 @@ for a set of channels and a profile.
 * two or more heart-rate channels also give a ``fused`` estimate from the
   integrity-weighted mean of their normalised de-shape spectra;
 * every respiration channel gives a breathing-rate estimate;
+* with ``profile.breathing_from_pulse``, every PPG or ECG channel also gives a
+  breathing-rate estimate from its respiratory modulations
+  (:class:`estimators.respiration.PulseBreathing`, ``source`` = its name);
 * accelerometer channels are accepted as motion references (their spectra are formed
   on the heart-rate grid and exposed in :attr:`RateMonitor.motion_spectra`).
 
@@ -28,6 +31,7 @@ from estimators.config import PROFILES, SIGNAL_KINDS, Profile, RateSettings, get
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
 from estimators.preprocess import Analysis, Preprocessor, STUCK_RUN_S, preprocess_batch
+from estimators.respiration import PulseBreathing
 from estimators.stft import Columns, SlidingSTFT, stft_batch
 
 FUSED = "fused"
@@ -331,6 +335,10 @@ class RateMonitor:
         self.last_blocks: dict[tuple[str, str], HopBlock] = {}
         self.motion_spectra: dict[str, HopBlock] = {}
         self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
+        self.pulse_breathing: dict[str, PulseBreathing] = {
+            name: PulseBreathing(name, kind, self.profile.rr_pulse, fs)
+            for name, kind in self.channels
+            if kind in ("ppg", "ecg") and self.profile.breathing_from_pulse}
 
     def grid(self, quantity: str) -> np.ndarray | None:
         """Rates (per minute) of the spectra's bins for ``quantity``, or None."""
@@ -344,6 +352,8 @@ class RateMonitor:
             path.reset()
         for out in self.outputs.values():
             out.reset()
+        for breathing in self.pulse_breathing.values():
+            breathing.reset()
         self._newest_s = np.nan
 
     def _check(self, samples, timestamps):
@@ -384,6 +394,8 @@ class RateMonitor:
         estimates = []
         for key, out in self.outputs.items():
             estimates.extend(out.update(blocks[key]))
+        for name, breathing in self.pulse_breathing.items():
+            estimates.extend(breathing.update(samples[:, self._index[name]], timestamps))
         estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
         return estimates
 
@@ -426,6 +438,8 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
         rate = tracker_mod.refine_peak(readout, path, params.halfwidth_bins, out.rates)
         estimates.extend(estimates_from_track(key[0], key[1], block, rate, conf, out.rates,
                                               out.settings, np.full(len(block), end)))
+    for name, breathing in monitor.pulse_breathing.items():
+        estimates.extend(breathing.offline(samples[:, monitor._index[name]], timestamps))
     estimates.sort(key=lambda e: (e.time_s, e.quantity, e.source))
     return estimates
 

@@ -151,6 +151,13 @@ def _stuck_flags(x: np.ndarray, finite: np.ndarray, min_run: int) -> np.ndarray:
     return ((position >= min_run) & finite).astype(np.float64)
 
 
+def _zero_phase(sos: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``sosfiltfilt`` with its default edge padding, shortened for records too short to
+    take it (scipy refuses those; they are shorter than any STFT window anyway)."""
+    n_taps = 2 * len(sos) + 1 - min(int((sos[:, 2] == 0).sum()), int((sos[:, 5] == 0).sum()))
+    return signal.sosfiltfilt(sos, x, padlen=min(3 * n_taps, len(x) - 1))
+
+
 def preprocess_batch(x: np.ndarray, t: np.ndarray, chain: FilterChain, decimation: int,
                      min_run: int, zero_phase: bool = False) -> Analysis:
     """The whole record at once with scipy's filters: causal (``sosfilt``, the batch twin
@@ -163,7 +170,7 @@ def preprocess_batch(x: np.ndarray, t: np.ndarray, chain: FilterChain, decimatio
     filled = np.where(idx >= 0, x[np.maximum(idx, 0)], 0.0)
     nonfinite = (~finite).astype(np.float64)
     stuck = _stuck_flags(x, finite, min_run)
-    filt = signal.sosfiltfilt if zero_phase else signal.sosfilt
+    filt = _zero_phase if zero_phase else signal.sosfilt
     y = filt(chain.pre, filled) if len(x) else filled
     if chain.envelope and len(x):
         y = np.diff(y, prepend=y[0] if zero_phase else 0.0) ** 2

@@ -52,11 +52,13 @@ def harmonic_concentration(readout: np.ndarray, centre_bins: np.ndarray, offset_
                            halfwidth_bins: float) -> np.ndarray:
     """Concentration score per hop: :func:`estimators._kernels.harmonic_score` of the band
     power ``readout ** 2`` on the harmonic family of the rate at ``centre_bins`` (P,);
-    NaN centres give 0."""
+    NaN centres and centres on the grid's edge bins give 0."""
     readout = np.atleast_2d(readout)
     out = np.zeros(len(readout))
+    last = readout.shape[1] - 1
     for p, centre in enumerate(np.asarray(centre_bins, dtype=np.float64)):
-        if np.isfinite(centre):
+        # As the live kernel: a rate on the grid's first or last bin is a slope, not a peak.
+        if np.isfinite(centre) and 0 < int(round(centre)) < last:
             out[p] = _kernels.harmonic_score(np.ascontiguousarray(readout[p] ** 2), centre,
                                              float(offset_bins), float(halfwidth_bins),
                                              CHANCE_FACTOR, CONCENTRATION_SPAN)

@@ -1,0 +1,275 @@
+"""Every numba kernel equals its plain-Python path (``kernel.py_func``) and a slow
+reference twin; the whole engine gives the same estimates with the JIT switched off."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from estimators import _jit, _kernels, tracker
+from estimators.preprocess import design_chain, initial_state
+from tests import signals
+from tests.reference import dense_hmm, deshape_interp, preprocess_loop, quality_loop
+
+N_BINS = 48
+
+
+def both(kernel):
+    """The compiled kernel and its plain-Python path (the same function when the JIT is
+    off for the whole run)."""
+    return [("compiled", kernel), ("python", kernel.py_func)]
+
+
+def hmm_inputs(rng, n_hops=40):
+    f = np.arange(N_BINS)
+    centre = 15 + 0.2 * np.arange(n_hops)
+    spectra = np.exp(-0.5 * ((f[None, :] - centre[:, None]) / 1.5) ** 2)
+    spectra += 0.4 * rng.random(spectra.shape)
+    em = tracker.emissions_from_spectra(spectra, 2.0)
+    w = rng.random(n_hops)
+    w[::5] = 1.0
+    w[3] = 0.0
+    return spectra, em, np.ascontiguousarray(w)
+
+
+TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "stuck_runs", "squeeze_column",
+                  "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
+                  "rhythm_scores"}
+"""Kernels with a test here (``harmonic_score`` in test_quality.py, ``track_block`` also
+through ``RidgeTracker.track`` in test_tracker.py)."""
+
+
+def test_every_kernel_is_tested_and_exposes_its_python_path():
+    kernels = {name for name in dir(_kernels) if hasattr(getattr(_kernels, name), "py_func")}
+    assert kernels == TESTED_KERNELS, "a kernel was added or removed: test it here"
+    for name in kernels:
+        k = getattr(_kernels, name)
+        assert callable(k.py_func)
+        if _jit.JIT_ENABLED:
+            assert k.py_func is not k
+
+
+@pytest.mark.parametrize("mix", [0.0, 1e-3, 0.3])
+def test_forward_filter(rng, mix):
+    _, em, w = hmm_inputs(rng)
+    kernel = tracker.transition_kernel(1.3)
+    alpha0 = rng.random(N_BINS)
+    alpha0 /= alpha0.sum()
+    _, want = dense_hmm.forward(alpha0, em, w, dense_hmm.transition_matrix(kernel, N_BINS, mix))
+    for label, fn in both(_kernels.forward_filter):
+        alpha = alpha0.copy()
+        out = np.empty_like(em)
+        fn(alpha, em, w, kernel, mix, out)
+        np.testing.assert_allclose(out, want, rtol=1e-10, atol=1e-15, err_msg=label)
+        np.testing.assert_array_equal(alpha, out[-1], err_msg=label)
+
+
+@pytest.mark.parametrize("mix", [0.0, 1e-3, 0.3])
+def test_backward_pass(rng, mix):
+    _, em, w = hmm_inputs(rng)
+    kernel = tracker.transition_kernel(0.8)
+    want = dense_hmm.backward(em, w, dense_hmm.transition_matrix(kernel, N_BINS, mix))
+    for label, fn in both(_kernels.backward_pass):
+        out = np.empty_like(em)
+        fn(em, w, kernel, mix, out)
+        np.testing.assert_allclose(out, want, rtol=1e-10, atol=1e-15, err_msg=label)
+
+
+@pytest.mark.parametrize("mix", [1e-6, 1e-3, 0.3])
+def test_viterbi(rng, mix):
+    _, em, w = hmm_inputs(rng, 60)
+    w[w == 0] = 0.5  # a flat hop makes exact ties, whose winner is arbitrary
+    kernel = tracker.transition_kernel(1.0)
+    a = dense_hmm.transition_matrix(kernel, N_BINS, mix)
+    want, _ = dense_hmm.viterbi(em, w, a)
+    log_e = np.ascontiguousarray(np.log(em) * w[:, None])
+    log_t = np.log((1 - mix) * kernel + mix / N_BINS)
+    for label, fn in both(_kernels.viterbi):
+        path = np.empty(len(em), dtype=np.int64)
+        fn(log_e, log_t, float(np.log(mix / N_BINS)), path)
+        np.testing.assert_array_equal(path, want, err_msg=label)
+
+
+def test_stuck_runs_with_carried_state(rng):
+    x = rng.integers(0, 3, 500).astype(np.float64)  # many short runs of equal values
+    x[100:140] = 7.0
+    x[200] = np.nan
+    x[201:260] = 7.0
+    x[300:320] = np.inf  # non-finite: never stuck, even though inf == inf
+    x[330:335] = -np.inf
+    min_run = 4
+    want = preprocess_loop.stuck_flags(x, min_run)
+    for label, fn in both(_kernels.stuck_runs):
+        flags, value, run, k = [], np.nan, 0, 0
+        for size in (1, 1, 2, 3, 50, 7, 137, 300):
+            out = np.empty(len(x[k:k + size]))
+            run = fn(x[k:k + size], value, run, min_run, out)
+            if len(out):
+                value = x[k + len(out) - 1]
+            flags.append(out)
+            k += size
+        np.testing.assert_array_equal(np.concatenate(flags), want, err_msg=label)
+
+
+def test_squeeze_column(rng):
+    mag = rng.random(65)
+    target = np.arange(65) + rng.normal(0, 3, 65)
+    target[[3, 9]] = np.nan
+    target[5] = -4.0  # off the grid: dropped
+    target[6] = 70.0
+    want = np.zeros(65)
+    for f in range(65):
+        if np.isfinite(target[f]):
+            i = int(np.floor(target[f] + 0.5))
+            if 0 <= i < 65:
+                want[i] += mag[f]
+    for label, fn in both(_kernels.squeeze_column):
+        out = np.full(65, np.nan)
+        fn(mag, target, out)
+        np.testing.assert_allclose(out, want, rtol=1e-15, err_msg=label)
+    # and the public wrapper against the loop twin on a real column
+    t = np.arange(300) / 25.0
+    x = np.sin(2 * np.pi * 1.37 * t) + 0.5 * np.sin(2 * np.pi * 2.74 * t + 1)
+    from estimators.deshape import squeeze
+    from estimators.stft import stft_batch
+    cols = stft_batch(x, t, 200, 200, 25.0, 512, with_derivative=True)
+    got = squeeze(cols.spectra, cols.spectra_dw, 512)
+    for p in range(len(cols)):
+        np.testing.assert_allclose(got[p], deshape_interp.squeeze_column(
+            cols.spectra[p], cols.spectra_dw[p], 512), rtol=1e-12, atol=1e-15)
+
+
+def test_sos_filter_equals_scipy_with_carried_state(rng):
+    sos = signal.butter(4, [0.5, 8.0], btype="bandpass", fs=125.0, output="sos")
+    x = rng.standard_normal(1000)
+    want = signal.sosfilt(sos, x)
+    for label, fn in both(_kernels.sos_filter):
+        zi = np.zeros((sos.shape[0], 2))
+        parts, k = [], 0
+        for size in (1, 10, 333, 656):
+            out = np.empty(size)
+            fn(sos, x[k:k + size], zi, out)
+            parts.append(out)
+            k += size
+        np.testing.assert_allclose(np.concatenate(parts), want, rtol=1e-12, atol=1e-14,
+                                   err_msg=label)
+
+
+@pytest.mark.parametrize("kind", ["ppg", "ecg"])
+def test_preprocess_chunk(rng, kind):
+    fs, decimation, min_run = 125.0, 5, 15
+    t = np.arange(3000) / fs
+    x = signals.rhythm(t, np.full(len(t), 80.0), signals.ecg_like, noise_std=0.2, rng=rng)
+    x[500:560] = np.nan
+    x[900:1000] = x[900]
+    chain = design_chain(kind, "hr", fs, fs / decimation)
+    want = preprocess_loop.preprocess(x, t, chain, decimation, min_run)
+    post = np.zeros((0, 6)) if chain.post is None else chain.post
+    for label, fn in both(_kernels.preprocess_chunk):
+        state = initial_state(chain)
+        outs, k = [], 0
+        for size in (1, 2, 4, 993, 2000):
+            buf = np.empty((4, size // decimation + 2))
+            n = fn(x[k:k + size], t[k:k + size], chain.pre, state.zi_pre, chain.envelope,
+                   post, state.zi_post, state.scalars, decimation, float(min_run),
+                   buf[0], buf[1], buf[2], buf[3])
+            outs.append(buf[:, :n])
+            k += size
+        got = np.concatenate(outs, axis=1)
+        scale = np.abs(want["values"]).max()
+        np.testing.assert_allclose(got[0], want["values"], rtol=0, atol=1e-12 * scale,
+                                   err_msg=label)
+        np.testing.assert_array_equal(got[1], want["timestamps"], err_msg=label)
+        np.testing.assert_array_equal(got[2], want["cum_nonfinite"], err_msg=label)
+        np.testing.assert_array_equal(got[3], want["cum_stuck"], err_msg=label)
+
+
+def test_track_block_compiled_equals_python(rng):
+    """The hot-path kernel's two paths agree; the same inputs through both."""
+    spectra, _, w = hmm_inputs(rng, 50)
+    readout = spectra + 0.2 * rng.random(spectra.shape)
+    compiled, python = [fn for _, fn in both(_kernels.track_block)]
+    live = tracker.RidgeTracker(40 + 0.75 * np.arange(N_BINS),
+                                tracker.make_params(0.75, 0.25, 3.0, 1e-3, 4.0), 2.0)
+    results = []
+    for fn in (compiled, python):
+        saved = _kernels.track_block
+        try:
+            _kernels.track_block = fn
+            live.reset()
+            results.append(live.track(spectra, w, readout) + (live.posterior.copy(),))
+        finally:
+            _kernels.track_block = saved
+    for a, b in zip(*results):
+        np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-15)
+
+
+def test_rhythm_scores(rng):
+    """Per hop: the harmonic score of ``readout ** 2`` on the family of the highest
+    ``spectra`` bin, 0 when that bin is a band edge."""
+    spectra, _, _ = hmm_inputs(rng, 30)
+    readout = spectra + 0.3 * rng.random(spectra.shape)
+    spectra[4, 0] = 10.0  # peak on the lower edge
+    spectra[5, -1] = 10.0  # peak on the upper edge
+    spectra[6] = 0.0  # nothing: the first bin counts as the peak, an edge
+    offset, hw = 53.3, 5.33
+    want = []
+    for p in range(len(spectra)):
+        top = int(np.argmax(spectra[p]))
+        want.append(0.0 if top in (0, N_BINS - 1) else quality_loop.harmonic_score(
+            readout[p] ** 2, float(top), offset, hw, 1.5, 0.3))
+    for label, fn in both(_kernels.rhythm_scores):
+        out = np.full(len(spectra), np.nan)
+        fn(spectra, readout, offset, hw, 1.5, 0.3, out)
+        np.testing.assert_allclose(out, want, rtol=1e-12, atol=1e-15, err_msg=label)
+    assert want[4] == want[5] == want[6] == 0.0 and max(want) > 0
+
+
+# --------------------------------------------------------- the engine without the JIT
+
+
+SMOKE_RUN = """
+import numpy as np
+from estimators.monitor import RateMonitor
+from tests import signals
+rng = np.random.default_rng(7)
+fs = 125.0
+t = np.arange(int(24 * fs)) / fs
+rate = signals.ramp_rate(t, 70.0, 85.0)
+x = np.column_stack((signals.rhythm(t, rate, signals.dicrotic_pulse, noise_std=0.3, rng=rng),
+                     signals.rhythm(t, rate, signals.ecg_like, noise_std=0.1, rng=rng)))
+x[1500:1600, 0] = np.nan
+monitor = RateMonitor([("finger", "ppg"), ("chest", "ecg")], fs, "wrist")
+est = []
+for k in range(0, len(t), 97):
+    est += monitor.update(x[k:k + 97], t[k:k + 97])
+rows = [[e.source, e.emitted_s, e.rate_per_min, e.confidence, e.quality] for e in est]
+"""
+
+SMOKE_WITHOUT_JIT = """
+import json
+from estimators import _jit, _kernels
+assert not _jit.JIT_ENABLED and not hasattr(_kernels.forward_filter, "signatures")
+""" + SMOKE_RUN + """
+print(json.dumps(rows))
+"""
+
+
+def test_monitor_without_jit_equals_monitor_with_jit(without_jit):
+    """The same chunked run in a fresh interpreter with ``RIDGEWATCH_NO_JIT=1``."""
+    plain = without_jit(SMOKE_WITHOUT_JIT)
+    namespace: dict = {}
+    exec(compile(SMOKE_RUN, "smoke", "exec"), namespace)  # noqa: S102 - our own test code
+    here = json.loads(json.dumps(namespace["rows"]))  # NaN -> NaN, as the child printed
+    assert len(plain) == len(here) > 100
+    for a, b in zip(plain, here):
+        assert a[:2] == b[:2]
+        for x, y in zip(a[2:], b[2:]):
+            if np.isnan(x) or np.isnan(y):
+                assert np.isnan(x) and np.isnan(y)
+            else:
+                # no fastmath: compiled and plain paths agree to rounding
+                assert x == pytest.approx(y, rel=1e-9, abs=1e-12)

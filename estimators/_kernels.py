@@ -308,6 +308,28 @@ def harmonic_score(power, centre, offset, halfwidth, chance_factor, span):
 
 
 @kernel
+def hop_rhythm(spectra_row, readout_row, offset, halfwidth, chance_factor, span, pw):
+    """Rhythm score of one hop; fills ``pw`` with ``readout_row ** 2``. The score is
+    :func:`harmonic_score` of that power on the family of the highest bin of
+    ``spectra_row`` (the de-shape peak, on the fundamental), or 0 when that bin is a band
+    edge (a slope rising out of the band is not a rhythm inside it). Also returns the
+    largest finite value of ``spectra_row``."""
+    n_bins = spectra_row.shape[0]
+    top = 0
+    peak_s = 0.0
+    for f in range(n_bins):
+        v = readout_row[f]
+        pw[f] = v * v
+        v = spectra_row[f]
+        if np.isfinite(v) and v > peak_s:
+            peak_s = v
+            top = f
+    if top == 0 or top == n_bins - 1:
+        return 0.0, peak_s
+    return harmonic_score(pw, float(top), offset, halfwidth, chance_factor, span), peak_s
+
+
+@kernel
 def track_block(spectra, readout, weights, alpha, transition, mix, power, floor, halfwidth,
                 offset, chance_factor, span, check_rhythm, out_position, out_confidence,
                 out_concentration):
@@ -337,20 +359,10 @@ def track_block(spectra, readout, weights, alpha, transition, mix, power, floor,
     prior = np.empty(n_bins)
     pw = np.empty(n_bins)
     for p in range(n_hops):
-        top = 0
-        peak_s = 0.0
-        for f in range(n_bins):
-            v = readout[p, f]
-            pw[f] = v * v
-            v = spectra[p, f]
-            if np.isfinite(v) and v > peak_s:
-                peak_s = v
-                top = f
-        rhythm = 1.0
-        if check_rhythm:
-            rhythm = harmonic_score(pw, float(top), offset, halfwidth, chance_factor, span)
-            if top == 0 or top == n_bins - 1:
-                rhythm = 0.0  # a slope rising out of the band is not a rhythm inside it
+        rhythm, peak_s = hop_rhythm(spectra[p], readout[p], offset, halfwidth, chance_factor,
+                                    span, pw)
+        if not check_rhythm:
+            rhythm = 1.0
         for f in range(n_bins):
             acc = 0.0
             lo = f - half
@@ -419,16 +431,5 @@ def rhythm_scores(spectra, readout, offset, halfwidth, chance_factor, span, out)
     n_hops, n_bins = spectra.shape
     pw = np.empty(n_bins)
     for p in range(n_hops):
-        top = 0
-        peak_s = 0.0
-        for f in range(n_bins):
-            v = readout[p, f]
-            pw[f] = v * v
-            v = spectra[p, f]
-            if np.isfinite(v) and v > peak_s:
-                peak_s = v
-                top = f
-        if top == 0 or top == n_bins - 1:
-            out[p] = 0.0
-        else:
-            out[p] = harmonic_score(pw, float(top), offset, halfwidth, chance_factor, span)
+        out[p] = hop_rhythm(spectra[p], readout[p], offset, halfwidth, chance_factor, span,
+                            pw)[0]

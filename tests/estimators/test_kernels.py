@@ -37,7 +37,7 @@ def hmm_inputs(rng, n_hops=40):
 
 TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "stuck_runs", "squeeze_column",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
-                  "rhythm_scores"}
+                  "rhythm_scores", "hop_rhythm"}
 """Kernels with a test here (``harmonic_score`` in test_quality.py, ``track_block`` also
 through ``RidgeTracker.track`` in test_tracker.py)."""
 
@@ -226,6 +226,23 @@ def test_rhythm_scores(rng):
         fn(spectra, readout, offset, hw, 1.5, 0.3, out)
         np.testing.assert_allclose(out, want, rtol=1e-12, atol=1e-15, err_msg=label)
     assert want[4] == want[5] == want[6] == 0.0 and max(want) > 0
+
+
+def test_hop_rhythm_is_one_row_of_rhythm_scores(rng):
+    """The per-hop helper returns the same score as the block kernel, the peak of the
+    spectra row, and leaves ``readout ** 2`` in its scratch array."""
+    spectra, _, _ = hmm_inputs(rng, 6)
+    readout = spectra + 0.3 * rng.random(spectra.shape)
+    spectra[2, 0] = 10.0  # an edge peak scores 0
+    block = np.empty(len(spectra))
+    _kernels.rhythm_scores(spectra, readout, 53.3, 5.33, 1.5, 0.3, block)
+    for label, fn in both(_kernels.hop_rhythm):
+        for p in range(len(spectra)):
+            pw = np.empty(N_BINS)
+            score, peak = fn(spectra[p], readout[p], 53.3, 5.33, 1.5, 0.3, pw)
+            assert score == pytest.approx(block[p], rel=1e-12, abs=1e-15), label
+            assert peak == spectra[p].max()
+            np.testing.assert_array_equal(pw, readout[p] ** 2)
 
 
 # --------------------------------------------------------- the engine without the JIT

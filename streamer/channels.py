@@ -60,17 +60,27 @@ def select(info: SourceInfo, specs: list[str] | None) -> list[Selected]:
         chosen = []
         for spec in specs:
             name, kind = parse_spec(spec)
+            # Case is ignored when that finds exactly one channel (as the file readers do).
+            folded = [i for i, n in enumerate(names) if n.casefold() == name.casefold()]
             if name in names:
                 idx = names.index(name)
+            elif len(folded) == 1:
+                idx = folded[0]
             elif name.isdigit() and int(name) < len(names):
                 idx = int(name)
             else:
                 raise InputError(
                     f"{info.name}: no channel {name!r}; channels are: {', '.join(names)} "
                     f"(or a 0-based index below {len(names)})")
+            if any(c.index == idx for c in chosen):
+                raise InputError(f"{info.name}: channel {names[idx]!r} is named twice in "
+                                 f"--channel; name each channel once")
             chosen.append(Selected(idx, names[idx], kind))
-        if len({c.index for c in chosen}) != len(chosen):
-            raise InputError(f"{info.name}: a channel is named twice in --channel")
+        if not any(c.kind in ("ppg", "ecg", "resp") for c in chosen):
+            raise InputError(
+                f"{info.name}: --channel names no PPG, ECG or respiration channel (only "
+                f"{', '.join(f'{c.name}={c.kind}' for c in chosen)}); add one, e.g. "
+                f"--channel NAME=ppg")
         return chosen
     chosen = []
     for i, ch in enumerate(info.channels):

@@ -36,9 +36,10 @@ def _speed(text: str) -> float:
     try:
         value = float(text.rstrip("xX"))
     except ValueError:
-        raise argparse.ArgumentTypeError(f"--speed {text!r}: give a number (e.g. 1, 20) or 'max'")
+        raise argparse.ArgumentTypeError(
+            f"{text!r} is not a speed; give N for N x real time (e.g. 1, 20) or 'max'")
     if not value > 0:
-        raise argparse.ArgumentTypeError(f"--speed {text!r} must be > 0")
+        raise argparse.ArgumentTypeError(f"{text!r} must be > 0 (N x real time, or 'max')")
     return value
 
 
@@ -78,8 +79,16 @@ def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> Non
     p.add_argument("-q", "--quiet", action="store_true", help="no progress or summary lines")
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with the house error format: one line on stderr and exit code 2 (the
+    stock parser prints the whole usage block first)."""
+
+    def error(self, message: str):
+        self.exit(2, f"ridgewatch: error: {message} (see '{self.prog} --help')\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="ridgewatch",
         description="Live heart-rate and breathing-rate estimation from LSL streams and "
                     "recordings. " + CAUTION)
@@ -146,6 +155,27 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--no-report", action="store_true", help="summary table only")
     p.add_argument("-q", "--quiet", action="store_true")
     return parser
+
+
+def _quiet_liblsl() -> None:
+    """Keep liblsl's INFO lines ("Loaded default config", ...) off stderr, so that an
+    error stays one line. Warnings and errors still show.
+
+    Skipped when the user has an LSL configuration file, because configuration content
+    set here would take precedence over that file (pylsl ``set_config_content`` docs).
+    The places liblsl looks (``LSLAPICFG``, ``./lsl_api.cfg``, ``~/lsl_api/lsl_api.cfg``,
+    ``/etc/lsl_api/lsl_api.cfg``) are from memory of the liblsl documentation.
+    """
+    candidates = [os.environ.get("LSLAPICFG"), "lsl_api.cfg",
+                  str(Path.home() / "lsl_api" / "lsl_api.cfg"), "/etc/lsl_api/lsl_api.cfg"]
+    if any(c and Path(c).is_file() for c in candidates):
+        return
+    try:
+        import pylsl
+        # loguru verbosity: -1 = WARNING; liblsl's default is 0 = INFO (from memory).
+        pylsl.set_config_content("[log]\nlevel = -1\n")
+    except (ImportError, NotImplementedError, AttributeError):
+        pass  # an older liblsl: its INFO lines show, nothing else changes
 
 
 def _screen_available() -> bool:
@@ -215,14 +245,23 @@ def _run(args, source, mode: str, input_id: str) -> int:
         log_path = Path(args.log) if args.log else _default_log_path(source.info.name)
         log_sink = EstimateLog(log_path, mode, source.info.name, mapping, config)
     runner = Runner(source, selected, profile, log=log_sink, duration_s=args.duration)
+    if args.publish or getattr(args, "publish_samples", False):
+        _quiet_liblsl()
     if args.publish:
         from streamer.sinks.outlet import EstimateOutlet
         runner.outlet = EstimateOutlet(list(runner.monitor.outputs), profile.hr.hop_s,
                                        input_id=input_id, use_stream_time=(mode == "live"))
     publisher = None
     if getattr(args, "publish_samples", False):
+        from streamer.sources.base import ChannelInfo, SourceInfo
         from streamer.sources.lsl_publish import SamplePublisher
-        publisher = SamplePublisher(source.info)
+        # The runner hands listeners the selected columns only, in --channel order, so
+        # the published stream describes exactly those (with the kinds chosen).
+        units = {c.name: c.unit for c in source.info.channels}
+        published = SourceInfo(source.info.name, source.info.fs, tuple(
+            ChannelInfo(s.name, s.kind, units.get(s.name, "")) for s in selected),
+            source.info.source_id)
+        publisher = SamplePublisher(published)
         runner.listeners.append(lambda u: u.chunk is not None and publisher.push_chunk(
             _full_chunk(u)))
     if not args.quiet:
@@ -309,7 +348,9 @@ def cmd_demo(args) -> int:
         recording = Recording(sim.samples, sim.timestamps, info)
     if not args.quiet:
         print(f"demo: synthetic cycling bench trial ({recording.duration_s:.0f} s: rest, "
-              f"ramp, intervals, recovery) at {args.speed:g}x", file=sys.stderr)
+              f"ramp, intervals, recovery) at "
+              f"{'full speed' if math.isinf(args.speed) else f'{args.speed:g}x'}",
+              file=sys.stderr)
     source = RecordingSource(recording, speed=args.speed, chunk_s=0.25)
     return _run(args, source, "replay", "demo")
 
@@ -317,6 +358,11 @@ def cmd_demo(args) -> int:
 def cmd_live(args) -> int:
     from streamer.sources.lsl_source import LslSource
 
+    # Import the engine (seconds on a busy machine) before subscribing, so the input
+    # does not pile up meanwhile and come out as a burst of late estimates.
+    import streamer.runner  # noqa: F401
+
+    _quiet_liblsl()
     kinds = None
     source = LslSource(name=args.name, type=args.type, source_id=args.source_id,
                        timeout_s=args.timeout, channel_kinds=kinds)
@@ -330,6 +376,7 @@ def cmd_simulate(args) -> int:
     from streamer.sources.base import ChannelInfo, Chunk, SourceInfo
     from streamer.sources.lsl_publish import SamplePublisher
 
+    _quiet_liblsl()
     sim = cycling_trial(args.fs)
     info = SourceInfo(args.name, args.fs, tuple(
         ChannelInfo(n, k, u) for n, k, u in zip(sim.names, sim.kinds, sim.units)),

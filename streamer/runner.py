@@ -28,6 +28,52 @@ from streamer.sources.base import Chunk, SourceEvent
 
 log = logging.getLogger("ridgewatch")
 
+RATE_TOLERANCE = 0.01
+"""Relative difference between the rate the timestamps show and the nominal rate above
+which the user is warned. The engine counts samples at the nominal rate, so every rate
+it reports is off by about the same fraction. Our own choice: a tenth of the heart-rate
+tolerance of +-10 %."""
+
+
+class RateCheck:
+    """Compares the sampling rate the timestamps show with the nominal rate.
+
+    Each ``window_s`` of samples, the rate is the number of regular steps (between 0
+    and 2.5 sample periods, the gap rule of the LSL source) over their summed length:
+    gaps, repeats and clock jumps are left out, and jitter cancels in the sum. When it
+    differs from ``fs`` by more than :data:`RATE_TOLERANCE`, :meth:`update` returns one
+    ``"irregular"`` event (once per run) saying how far the reported rates are off.
+    """
+
+    def __init__(self, fs: float, stream: str, window_s: float = 60.0):
+        self.fs, self.stream = float(fs), stream
+        self.window = max(2, int(window_s * fs))
+        self.warned = False
+        self._last_s, self._count, self._span_s = math.nan, 0, 0.0
+
+    def update(self, timestamps: np.ndarray) -> SourceEvent | None:
+        if self.warned or len(timestamps) == 0:
+            return None
+        steps = np.diff(np.concatenate(([self._last_s], timestamps)))
+        self._last_s = float(timestamps[-1])
+        regular = (steps > 0) & (steps <= 2.5 / self.fs)  # NaN steps compare False
+        self._count += int(regular.sum())
+        self._span_s += float(steps[regular].sum())
+        if self._count < self.window:
+            return None
+        measured = self._count / self._span_s
+        self._count, self._span_s = 0, 0.0
+        if abs(measured / self.fs - 1.0) <= RATE_TOLERANCE:
+            return None
+        self.warned = True
+        reads = self.fs / measured - 1.0  # a true rate f is reported as f * fs / measured
+        return SourceEvent(
+            "irregular",
+            f"stream '{self.stream}' delivers {measured:.5g} samples per second of its own "
+            f"timestamps, not its nominal {self.fs:g} Hz; rates are computed at the nominal "
+            f"rate, so they read {100 * abs(reads):.1f} % {'low' if reads < 0 else 'high'}",
+            float(timestamps[-1]), {"measured_fs": measured})
+
 
 @dataclass
 class RunStats:
@@ -87,6 +133,7 @@ class Runner:
         self.stop_event = threading.Event()
         self.stats = RunStats()
         self.stop_reason = ""
+        self.rate_check = RateCheck(source.info.fs, source.info.name)
 
     def stop(self, reason: str = "stop requested") -> None:
         """Ask the loop to end at the next item (safe from any thread or signal handler)."""
@@ -99,7 +146,8 @@ class Runner:
             pass
 
     def _notify(self, update: Update) -> None:
-        for listener in self.listeners:
+        # Over a copy: removing a broken listener must not skip the next one.
+        for listener in list(self.listeners):
             try:
                 listener(update)
             except Exception as exc:  # a broken display never stops estimation or logging
@@ -120,6 +168,9 @@ class Runner:
         if math.isnan(st.stream_start_s):
             st.stream_start_s = float(chunk.timestamps[0])
         st.stream_end_s = float(chunk.timestamps[-1])
+        rate_event = self.rate_check.update(chunk.timestamps)
+        if rate_event is not None:
+            self._handle_event(rate_event)
         hops = len({e.emitted_s for e in estimates}) or 1
         compute_ms = 1e3 * elapsed / hops
         if self.log is not None:
@@ -140,6 +191,11 @@ class Runner:
             log.info("%s", event.message)
         if self.log is not None and event.kind != "replaying":
             self.log.write_event(event.kind, event.message, event.time_s)
+        if event.kind == "resumed":
+            # The time axis may jump at a comeback (forwards over the loss, or backwards
+            # for a restarted sender): windows must not straddle it, so estimation
+            # starts afresh, as the LSL source asks of its consumers.
+            self.monitor.reset()
         self._notify(Update([], None, {}, event))
 
     def run(self) -> RunStats:

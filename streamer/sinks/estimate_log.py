@@ -139,7 +139,13 @@ class EstimateLog:
             os.fsync(self._file.fileno())
         except OSError:
             pass
-        self._file.close()
+        try:
+            self._file.close()
+        except OSError:
+            # Every line is flushed as it is written, so only text whose failed write
+            # was already reported (e.g. a full disk) can still be pending here;
+            # raising again would only repeat that error.
+            pass
 
     def __enter__(self):
         return self
@@ -189,6 +195,11 @@ def read_log(path) -> LogTable:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
         raise InputError(f"cannot read the estimate log {path}: {exc.strerror}") from None
+    except UnicodeDecodeError:
+        raise InputError(
+            f"{path} is not a ridgewatch estimate log (not UTF-8 text); give a log written "
+            f"by replay, live, demo or offline"
+        ) from None
     header: dict = {}
     lines = text.splitlines()
     if text and not text.endswith("\n") and lines:
@@ -211,8 +222,14 @@ def read_log(path) -> LogTable:
             f"{path} is not a ridgewatch estimate log (expected the header row "
             f"'{','.join(COLUMNS)}' after the '#' lines)"
         )
-    rows = [line.split(",") for line in lines[i + 1:]
-            if line.strip() and not line.startswith("#")]
+    # (1-based line number, cells): event lines between rows keep the numbers right.
+    numbered = [(k + 1, line.split(",")) for k, line in enumerate(lines) if k > i
+                and line.strip() and not line.startswith("#")]
+    for line_no, r in numbered:
+        if len(r) != len(COLUMNS):
+            raise InputError(f"{path}, line {line_no}: {len(r)} cells instead of "
+                             f"{len(COLUMNS)}; not a row of a ridgewatch estimate log")
+    rows = [r for _, r in numbered]
     cols: dict = {}
     for j, name in enumerate(COLUMNS):
         if name in ("quantity", "source"):
@@ -221,10 +238,10 @@ def read_log(path) -> LogTable:
         try:
             cols[name] = np.array([float(r[j]) if r[j] != "" else np.nan for r in rows],
                                   dtype=np.float64)
-        except (ValueError, IndexError):
-            bad = next(k for k, r in enumerate(rows) if len(r) != len(COLUMNS) or not _is_num(r[j]))
+        except ValueError:
+            line_no, r = next((n, r) for n, r in numbered if not _is_num(r[j]))
             raise InputError(
-                f"{path}, line {i + 2 + bad}: column '{name}' is not a number"
+                f"{path}, line {line_no}: column '{name}' is not a number: {r[j]!r}"
             ) from None
     return LogTable(header, cols)
 

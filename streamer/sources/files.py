@@ -60,7 +60,7 @@ def read_recording(
     stream: str | None = None,
     annotators: Sequence[str] | None = None,
 ) -> Recording:
-    """Read a recording file.
+    r"""Read a recording file.
 
     Parameters
     ----------

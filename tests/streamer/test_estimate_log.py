@@ -1,0 +1,190 @@
+"""The estimate log: writing, reading back, interrupted files and files that are not logs."""
+
+from __future__ import annotations
+
+import gzip
+import math
+
+import numpy as np
+import pytest
+
+from estimators.estimate import Estimate
+from streamer import __version__
+from streamer.errors import InputError
+from streamer.sinks.estimate_log import COLUMNS, EstimateLog, format_row, read_log, rows_text
+
+CHANNELS = {"PLETH": "ppg", "RESP": "resp"}
+CONFIG = {"profile": {"name": "wrist", "hr": {"window_s": 8.0}}, "fs": 125.0, "speed": "max"}
+
+
+def estimates(rng, n=40) -> list[Estimate]:
+    """Hops 0.25 s apart, two quantities each, some without a rate."""
+    out = []
+    for p in range(n):
+        emitted = 8.0 + 0.25 * p
+        for quantity, source, delay in (("hr", "PLETH", 3.98), ("rr", "RESP", 15.9)):
+            rate = float(rng.uniform(40, 180)) if p % 7 else math.nan
+            out.append(Estimate(quantity, source, emitted - delay, emitted, rate,
+                                float(rng.uniform()), float(rng.uniform())))
+    return out
+
+
+def write(path, ests, events=()) -> EstimateLog:
+    """A log of ``ests``; ``events`` maps an index in ``ests`` to an event written
+    before that estimate."""
+    events = dict(events)
+    with EstimateLog(path, "replay", "session.csv", CHANNELS, CONFIG) as log:
+        for k, est in enumerate(ests):
+            if k in events:
+                log.write_event(*events[k])
+            log.write(est, compute_ms=0.125 * k)
+    return log
+
+
+def check_matches(table, ests):
+    cols = table.columns
+    assert len(table) == len(ests)
+    assert list(cols["quantity"]) == [e.quantity for e in ests]
+    assert list(cols["source"]) == [e.source for e in ests]
+    # The writer keeps 4 decimals for times and fractions, 3 for rates: half a unit
+    # in the last place is the round-off.
+    for name, atol in (("emitted_s", 5e-5), ("time_s", 5e-5), ("confidence", 5e-5),
+                       ("quality", 5e-5), ("rate_per_min", 5e-4)):
+        np.testing.assert_allclose(cols[name], [getattr(e, name) for e in ests],
+                                   atol=atol, equal_nan=True, err_msg=name)
+    np.testing.assert_allclose(cols["delay_s"], [e.delay_s for e in ests], atol=1e-4)
+    np.testing.assert_allclose(cols["compute_ms"], 0.125 * np.arange(len(ests)), atol=5e-5)
+
+
+def test_round_trip(tmp_path, rng):
+    ests = estimates(rng)
+    log = write(tmp_path / "logs" / "a.csv", ests)  # the folder is created
+    assert log.rows_written == len(ests)
+    table = read_log(tmp_path / "logs" / "a.csv")
+    assert table.header["version"] == __version__
+    assert table.header["mode"] == "replay"
+    assert table.header["source"] == "session.csv"
+    assert table.header["channels"] == CHANNELS
+    assert table.header["config"] == CONFIG
+    check_matches(table, ests)
+    assert table.pairs() == [("hr", "PLETH"), ("rr", "RESP")]
+    hr = table.select(quantity="hr")
+    assert len(hr) == len(ests) // 2 and set(hr.columns["source"]) == {"PLETH"}
+    assert len(table.select(source="nope")) == 0
+
+
+def test_text_layout(tmp_path, rng):
+    ests = estimates(rng, 3)
+    write(tmp_path / "a.csv", ests)
+    lines = (tmp_path / "a.csv").read_text().splitlines()
+    assert lines[0] == "# ridgewatch estimate log"
+    assert lines[6] == ",".join(COLUMNS)
+    assert all(len(line.split(",")) == len(COLUMNS) for line in lines[7:])
+    assert rows_text(tmp_path / "a.csv") == lines[7:]
+    assert lines[7] == format_row(ests[0], 0.0).rstrip("\n")
+    no_rate = Estimate("hr", "PLETH", 1.0, 5.0, math.nan, 0.5, 0.25)
+    assert format_row(no_rate, math.nan) == "5.0000,1.0000,hr,PLETH,,0.5000,0.2500,4.0000,\n"
+
+
+def test_partial_last_line_is_ignored(tmp_path, rng):
+    ests = estimates(rng, 10)
+    path = tmp_path / "a.csv"
+    write(path, ests)
+    whole = format_row(ests[0], 1.0)
+    with open(path, "a") as fh:
+        fh.write(whole[: len(whole) // 2])  # the writer was killed mid-line
+    check_matches(read_log(path), ests)
+
+
+def test_events_are_skipped(tmp_path, rng):
+    ests = estimates(rng, 10)
+    path = tmp_path / "a.csv"
+    write(path, ests, {0: ("replaying", "starting", math.nan), 4: ("lost", "stream gone", 9.0),
+                       6: ("resumed", "stream back", 12.5)})
+    text = path.read_text()
+    assert "# event nan replaying: starting\n" in text
+    assert "# event 9.0000 lost: stream gone\n" in text
+    assert "# event 12.5000 resumed: stream back\n" in text
+    check_matches(read_log(path), ests)
+    assert len(rows_text(path)) == len(ests)
+
+
+def test_rows_are_readable_while_the_log_is_open(tmp_path, rng):
+    ests = estimates(rng, 5)
+    path = tmp_path / "a.csv"
+    log = EstimateLog(path, "live", "stream", CHANNELS, CONFIG)
+    try:
+        for est in ests:
+            log.write(est)
+        # Flushed line by line: another reader sees every row before close().
+        assert len(read_log(path)) == len(ests)
+    finally:
+        log.close()
+    log.close()  # twice is fine
+
+
+def test_header_only_log_has_no_rows(tmp_path):
+    EstimateLog(tmp_path / "a.csv", "live", "s", CHANNELS, CONFIG).close()
+    table = read_log(tmp_path / "a.csv")
+    assert len(table) == 0 and table.pairs() == []
+
+
+def test_a_recording_is_not_a_log(tmp_path):
+    path = tmp_path / "session.csv"
+    path.write_text("time_s,PLETH\n0.0,1.0\n0.008,1.1\n")
+    with pytest.raises(InputError, match=r"session\.csv is not a ridgewatch estimate log "
+                                         r"\(expected the header row 'emitted_s,time_s,"):
+        read_log(path)
+
+
+def test_empty_file_is_not_a_log(tmp_path):
+    (tmp_path / "empty.csv").write_text("")
+    with pytest.raises(InputError, match=r"empty\.csv is not a ridgewatch estimate log"):
+        read_log(tmp_path / "empty.csv")
+
+
+def test_binary_file_is_not_a_log(tmp_path):
+    path = tmp_path / "session.csv.gz"
+    path.write_bytes(gzip.compress(b"\xff\xfe" + bytes(range(256)) * 4))
+    with pytest.raises(InputError, match=r"session\.csv\.gz is not a ridgewatch estimate "
+                                         r"log \(not UTF-8 text\)"):
+        read_log(path)
+
+
+def test_missing_file(tmp_path):
+    with pytest.raises(InputError, match=r"cannot read the estimate log .*nope\.csv"):
+        read_log(tmp_path / "nope.csv")
+
+
+def test_bad_number_names_the_line(tmp_path, rng):
+    ests = estimates(rng, 4)
+    path = tmp_path / "a.csv"
+    write(path, ests, {1: ("lost", "gone", 8.2)})
+    lines = path.read_text().splitlines()
+    # Line 11: header block (6) + header row (1) + 2 rows + the event line, then the row.
+    assert lines[10].startswith("8.2500,")
+    cells = lines[10].split(",")
+    cells[4] = "7x"
+    lines[10] = ",".join(cells)
+    path.write_text("\n".join(lines) + "\n")
+    with pytest.raises(InputError, match=r"a\.csv, line 11: column 'rate_per_min' is not a "
+                                         r"number: '7x'"):
+        read_log(path)
+
+
+@pytest.mark.parametrize("cells", [3, 10])
+def test_wrong_number_of_cells_names_the_line(tmp_path, rng, cells):
+    ests = estimates(rng, 4)
+    path = tmp_path / "a.csv"
+    write(path, ests)
+    with open(path, "a") as fh:
+        fh.write(",".join(["1.0"] * cells) + "\n")
+        fh.write(format_row(ests[0], 0.0))
+    with pytest.raises(InputError, match=rf"a\.csv, line 16: {cells} cells instead of 9"):
+        read_log(path)
+
+
+def test_unwritable_path(tmp_path):
+    (tmp_path / "file").write_text("x")
+    with pytest.raises(InputError, match=r"cannot write the estimate log .*file/log\.csv"):
+        EstimateLog(tmp_path / "file" / "log.csv", "live", "s", CHANNELS, CONFIG)

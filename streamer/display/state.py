@@ -1,34 +1,135 @@
-"""What the displays show, kept without Qt: latest values, status, history buffers."""
+"""What the displays show, kept without Qt: latest values, stream status, wording.
+
+Both the terminal display and the window read the same :class:`DisplayState`, so the
+words a user sees (quality, stream status, units) are decided in one place.
+"""
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 QUALITY_WORDS = ((0.6, "good"), (0.3, "weak"), (0.0, "unusable"))
 """Thresholds of the quality index and the plain word shown with it (our own wording)."""
 
+UNITS = {"hr": "bpm", "rr": "breaths/min"}
+"""Unit shown after a rate, per quantity."""
+
+QUANTITY_NAMES = {"hr": "heart rate", "rr": "breathing rate"}
+"""Plain name of each quantity."""
+
+CHANNEL_QUANTITY = {"ppg": "hr", "ecg": "hr", "resp": "rr"}
+"""Which estimate carries the quality of a channel of each kind (``acc`` has none: it
+is only a motion reference)."""
+
 
 def quality_word(quality: float) -> str:
+    """Plain word for a quality index in [0, 1]: ``good``, ``weak`` or ``unusable``.
+
+    NaN (no quality known) counts as ``unusable``.
+
+    Examples
+    --------
+    >>> quality_word(0.9), quality_word(0.45), quality_word(0.1)
+    ('good', 'weak', 'unusable')
+    """
     for threshold, word in QUALITY_WORDS:
         if quality >= threshold:
             return word
     return "unusable"
 
 
+def unit_of(quantity: str) -> str:
+    """``bpm`` for heart rate, ``breaths/min`` for breathing rate."""
+    return UNITS.get(quantity, "/min")
+
+
+def quantity_name(quantity: str) -> str:
+    """``heart rate`` or ``breathing rate``."""
+    return QUANTITY_NAMES.get(quantity, quantity)
+
+
+def format_rate(rate_per_min: float, digits: int = 0) -> str:
+    """A rate for a readout; an em dash when there is no estimate (NaN)."""
+    if rate_per_min is None or not math.isfinite(rate_per_min):
+        return "\u2014"
+    return f"{rate_per_min:.{digits}f}"
+
+
+def _speed_words(speed) -> str:
+    try:
+        speed = float(speed)
+    except (TypeError, ValueError):
+        return ""
+    if math.isinf(speed):
+        return "at full speed"
+    return f"at {speed:g}x"
+
+
 @dataclass
 class DisplayState:
-    """Latest estimate per (quantity, source) and the stream status line."""
+    """Latest estimate per (quantity, source) and the stream status.
+
+    Attributes
+    ----------
+    latest : (quantity, source) -> newest :class:`~estimators.estimate.Estimate`.
+    ever_rated : (quantity, source) pairs that have had a rate at least once (tells
+        "warming up" from "no estimate now").
+    status : the last event's message (or ``running`` once estimates flow).
+    stream : short stream status: ``waiting for data``, ``connected``, ``stream lost``,
+        ``replaying at 20x``, ``recording ended``.
+    notice : the last gap or timing message, empty when there is none.
+    dropped : updates the display skipped because its queue was full.
+    newest_time_s : ``emitted_s`` of the newest estimate (NaN before the first).
+    newest_sample_s : timestamp of the newest sample seen (NaN before the first).
+    """
 
     latest: dict = field(default_factory=dict)
+    ever_rated: set = field(default_factory=set)
     status: str = "waiting for data"
+    stream: str = "waiting for data"
+    notice: str = ""
     dropped: int = 0
     newest_time_s: float = float("nan")
+    newest_sample_s: float = float("nan")
 
     def apply(self, update) -> None:
+        """Take one runner update (estimates, chunk, event)."""
         for est in update.estimates:
-            self.latest[(est.quantity, est.source)] = est
+            key = (est.quantity, est.source)
+            self.latest[key] = est
+            if est.has_rate:
+                self.ever_rated.add(key)
             self.newest_time_s = est.emitted_s
-        if update.event is not None:
-            self.status = update.event.message
+        chunk = update.chunk
+        if chunk is not None and len(chunk):
+            self.newest_sample_s = float(chunk.timestamps[-1])
+            if self.stream == "waiting for data":
+                # No "replaying" event came first, so this is a live stream.
+                self.stream = "connected"
+        event = update.event
+        if event is not None:
+            self.status = event.message
+            if event.kind == "replaying":
+                words = _speed_words(event.detail.get("speed"))
+                self.stream = f"replaying {words}".strip()
+            elif event.kind == "lost":
+                self.stream = "stream lost"
+                self.notice = event.message
+            elif event.kind == "resumed":
+                self.stream = "connected"
+                self.notice = event.message
+            elif event.kind == "end":
+                self.stream = "recording ended"
+            elif event.kind in ("gap", "irregular"):
+                self.notice = event.message
         elif update.estimates and self.status == "waiting for data":
             self.status = "running"
+
+    def channel_estimate(self, name: str, kind: str):
+        """The newest estimate that carries the quality of channel ``name`` of ``kind``
+        (None for a motion reference or before the first estimate)."""
+        quantity = CHANNEL_QUANTITY.get(kind)
+        if quantity is None:
+            return None
+        return self.latest.get((quantity, name))

@@ -13,17 +13,25 @@ import queue
 import sys
 import time
 
-from streamer.display.state import DisplayState, quality_word
+from streamer.display.state import DisplayState, quality_word, unit_of
 
 CAUTION = "research tool, not a medical device"
 
 
 def format_line(key, est) -> str:
+    """One line for the newest estimate ``est`` of ``key = (quantity, source)``.
+
+    Examples
+    --------
+    >>> from estimators.estimate import Estimate
+    >>> print(format_line(("hr", "PPG"), Estimate("hr", "PPG", 10.0, 14.0, 71.96, 0.9, 0.8)))
+    heart rate PPG         72.0 bpm          confidence 0.90  quality 0.80 (good)  delay  4.0 s
+    """
     quantity, source = key
-    unit = "bpm" if quantity == "hr" else "br/min"
+    unit = unit_of(quantity)
     label = "heart rate" if quantity == "hr" else "breathing"
-    rate = "  -- " if math.isnan(est.rate_per_min) else f"{est.rate_per_min:5.1f}"
-    return (f"{label:<10} {source:<10} {rate} {unit:<6}  confidence {est.confidence:4.2f}  "
+    rate = "   --" if math.isnan(est.rate_per_min) else f"{est.rate_per_min:5.1f}"
+    return (f"{label:<10} {source:<10} {rate} {unit:<11}  confidence {est.confidence:4.2f}  "
             f"quality {est.quality:4.2f} ({quality_word(est.quality)})  "
             f"delay {est.delay_s:4.1f} s")
 
@@ -55,12 +63,21 @@ class TextDisplay:
                 return
             self.state.apply(update)
 
+    def header(self) -> str:
+        """The first line: caution, stream status and the last notice."""
+        line = f"ridgewatch ({CAUTION}) - {self.state.stream}"
+        if self.state.status not in (self.state.stream, "running", "waiting for data"):
+            line += f" - {self.state.status}"
+        if self.state.dropped:
+            line += f" (display skipped {self.state.dropped} updates)"
+        return line
+
     def draw(self, force: bool = False) -> None:
         now = time.monotonic()
         if not force and now - self._last_draw < self.refresh_s:
             return
         self._last_draw = now
-        lines = [f"ridgewatch ({CAUTION}) - {self.state.status}"]
+        lines = [self.header()]
         lines += [format_line(k, e) for k, e in sorted(self.state.latest.items())]
         if self._tty and self._lines_drawn:
             self.stream.write(f"\x1b[{self._lines_drawn}F\x1b[J")

@@ -56,6 +56,25 @@ class RateSettings:
     min_agreeing : breathing from a pulse: the smallest group of agreeing modulations
         that may carry an estimate.
     min_support : breathing from a pulse: the smallest summed quality of that group.
+    motion : heart rate from PPG: run the motion stage (:mod:`estimators.motion`) on the
+        plain STFT columns: accelerometer-coherent cancellation and a motion gain when
+        accelerometer channels are present, harmonic support always; the tracked
+        spectrum is its output (``deshape`` and ``sharpen`` are then not used for PPG).
+    motion_memory_s : memory (time constant) of the coherent canceller, seconds; 0
+        switches the cancellation off.
+    motion_loading : diagonal loading of the canceller, relative to the mean power of the
+        accelerometer references in each bin.
+    motion_coherence_gate : bias-corrected multiple coherence at which cancellation
+        starts and is full.
+    motion_gain : weight ``alpha`` of the averaged accelerometer spectrum in the motion
+        gain; 0 switches the gain off.
+    motion_smoothing_s : time constant of the gain's running averages, seconds.
+    harmonic_weight : weight of the second harmonic in the tracked spectrum
+        ``C(f) + w C(2 f)``; 0 tracks ``C`` alone.
+    motion_line_ratio : multiples of the accelerometer's median band level at which a bin
+        starts to count as a motion line and counts fully.
+    motion_confidence_penalty : confidence is multiplied by ``1 - penalty * mark`` where
+        the rate sits on a motion line of mark in [0, 1].
     """
 
     quantity: str = "hr"
@@ -78,6 +97,15 @@ class RateSettings:
     agreement_per_min: float = 4.0
     min_agreeing: int = 1
     min_support: float = 0.3
+    motion: bool = False
+    motion_memory_s: float = 30.0
+    motion_loading: float = 0.1
+    motion_coherence_gate: tuple = (0.3, 0.8)
+    motion_gain: float = 1.0
+    motion_smoothing_s: float = 1.0
+    harmonic_weight: float = 0.75
+    motion_line_ratio: tuple = (10.0, 40.0)
+    motion_confidence_penalty: float = 0.5
 
     def __post_init__(self):
         _check(self.quantity in ("hr", "rr"), f"quantity={self.quantity!r} must be 'hr' or 'rr'")
@@ -111,6 +139,25 @@ class RateSettings:
         _check(self.min_agreeing in (1, 2, 3),
                f"min_agreeing={self.min_agreeing} must be 1, 2 or 3")
         _check(0 <= self.min_support <= 3, f"min_support={self.min_support} must be in [0, 3]")
+        _check(self.motion_memory_s == 0 or self.motion_memory_s >= 2 * self.hop_s,
+               f"motion_memory_s={self.motion_memory_s} must be 0 (off) or >= 2 hops "
+               f"({2 * self.hop_s} s)")
+        _check(self.motion_loading > 0, f"motion_loading={self.motion_loading} must be > 0")
+        gate = tuple(self.motion_coherence_gate)
+        _check(len(gate) == 2 and 0 <= gate[0] < gate[1] <= 1,
+               f"motion_coherence_gate={self.motion_coherence_gate} must be (low, high) "
+               f"with 0 <= low < high <= 1")
+        _check(self.motion_gain >= 0, f"motion_gain={self.motion_gain} must be >= 0")
+        _check(self.motion_smoothing_s > 0,
+               f"motion_smoothing_s={self.motion_smoothing_s} must be > 0")
+        _check(self.harmonic_weight >= 0,
+               f"harmonic_weight={self.harmonic_weight} must be >= 0")
+        ratio = tuple(self.motion_line_ratio)
+        _check(len(ratio) == 2 and 0 < ratio[0] < ratio[1],
+               f"motion_line_ratio={self.motion_line_ratio} must be (start, full) with "
+               f"0 < start < full")
+        _check(0 <= self.motion_confidence_penalty <= 1,
+               f"motion_confidence_penalty={self.motion_confidence_penalty} must be in [0, 1]")
 
     @property
     def band_hz(self) -> tuple:
@@ -200,6 +247,31 @@ PROFILES = {
             "chest-ecg",
             "Chest ECG: heart rate 30-220 bpm; the beat envelope is tracked.",
             hr=RateSettings(band_per_min=(30.0, 220.0), max_change_per_min_per_s=4.0),
+        ),
+        Profile(
+            "exercise-wrist",
+            "Wrist PPG during exercise, wrist accelerometer axes as motion references "
+            "(kind acc): heart rate 40-220 bpm, fast changes.",
+            hr=RateSettings(
+                band_per_min=(40.0, 220.0),
+                # The motion stage's harmonic sum replaces de-shape (see estimators.motion).
+                deshape=False,
+                motion=True,
+                # Heart rate at the onset of running rises up to about 5 bpm/s (SPC 2015
+                # records 02 and 06, BPM0 traces); 8 bpm/s per-second spread follows it.
+                max_change_per_min_per_s=8.0,
+                jump_probability=1e-4,
+                # Four overlapping 8 s columns a second are far from independent: a flat
+                # emission keeps one window from overruling the track.
+                emission_power=0.5,
+                # Rates are shown down to a low quality: during running the motion lowers
+                # the harmonic concentration of a correct pulse peak; the confidence and
+                # quality fields still say how much to trust each estimate.
+                min_quality=0.1,
+            ),
+            # Breathing from the pulse's modulations is not validated during exercise,
+            # where motion swamps them; off (an acc-free respiration channel still works).
+            breathing_from_pulse=False,
         ),
         Profile(
             "resp-belt",

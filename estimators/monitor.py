@@ -7,7 +7,8 @@ for a set of channels and a profile.
 * two or more heart-rate channels also give a ``fused`` estimate from the
   integrity-weighted mean of their normalised de-shape spectra;
 * every respiration channel gives a breathing-rate estimate;
-* with ``profile.breathing_from_pulse``, every PPG or ECG channel also gives a
+* with ``profile.breathing_from_pulse``, every PPG or ECG channel sampled at
+  :data:`estimators.respiration.MIN_FS_HZ` or faster also gives a
   breathing-rate estimate from its respiratory modulations
   (:class:`estimators.respiration.PulseBreathing`, ``source`` = its name);
 * accelerometer channels are accepted as motion references (their spectra are formed
@@ -19,19 +20,21 @@ with zero-phase filters, forward-backward posteriors and a Viterbi ridge.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 from typing import Sequence
 
 import numpy as np
 
 from estimators import deshape as deshape_mod
+from estimators import motion as motion_mod
 from estimators import quality as quality_mod
 from estimators import tracker as tracker_mod
 from estimators.config import PROFILES, SIGNAL_KINDS, Profile, RateSettings, get_profile
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
 from estimators.preprocess import Analysis, Preprocessor, STUCK_RUN_S, preprocess_batch
-from estimators.respiration import PulseBreathing
+from estimators.respiration import MIN_FS_HZ, PulseBreathing
 from estimators.stft import Columns, SlidingSTFT, stft_batch
 
 FUSED = "fused"
@@ -69,6 +72,12 @@ class HopBlock:
     magnitude: np.ndarray | None = None
     """Band of the plain STFT magnitude (P, F): where the rate is read off, near the
     ridge the tracker picked (its peak is not pulled by the de-shape mask's slope)."""
+    columns: np.ndarray | None = None
+    """Complex one-sided STFT columns (P, n_fft // 2 + 1), kept only when the motion
+    stage needs them (:mod:`estimators.motion`)."""
+    motion_lines: np.ndarray | None = None
+    """Motion-line marks in [0, 1] on the band's bins (P, F) from the motion stage; they
+    lower the confidence of a rate on a line."""
 
     def __len__(self) -> int:
         return len(self.time_s)
@@ -112,6 +121,7 @@ class ChannelPath:
         self.pre.min_run = max(3, int(round(settings.stuck_run_s * fs)))
         self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen)
         self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.analysis_band_hz)
+        self.keep_columns = False  # set by the monitor when the motion stage needs them
 
     def reset(self) -> None:
         self.pre.reset()
@@ -123,7 +133,8 @@ class ChannelPath:
                                    (analysis.cum_nonfinite, analysis.cum_stuck))
         integrity = window_integrity(columns, self.geometry.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
-        return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude)
+        return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
+                        columns.spectra if self.keep_columns else None)
 
     def batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> HopBlock:
         """The whole record in one call (causal twin, or zero-phase for offline)."""
@@ -135,7 +146,8 @@ class ChannelPath:
                              (analysis.cum_nonfinite, analysis.cum_stuck))
         integrity = window_integrity(columns, g.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
-        return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude)
+        return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
+                        columns.spectra if self.keep_columns else None)
 
 
 def _peak_normalised(spectra: np.ndarray) -> np.ndarray:
@@ -161,9 +173,10 @@ def fuse_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
     magnitude = None
     if all(b.magnitude is not None for b in blocks):
         magnitude = fuse([b.magnitude for b in blocks])
+    lines = [b.motion_lines for b in blocks if b.motion_lines is not None]
     return HopBlock(fuse([b.spectra for b in blocks]), blocks[0].time_s,
                     np.max([b.emitted_s for b in blocks], axis=0), weights.max(axis=0),
-                    magnitude)
+                    magnitude, motion_lines=np.max(lines, axis=0) if lines else None)
 
 
 def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.ndarray,
@@ -178,6 +191,10 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     calls (a dict, updated in place)."""
     step = rates_grid[1] - rates_grid[0]
     halfwidth = settings.confidence_halfwidth_per_min / step
+    if block.motion_lines is not None:  # pulse on a motion line: not told apart
+        confidence = motion_mod.overlap_confidence(confidence, rate, block.motion_lines,
+                                                   rates_grid,
+                                                   settings.motion_confidence_penalty)
     if concentration is None:
         readout = block.spectra if block.magnitude is None else block.magnitude
         concentration = quality_mod.harmonic_concentration(
@@ -334,11 +351,22 @@ class RateMonitor:
         self._index = {name: i for i, (name, _) in enumerate(self.channels)}
         self.last_blocks: dict[tuple[str, str], HopBlock] = {}
         self.motion_spectra: dict[str, HopBlock] = {}
+        # Motion stage (estimators.motion) for PPG heart-rate paths when the profile asks.
+        self.motion: dict[tuple[str, str], motion_mod.MotionSuppressor] = {}
+        if hr.motion:
+            for key, path in self.paths.items():
+                if key[0] == "hr" and path.kind == "ppg":
+                    path.keep_columns = True
+                    self.motion[key] = motion_mod.MotionSuppressor(
+                        hr, path.grid.band, path.geometry.n_fft, len(self.motion_paths))
+            for path in self.motion_paths.values():
+                path.keep_columns = bool(self.motion)
         self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
         self.pulse_breathing: dict[str, PulseBreathing] = {
             name: PulseBreathing(name, kind, self.profile.rr_pulse, fs)
             for name, kind in self.channels
-            if kind in ("ppg", "ecg") and self.profile.breathing_from_pulse}
+            if kind in ("ppg", "ecg") and self.profile.breathing_from_pulse
+            and fs >= MIN_FS_HZ}  # a 25 Hz wrist PPG still gives its heart rate
 
     def grid(self, quantity: str) -> np.ndarray | None:
         """Rates (per minute) of the spectra's bins for ``quantity``, or None."""
@@ -352,6 +380,8 @@ class RateMonitor:
             path.reset()
         for out in self.outputs.values():
             out.reset()
+        for suppressor in self.motion.values():
+            suppressor.reset()
         for breathing in self.pulse_breathing.values():
             breathing.reset()
         self._newest_s = np.nan
@@ -368,6 +398,20 @@ class RateMonitor:
             raise ParameterError(
                 f"timestamps.shape={timestamps.shape} must be ({samples.shape[0]},)")
         return samples, timestamps
+
+    def suppress_motion(self, blocks: dict, motion_blocks: dict) -> dict:
+        """The motion stage on the PPG heart-rate blocks: new blocks whose spectra (and
+        read-out) are the stage's output, with motion-line marks; the accelerometer
+        blocks of the same hops are the references."""
+        refs = [motion_blocks[name].columns for name in self.motion_paths]
+        out = {}
+        for key, suppressor in self.motion.items():
+            block = blocks[key]
+            acc = np.stack(refs, axis=-1) if refs else None
+            spectra, lines = suppressor.update(block.columns, acc)
+            out[key] = dataclasses.replace(block, spectra=spectra, magnitude=spectra,
+                                           columns=None, motion_lines=lines)
+        return out
 
     def update(self, samples, timestamps) -> list[Estimate]:
         """Feed a chunk ``(n, channels)`` with timestamps ``(n,)``; return the estimates
@@ -387,6 +431,8 @@ class RateMonitor:
             blocks[key] = path.update(samples[:, self._index[key[1]]], timestamps)
         for name, path in self.motion_paths.items():
             self.motion_spectra[name] = path.update(samples[:, self._index[name]], timestamps)
+        if self.motion:
+            blocks.update(self.suppress_motion(blocks, self.motion_spectra))
         hr_blocks = [b for (q, _), b in blocks.items() if q == "hr"]
         if ("hr", FUSED) in self.outputs:
             blocks[("hr", FUSED)] = fuse_blocks(hr_blocks)
@@ -416,6 +462,10 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
     end = float(timestamps[-1])
     blocks = {key: path.batch(samples[:, monitor._index[key[1]]], timestamps, True)
               for key, path in monitor.paths.items()}
+    if monitor.motion:
+        blocks.update(monitor.suppress_motion(blocks, {
+            name: path.batch(samples[:, monitor._index[name]], timestamps, True)
+            for name, path in monitor.motion_paths.items()}))
     hr_blocks = [b for (q, _), b in blocks.items() if q == "hr"]
     if ("hr", FUSED) in monitor.outputs:
         blocks[("hr", FUSED)] = fuse_blocks(hr_blocks)

@@ -13,6 +13,9 @@ import numpy as np
 
 from estimators._jit import kernel
 
+MAX_HARMONIC = 4.0
+"""The harmonic family of a rate: its multiples up to the fourth."""
+
 
 @kernel
 def forward_filter(alpha, emissions, weights, transition, mix, out_alpha):
@@ -273,8 +276,9 @@ def preprocess_chunk(x, t, sos_pre, zi_pre, envelope, sos_post, zi_post, scalars
 def harmonic_score(power, centre, offset, halfwidth, chance_factor, span):
     """How much of the band's ``power`` (F,) sits on the harmonic family of a rate.
 
-    The family is every multiple ``k r`` (k = 1, 2, ...) of the rate ``r`` at fractional
-    bin ``centre`` that falls in the band; bins are ``f`` with rate ``(f + offset) *
+    The family is the multiples ``k r`` (k = 1 ... :data:`MAX_HARMONIC`) of the rate ``r``
+    at fractional bin ``centre`` that fall in the band (capped so that at a low rate the
+    chance share of a long family does not swamp the score); bins are ``f`` with rate ``(f + offset) *
     step``, so the ``k``-th multiple is bin ``k (centre + offset) - offset``. The
     fraction of power within ``halfwidth`` bins of the family is compared with the share
     ``K (2 halfwidth + 1) / F`` that ``K`` such intervals would hold of a flat spectrum:
@@ -293,13 +297,13 @@ def harmonic_score(power, centre, offset, halfwidth, chance_factor, span):
             continue
         total += v
         k = np.floor((f + offset) / base + 0.5)
-        if k >= 1.0 and abs(f - (k * base - offset)) <= halfwidth:
+        if 1.0 <= k <= MAX_HARMONIC and abs(f - (k * base - offset)) <= halfwidth:
             near += v
     if total <= 0.0:
         return 0.0
     count = 0
     k = 1.0
-    while k * base - offset <= n_bins - 1 + halfwidth:
+    while k <= MAX_HARMONIC and k * base - offset <= n_bins - 1 + halfwidth:
         count += 1
         k += 1.0
     share = min(1.0, count * (2.0 * halfwidth + 1.0) / n_bins)

@@ -1,32 +1,42 @@
-"""Breathing rate from the pulse: beats, respiratory modulations, per-modulation ridges, fusion.
+"""Breathing rate from a pulse (PPG or ECG): beats, respiratory modulations, one ridge
+per modulation, quality-weighted agreement.
 
-Breathing modulates the pulse in three ways (Karlen, Raman, Ansermino & Dumont,
+Breathing modulates a pulse in three ways (Karlen, Raman, Ansermino & Dumont,
 "Multiparameter respiratory rate estimation from the photoplethysmogram", IEEE TBME
-60(7):1946-1953, 2013):
+60(7), 2013):
 
-* **intensity** (RIIV): the baseline of the pulse (venous return, intrathoracic
-  pressure); for ECG the mean level of each beat (baseline wander);
-* **amplitude** (RIAV): the beat's rise from its foot (stroke volume); for ECG the QRS
-  peak-to-peak amplitude (electrical axis, thoracic impedance);
+* **intensity** (RIIV): the level of the pulse; here the mid-level of each PPG beat
+  (half-way between its foot and its peak), and for ECG the mean level over each beat
+  (baseline wander);
+* **amplitude** (RIAV): the PPG beat's rise from its foot; for ECG the RMS of the QRS
+  complex (electrical axis and thoracic impedance change with the lungs' filling);
 * **frequency** (RIFV): the beat-to-beat interval (respiratory sinus arrhythmia).
 
-Chain, per PPG or ECG channel (every stage a step function with carried state, and a
-batch twin):
+Chain, per PPG or ECG channel; every stage is a step function with carried state and
+has a batch twin:
 
-1. :func:`detect_step` finds beats causally: a candidate is the largest value of the
-   detection signal within ``+-refractory``; it is accepted when its height reaches a
-   fraction of the median height of the recent accepted beats. Each accepted beat gives
-   a sub-sample position and its three features.
-2. :func:`resample_step` turns the beat-sampled features into evenly sampled series at
-   the analysis rate of the breathing settings (linear interpolation between beats;
-   a sample waits for the beat after it). Gaps longer than ``max_gap_s`` become NaN.
-3. Each modulation is band-passed like a respiration signal, then runs through the
-   engine's sliding STFT, de-shape and ridge tracker on the breathing grid (one
-   :class:`ModulationPath` each). Rates above half the beat rate are not resolvable
-   from beat-sampled series (Nyquist) and are masked out of the spectrum.
-4. :func:`fuse_modulations` reports the mean of the modulation rates when they agree
-   (spread at most ``agreement_per_min``), else no estimate (NaN), in the manner of the
-   'smart fusion' of Karlen et al. (2013).
+1. :func:`detect_step` finds beats causally (:func:`beat_params`): a candidate is the
+   largest value of the detection signal within +-0.25 s, accepted when it reaches a
+   fraction of the recent beats' heights. Each beat gives a sub-sample position and its
+   three features; premature or missed beats drop their interval.
+2. :func:`resample_step` evenly resamples the features at the analysis rate of the
+   breathing settings (5 Hz): linear interpolation between beats, so a sample waits for
+   the beat after it; beats more than 2 s apart leave NaN.
+3. :class:`ModulationBank`: each modulation is band-passed like a respiration signal
+   (relative to its first value) and goes through the engine's sliding STFT on the
+   breathing grid. Breathing faster than half the beat rate cannot show in a
+   once-per-beat series (Nyquist), so those bins are masked (:func:`nyquist_mask`).
+4. One :class:`estimators.tracker.RidgeTracker` per modulation follows its ridge. Its
+   quality is integrity x spectral concentration at the rate
+   (:func:`peak_concentration`) x modulation depth (:func:`depth_score`); below
+   ``min_quality`` it is withheld.
+5. :func:`fuse_modulations`: among the groups of modulations that agree (spread at
+   most ``agreement_per_min``), the one with the largest summed quality reports its
+   quality-weighted mean rate when that support reaches ``min_support``; else no
+   estimate (NaN) -- the 'smart fusion' of Karlen et al. (2013), weighted by quality.
+
+:class:`PulseBreathing` composes the chain (``update(x, t) -> list[Estimate]``, and
+:meth:`PulseBreathing.offline`, the zero-phase twin with Viterbi ridges).
 
 Index vocabulary: ``k`` raw sample (count from the first sample, 0-based), ``j``
 analysis sample, ``p`` hop, ``f`` frequency bin, ``i`` beat.
@@ -45,8 +55,7 @@ from estimators import tracker as tracker_mod
 from estimators.config import RateSettings
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
-from estimators.preprocess import (Analysis, design_chain, initial_state, preprocess_batch,
-                                   preprocess_step)
+from estimators.preprocess import design_chain, initial_state, preprocess_batch, preprocess_step
 from estimators.stft import SlidingSTFT, stft_batch
 
 MODULATIONS = ("intensity", "amplitude", "frequency")
@@ -110,16 +119,16 @@ def beat_params(kind: str, fs: float) -> BeatParams:
     PPG: beats are the steepest points of the upstrokes of a 0.5-8 Hz band-pass (the
     pulse and its first harmonics, common practice); the systolic upstroke is far
     steeper than a dicrotic wave, so a candidate must reach half the upper quartile of
-    the slopes of the last 8 beats. Features come from an 8 Hz low-pass that keeps the baseline.
-    ECG: beats are peaks of the moving average (0.1 s) of the squared slope of a 5-25 Hz
-    band-pass, in the manner of Pan & Tompkins ("A real-time QRS detection algorithm",
-    IEEE TBME 32(3):230-236, 1985), reaching 30 % of the recent upper quartile; the R wave and
-    the QRS amplitude come from a 0.5-40 Hz band-pass. A candidate is the largest value
-    within +-0.25 s (beat rates up to 240 per minute); beats more than 2 s apart (below
-    30 per minute) leave a gap (after which the detection bar halves every 2 s until a
-    beat is found); an interval more than 30 % away from the median of the
-    last 8 is an ectopic or missed beat and is dropped. These numbers are our own
-    choices.
+    the slopes of the last 8 beats. Features come from an 8 Hz low-pass that keeps the
+    baseline. ECG: beats are peaks of the moving average (0.1 s) of the squared slope of
+    a 5-25 Hz band-pass, in the manner of Pan & Tompkins ("A real-time QRS detection
+    algorithm", IEEE TBME 32(3), 1985; cited from memory), reaching 30 % of the recent
+    upper quartile; the R wave and the QRS amplitude come from a 0.5-40 Hz band-pass.
+    A candidate is the largest value within +-0.25 s (beat rates up to 240 per minute);
+    beats more than 2 s apart (below 30 per minute) leave a gap, after which the
+    detection bar halves every 2 s until a beat is found; an interval more than 30 %
+    away from the median of the last 8 is an ectopic or missed beat and is dropped.
+    These numbers are our own choices.
     """
     if kind not in PULSE_KINDS:
         raise ParameterError(f"kind={kind!r} must be one of {', '.join(PULSE_KINDS)}")
@@ -285,7 +294,8 @@ def _features(state: BeatState, params: BeatParams, k: int, kk: int, detect: np.
         # The moving average peaks about half its length after the QRS: search back.
         lo, hi = max(kk - params.integrate - s, 0), kk + s // 2 + 1
         peak = lo + int(np.argmax(np.abs(feature[lo:hi])))
-        position = peak + offset + _parabolic(np.abs(feature), peak)
+        around = np.abs(feature[max(peak - 1, 0):peak + 2])
+        position = peak + offset + _parabolic(around, min(peak, 1))
         q = params.qrs_half
         qrs = feature[max(peak - q, 0):peak + q + 1]
         # RMS over the QRS: it integrates the whole complex, so it is steadier than the
@@ -393,6 +403,12 @@ def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
     return state, beats
 
 
+def _zero_phase(sos: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``sosfiltfilt`` with its edge padding shortened to what a short record holds."""
+    padlen = min(3 * (2 * len(sos) + 1), len(x) - 1)
+    return signal.sosfiltfilt(sos, x, padlen=max(padlen, 0))
+
+
 def detect_batch(x: np.ndarray, t: np.ndarray, params: BeatParams,
                  zero_phase: bool = False) -> Beats:
     """Beats of a whole record: causal (equal to any chunking of :func:`detect_step`),
@@ -404,13 +420,13 @@ def detect_batch(x: np.ndarray, t: np.ndarray, params: BeatParams,
     if len(x) == 0:
         return Beats.empty()
     x = _hold_nonfinite(state, np.asarray(x, dtype=np.float64))
-    band = signal.sosfiltfilt(params.detect_sos, x)
+    band = _zero_phase(params.detect_sos, x)
     detect = np.diff(band, prepend=band[0]) * params.fs
     if params.integrate:
         taps = np.full(params.integrate, 1.0 / params.integrate)
         detect = np.convolve(detect ** 2, taps, mode="same")
-    feature = signal.sosfiltfilt(params.feature_sos, x)
-    level = signal.sosfiltfilt(params.level_sos, x)
+    feature = _zero_phase(params.feature_sos, x)
+    level = _zero_phase(params.level_sos, x)
     state.count = len(x)
     return _scan(state, params, detect, feature, level, 0, len(x) - params.lookahead, t, 0)
 
@@ -614,7 +630,7 @@ def depth_score(depth: np.ndarray) -> np.ndarray:
     """``clip((depth - DEPTH_FLOOR) / (DEPTH_FULL - DEPTH_FLOOR), 0, 1)``: how much a
     modulation this deep counts (see :data:`DEPTH_FULL`).
 
-    >>> depth_score(np.array([0.0, 0.003, 0.05])).tolist()
+    >>> depth_score(np.array([0.0, 0.006, 0.05])).tolist()
     [0.0, 0.5, 1.0]
     """
     return np.clip((np.asarray(depth) - DEPTH_FLOOR) / (DEPTH_FULL - DEPTH_FLOOR), 0.0, 1.0)
@@ -1012,6 +1028,8 @@ class PulseBreathing:
         three stages (``zero_phase`` for the offline estimates)."""
         x = np.asarray(x, dtype=np.float64)
         t = np.asarray(t, dtype=np.float64)
+        if len(x) < self.bank.min_window * self.decimation:
+            return self.bank._empty()  # shorter than the shortest window: no hop at all
         beats = detect_batch(x, t, self.beat_params, zero_phase)
         samples = resample_batch(beats, t, self.decimation, self.beat_params)
         return self.bank.batch(samples, zero_phase)

@@ -263,9 +263,6 @@ def test_offline_is_at_least_as_good_as_live_on_a_ramp(rng):
     assert np.nanmean(offline_err) < 2.0
 
 
-@pytest.mark.xfail(strict=True, raises=ValueError,
-                   reason="breathing-from-pulse offline path (estimators/respiration.py) calls "
-                          "sosfiltfilt on records shorter than its edge padding")
 @pytest.mark.parametrize("n", [1, 12])
 def test_offline_on_a_record_shorter_than_a_window_gives_no_estimates(n):
     t = np.arange(n) / 125.0

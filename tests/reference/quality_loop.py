@@ -17,6 +17,9 @@ from __future__ import annotations
 import math
 
 
+MAX_HARMONIC = 4  # the family: the rate and its multiples up to the fourth
+
+
 def harmonic_score(power, centre, offset, halfwidth, chance_factor, span) -> float:
     base = centre + offset
     if not base > 0:
@@ -24,7 +27,7 @@ def harmonic_score(power, centre, offset, halfwidth, chance_factor, span) -> flo
     n_bins = len(power)
     members = []
     k = 1
-    while k * base - offset <= n_bins - 1 + halfwidth:
+    while k <= MAX_HARMONIC and k * base - offset <= n_bins - 1 + halfwidth:
         members.append(k * base - offset)
         k += 1
     near = total = 0.0

@@ -55,7 +55,8 @@ from estimators import tracker as tracker_mod
 from estimators.config import RateSettings
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
-from estimators.preprocess import design_chain, initial_state, preprocess_batch, preprocess_step
+from estimators.preprocess import (causal_sos, design_chain, initial_state, preprocess_batch,
+                                   preprocess_step)
 from estimators.stft import SlidingSTFT, stft_batch
 
 MODULATIONS = ("intensity", "amplitude", "frequency")
@@ -237,7 +238,7 @@ def _hold_nonfinite(state: BeatState, x: np.ndarray) -> np.ndarray:
 
 
 def _detection_signal(params: BeatParams, state: BeatState, x: np.ndarray) -> np.ndarray:
-    band, state.zi_detect = signal.sosfilt(params.detect_sos, x, zi=state.zi_detect)
+    band, state.zi_detect = causal_sos(params.detect_sos, x, state.zi_detect)
     prev = np.concatenate(([state.last_band], band[:-1]))
     state.last_band = float(band[-1])
     slope = (band - prev) * params.fs
@@ -386,8 +387,8 @@ def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
         return state, Beats.empty()
     x = _hold_nonfinite(state, np.asarray(x, dtype=np.float64))
     detect = _detection_signal(params, state, x)
-    feature, state.zi_feature = signal.sosfilt(params.feature_sos, x, zi=state.zi_feature)
-    level, state.zi_level = signal.sosfilt(params.level_sos, x, zi=state.zi_level)
+    feature, state.zi_feature = causal_sos(params.feature_sos, x, state.zi_feature)
+    level, state.zi_level = causal_sos(params.level_sos, x, state.zi_level)
     offset = state.count - len(state.detect)
     all_detect = np.concatenate((state.detect, detect))
     all_feature = np.concatenate((state.feature, feature))

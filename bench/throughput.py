@@ -12,18 +12,21 @@ time also counts the time spent waiting for a core.
 
 from __future__ import annotations
 
+import dataclasses
 import time
 
 from bench import measure, section, synthetic_ppg
 
 CHANNEL_COUNTS = (1, 4, 16)
 RATES_HZ = (125.0, 500.0)
-CHUNK_S = 0.25
-"""The replay chunk length the command line uses (streamer/cli.py)."""
+CHUNK_S = 1.0
+"""The chunk length of a full-speed replay from the command line
+(``streamer.cli.replay_chunk_s``)."""
 TARGET_X = 2000.0
 
 
-def replay_speed(n_channels: int, fs: float, duration_s: float, profile: str = "wrist") -> dict:
+def replay_speed(n_channels: int, fs: float, duration_s: float, profile: str = "wrist",
+                 breathing_from_pulse: bool = False) -> dict:
     """Stream seconds per wall second of a full-speed replay through the Runner."""
     from estimators.config import get_profile
     from streamer.channels import Selected
@@ -37,11 +40,13 @@ def replay_speed(n_channels: int, fs: float, duration_s: float, profile: str = "
     recording = Recording(samples, t, info)
     source = RecordingSource(recording, speed=float("inf"), chunk_s=CHUNK_S)
     selected = [Selected(c, n, "ppg") for c, n in enumerate(names)]
-    runner = Runner(source, selected, get_profile(profile))
+    prof = dataclasses.replace(get_profile(profile), breathing_from_pulse=breathing_from_pulse)
+    runner = Runner(source, selected, prof)
     start, start_cpu = time.perf_counter(), time.process_time()
     stats = runner.run()
     wall_s, cpu_s = time.perf_counter() - start, time.process_time() - start_cpu
-    return {"channels": n_channels, "fs_hz": fs, "stream_s": recording.duration_s,
+    return {"channels": n_channels, "fs_hz": fs, "breathing_from_pulse": breathing_from_pulse,
+            "stream_s": recording.duration_s,
             "wall_s": wall_s, "cpu_s": cpu_s, "x_real_time": recording.duration_s / wall_s,
             "x_real_time_cpu": recording.duration_s / cpu_s,
             "engine_share": stats.compute_s / wall_s, "estimates": stats.estimates}
@@ -59,13 +64,20 @@ def run(quick: bool) -> dict:
             "x real time", f">= {TARGET_X:g}x" if is_target else None,
             ">=" if is_target else None, TARGET_X if is_target else None,
             note=f"by process CPU time {r['x_real_time_cpu']:.0f}x"))
-    one = {(r["channels"], r["fs_hz"]): r["x_real_time"] for r in rows}
+    both = replay_speed(1, 125.0, duration_s, breathing_from_pulse=True)
+    measures.append(measure("1 PPG channel at 125 Hz, heart and breathing rate (default "
+                            "wrist profile)", both["x_real_time"], "x real time",
+                            note=f"by process CPU time {both['x_real_time_cpu']:.0f}x"))
+    rows.append(both)
+    one = {(r["channels"], r["fs_hz"]): r["x_real_time"] for r in rows
+           if not r["breathing_from_pulse"]}
     for fs in RATES_HZ:
         measures.append(measure(f"16 channels vs 1 at {fs:g} Hz: cost ratio per stream second",
                                 one[(1, fs)] / one[(16, fs)], "x",
                                 note="16 would be linear scaling"))
     method = (f"Runner + RecordingSource(speed=inf, chunk_s={CHUNK_S}) with no log, outlet or "
               f"display; synthetic PPG channels, {duration_s:g} s of stream each, profile "
-              "wrist; x real time = stream seconds / wall seconds of Runner.run (the note gives "
+              "wrist with heart rate only (breathing from the pulse off) unless the row says "
+              "otherwise; x real time = stream seconds / wall seconds of Runner.run (the note gives "
               "stream seconds / process CPU seconds, less disturbed by other load).")
     return section("Replay throughput", measures, method, {"runs": rows})

@@ -123,7 +123,7 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
         config = {"profile": profile.to_dict(), "fs": recording.info.fs}
         live_path = out / "live.csv"
         log = EstimateLog(live_path, "replay", str(path), mapping, dict(config, mode="replay"))
-        Runner(RecordingSource(recording, chunk_s=0.25), selected, profile, log=log).run()
+        Runner(RecordingSource(recording, chunk_s=1.0), selected, profile, log=log).run()
         offline_path = out / "offline.csv"
         estimates = offline_estimates(recording.samples[:, [s.index for s in selected]],
                                       recording.timestamps,

@@ -144,6 +144,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--against", required=True, metavar="OTHER",
                    help="another estimate log, beat/breath times (WFDB annotation or CSV "
                         "of times) or a CSV of time,rate")
+    p.add_argument("--against-fs", type=_positive, metavar="HZ",
+                   help="sampling rate of sample numbers in OTHER (a CSV column of event "
+                        "sample numbers, or WFDB annotations without their header)")
+    p.add_argument("--against-column", metavar="NAME",
+                   help="column of OTHER to use (rate column, or sample-number column)")
     p.add_argument("--quantity", choices=("hr", "rr"), help="only this quantity")
     p.add_argument("--source", help="only this source (channel name or 'fused')")
     p.add_argument("--report", metavar="DIR", help="write a report folder (Markdown, HTML, PNG)")
@@ -477,7 +482,7 @@ def cmd_compare(args) -> int:
     from streamer.sinks.estimate_log import read_log
 
     table = read_log(args.log)
-    other = load_other(args.against)
+    other = load_other(args.against, fs=args.against_fs, column=args.against_column)
     series = pair_up(table, other, args.quantity, args.source, _log_windows(table))
     results = [summarize(s) for s in series]
     if args.report:

@@ -113,10 +113,12 @@ def load_other(path, fs: float | None = None, column: str | None = None) -> Othe
     path : str or Path
         The file (see the module docstring for the types recognised).
     fs : float, optional
-        Sampling rate (Hz) of a WFDB annotation file's sample numbers, when there is no
-        record header beside it.
+        Sampling rate (Hz) of sample numbers: a WFDB annotation file's, when there is no
+        record header beside it, or a CSV column of event sample numbers (e.g. the
+        BIDMC breath annotations), which are then divided by it.
     column : str, optional
-        For a CSV with a header row: the name of the rate column (time is the first column).
+        For a CSV with a header row: the name of the rate column (time is the first
+        column), or of the sample-number column when ``fs`` is given.
 
     Returns
     -------
@@ -139,7 +141,7 @@ def load_other(path, fs: float | None = None, column: str | None = None) -> Othe
         return OtherLog(path, read_log(path))
     suffix = path.suffix.lower()
     if suffix in (".csv", ".txt"):
-        return _load_csv(path, column)
+        return _load_csv(path, column, fs)
     if suffix == ".atr" or (suffix not in (".hea", ".dat") and path.with_suffix(".hea").is_file()):
         return _load_wfdb_annotations(path, fs)
     raise InputError(f"{path}: unknown file type '{path.suffix}'; pass {_KNOWN_TYPES}")
@@ -188,7 +190,8 @@ def _is_number(cell: str) -> bool:
     return True
 
 
-def _load_csv(path: Path, column: str | None) -> Union[EventTimes, RateSeries]:
+def _load_csv(path: Path, column: str | None,
+              fs: float | None = None) -> Union[EventTimes, RateSeries]:
     try:
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
@@ -214,13 +217,12 @@ def _load_csv(path: Path, column: str | None) -> Union[EventTimes, RateSeries]:
                 f"{path}, line {line_no}: {len(cells)} columns where {n_columns} were expected"
             )
     names = header if header is not None else [f"column {j + 1}" for j in range(n_columns)]
-    if header is not None:
-        for name in header:
-            if "sample" in name.lower():
-                raise InputError(
-                    f"{path}: column '{name}' holds sample numbers; convert them to seconds "
-                    "(one column of event times) first"
-                )
+    sample_columns = [j for j, name in enumerate(header or []) if "sample" in name.lower()]
+    if sample_columns and fs is None:
+        raise InputError(
+            f"{path}: column '{header[sample_columns[0]]}' holds sample numbers; give their "
+            "sampling rate (--against-fs HZ) or convert them to seconds first"
+        )
 
     def numbers(j: int, allow_empty: bool) -> np.ndarray:
         out = np.empty(len(rows))
@@ -236,6 +238,17 @@ def _load_csv(path: Path, column: str | None) -> Union[EventTimes, RateSeries]:
                 )
         return out
 
+    if sample_columns:
+        j = sample_columns[0]
+        if column is not None:
+            matches = [k for k, name in enumerate(header) if name.lower() == column.lower()]
+            if not matches:
+                raise InputError(f"{path} has no column '{column}'; its columns are "
+                                 f"{', '.join(header)}")
+            j = matches[0]
+        samples = numbers(j, allow_empty=True)  # shorter columns are padded with empties
+        times = samples[np.isfinite(samples)] / float(fs)
+        return EventTimes(path, _events_from(path, times, "events"), None)
     if column is not None:
         if header is None:
             raise InputError(f"{path} has no header row, so column '{column}' cannot be found")

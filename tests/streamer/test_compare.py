@@ -162,7 +162,8 @@ def test_load_wfdb_annotations_without_beats_are_plain_events(tmp_path):
         ("back.csv", "t,hr\n0,60\n2,61\n1,62\n", r"back.csv, line 4: times in column 't' must be"),
         ("samples.csv", "breaths ann1 [signal sample no], breaths ann2 [signal sample no]\n"
                         "100,110\n400,420\n",
-         r"column 'breaths ann1 \[signal sample no\]' holds sample numbers; convert them"),
+         r"column 'breaths ann1 \[signal sample no\]' holds sample numbers; give their "
+         r"sampling rate \(--against-fs HZ\)"),
         ("big.csv", "0,100\n1,450\n", r"big.csv: column 'column 2' has values from 100 to 450, "
                                       r"not rates per minute"),
     ],
@@ -171,6 +172,21 @@ def test_load_other_errors(tmp_path, name, content, match):
     (tmp_path / name).write_text(content)
     with pytest.raises(InputError, match=match):
         load_other(tmp_path / name)
+
+
+def test_sample_number_columns_become_event_times_with_their_rate(tmp_path):
+    """The BIDMC breath files hold annotator columns of sample numbers, the shorter one
+    padded with empty cells (see ../shared/data/bidmc/SOURCE.md); with the sampling rate
+    they are event times: sample 250 at 125 Hz is 2 s."""
+    path = tmp_path / "breaths.csv"
+    path.write_text("breaths ann1 [signal sample no], breaths ann2 [signal sample no]\n"
+                    "250,260\n750,760\n1250,\n")
+    first = load_other(path, fs=125.0)
+    np.testing.assert_allclose(first.times_s, [2.0, 6.0, 10.0])
+    second = load_other(path, fs=125.0, column="breaths ann2 [signal sample no]")
+    np.testing.assert_allclose(second.times_s, [260 / 125, 760 / 125])
+    with pytest.raises(InputError, match=r"breaths.csv has no column 'ann3'"):
+        load_other(path, fs=125.0, column="ann3")
 
 
 def test_load_other_missing_file_and_unknown_column(tmp_path):

@@ -12,7 +12,10 @@ for a set of channels and a profile.
   breathing-rate estimate from its respiratory modulations
   (:class:`estimators.respiration.PulseBreathing`, ``source`` = its name);
 * accelerometer channels are accepted as motion references (their spectra are formed
-  on the heart-rate grid and exposed in :attr:`RateMonitor.motion_spectra`).
+  on the heart-rate grid and exposed in :attr:`RateMonitor.motion_spectra`); with a
+  profile whose heart-rate settings set ``motion`` (``exercise-wrist``), every PPG
+  heart-rate channel goes through the motion stage (:mod:`estimators.motion`) before
+  tracking and fusion, and a rate on a motion line loses confidence.
 
 The offline twin (:func:`offline_estimates`) runs the same chain over a whole record
 with zero-phase filters, forward-backward posteriors and a Viterbi ridge.

@@ -371,6 +371,12 @@ class RateMonitor:
             if kind in ("ppg", "ecg") and self.profile.breathing_from_pulse
             and fs >= MIN_FS_HZ}  # a 25 Hz wrist PPG still gives its heart rate
 
+    @property
+    def streams(self) -> list[tuple[str, str]]:
+        """Every (quantity, source) this monitor emits estimates for, in a fixed order:
+        the tracked outputs, then breathing from each pulse channel."""
+        return list(self.outputs) + [("rr", name) for name in self.pulse_breathing]
+
     def grid(self, quantity: str) -> np.ndarray | None:
         """Rates (per minute) of the spectra's bins for ``quantity``, or None."""
         for (q, _), path in self.paths.items():

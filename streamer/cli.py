@@ -261,7 +261,7 @@ def _run(args, source, mode: str, input_id: str) -> int:
         _quiet_liblsl()
     if args.publish:
         from streamer.sinks.outlet import EstimateOutlet
-        runner.outlet = EstimateOutlet(list(runner.monitor.outputs), profile.hr.hop_s,
+        runner.outlet = EstimateOutlet(runner.monitor.streams, profile.hr.hop_s,
                                        input_id=input_id, use_stream_time=(mode == "live"))
     publisher = None
     if getattr(args, "publish_samples", False):

@@ -324,3 +324,18 @@ def test_settings_errors():
         RateSettings(lag_hops=1.5)
     with pytest.raises(ParameterError, match=r"quantity='bp' must be 'hr' or 'rr'"):
         RateSettings(quantity="bp")
+
+
+def test_streams_lists_every_quantity_and_source_the_monitor_emits():
+    """The LSL outlet is built from ``streams`` before any estimate exists, so every
+    estimate the monitor ever emits must be among them: here the synthetic demo session's
+    first 60 s, whose PPG and ECG also give breathing rates from their modulations."""
+    from streamer.simulation import cycling_trial
+
+    sim = cycling_trial(duration_s=60.0)
+    channels = list(zip(sim.names, sim.kinds))
+    monitor = RateMonitor(channels, 125.0, "wrist")
+    emitted = {(e.quantity, e.source) for e in monitor.update(sim.samples, sim.timestamps)}
+    assert ("rr", "PPG") in emitted and ("hr", "fused") in emitted
+    assert emitted <= set(monitor.streams)
+    assert len(monitor.streams) == len(set(monitor.streams))

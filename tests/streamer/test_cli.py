@@ -133,6 +133,7 @@ SHORT_CHANNELS = {"PPG": "ppg", "ECG": "ecg", "RESP": "resp", "ACC_X": "acc"}
 
 def test_replay_csv_writes_the_documented_log(full_replay, short_csv):
     table = check_log_format(full_replay, "replay", str(short_csv), SHORT_CHANNELS)
+
     pairs = table.pairs()
     assert {("hr", "ECG"), ("hr", "PPG"), ("hr", "fused"), ("rr", "RESP")} <= set(pairs)
     assert {s for _, s in pairs} <= set(SHORT_CHANNELS) | {"fused"}
@@ -162,6 +163,19 @@ def keep_logger_level():
     level = logger.level
     yield
     logger.setLevel(level)
+
+
+@pytest.mark.lsl
+def test_publish_carries_every_estimate_stream(short_csv, tmp_path, full_replay):
+    """--publish builds its outlet before the first estimate: the breathing rows that PPG
+    and ECG give after 24 s must fit it too (they once stopped the run)."""
+    log = tmp_path / "published.csv"
+    code = main_exit_code(["replay", short_csv, "--speed", "max", "--display", "none",
+                           "--publish", "--log", log, "-q"])
+    assert code == 0
+    pairs = set(read_log(log).pairs())
+    assert ("rr", "PPG") in pairs and ("hr", "fused") in pairs
+    assert rows_without_compute(log) == rows_without_compute(full_replay)
 
 
 # --------------------------------------------------------------------------- errors

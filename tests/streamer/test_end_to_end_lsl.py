@@ -163,7 +163,7 @@ def live_session(tmp_path_factory):
             runner = Runner(source, selected, PROFILE, log=log, duration_s=RUN_S)
             # Its own source_id: the default one, derived from the input stream and
             # the pairs, is the command line's.
-            runner.outlet = EstimateOutlet(list(runner.monitor.outputs), PROFILE.hr.hop_s,
+            runner.outlet = EstimateOutlet(runner.monitor.streams, PROFILE.hr.hop_s,
                                            name=api_estimates.value,
                                            source_id=unique("rw-e2e-api-estimates"))
             api_estimates.opened.wait(20.0)

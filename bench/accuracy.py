@@ -206,29 +206,23 @@ def run(quick: bool) -> dict:
 
 
 def add_breathing(accuracy: dict, breathing: dict | None) -> None:
-    """Add the BIDMC breathing-rate row from the breathing table's results, if any."""
+    """Add the BIDMC breathing-rate rows (median MAE from RESP, PLETH and II) from the
+    breathing table's results, if any."""
     if accuracy.get("status") != "ok":
         return
-    value = None
+    rows = []
     if breathing and breathing.get("status") == "ok":
-        value = find_number(breathing.get("details", {}), ("mae",))
-    accuracy["measures"].append(measure(
-        "BIDMC breathing rate: MAE (from the breathing table)", value, "breaths/min",
-        f"Pimentel 2017: ~{PIMENTEL_RR_MAE} from PPG (from memory)",
-        note="" if value is not None else "breathing table not available"))
-
-
-def find_number(obj, keys: tuple[str, ...], depth: int = 0):
-    """The first finite number under a key that contains one of ``keys`` (case-blind),
-    looking at top-level keys first, then one and two levels down."""
-    if not isinstance(obj, dict) or depth > 2:
-        return None
-    for k, v in obj.items():
-        if any(key in str(k).lower() for key in keys) and isinstance(v, (int, float)) \
-                and not isinstance(v, bool) and math.isfinite(v):
-            return float(v)
-    for v in obj.values():
-        found = find_number(v, keys, depth + 1)
-        if found is not None:
-            return found
-    return None
+        for source in (breathing, breathing.get("details") or {}):
+            rows = [m for m in source.get("measures", [])
+                    if "median MAE" in str(m.get("measure", ""))]
+            if rows:
+                break
+    for row in rows:
+        accuracy["measures"].append(measure(
+            f"BIDMC {row['measure']}", row.get("value"), "breaths/min",
+            f"Pimentel 2017: ~{PIMENTEL_RR_MAE} from PPG (from memory)"))
+    if not rows:
+        accuracy["measures"].append(measure(
+            "BIDMC breathing rate: median MAE", None, "breaths/min",
+            f"Pimentel 2017: ~{PIMENTEL_RR_MAE} from PPG (from memory)",
+            note="breathing table not available"))

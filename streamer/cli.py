@@ -12,6 +12,7 @@ import json
 import logging
 import math
 import os
+import re
 import sys
 import threading
 import time
@@ -196,9 +197,12 @@ def _screen_available() -> bool:
 
 
 def _default_log_path(source_name: str) -> Path:
-    stem = Path(str(source_name)).name
+    """``ridgewatch-logs/<source>-<time>.csv``; the source's name reduced to a plain
+    file name (its file stem, or a stream name with anything unusual replaced)."""
+    stem = Path(str(source_name).split(" (")[0]).name
     for suffix in (".gz", ".csv", ".hea", ".edf", ".xdf", ".dat"):
         stem = stem[: -len(suffix)] if stem.endswith(suffix) else stem
+    stem = re.sub(r"[^A-Za-z0-9._-]+", "_", stem).strip("._")
     stamp = time.strftime("%Y%m%d-%H%M%S")
     return Path("ridgewatch-logs") / f"{stem or 'stream'}-{stamp}.csv"
 

@@ -405,3 +405,13 @@ def test_publish_samples_sends_the_selected_channels(short_csv, tmp_path, monkey
     np.testing.assert_array_equal(sent, recording.samples[:, [2, 0]])
     np.testing.assert_array_equal(np.concatenate([c.timestamps for c in publisher.pushed]),
                                   recording.timestamps)
+
+
+def test_default_log_names_are_plain_file_names():
+    from streamer.cli import _default_log_path
+
+    assert _default_log_path("cycling_trial.csv.gz (regenerated)").name.startswith(
+        "cycling_trial-")
+    assert _default_log_path("/data/rec 1.hea").name.startswith("rec_1-")
+    assert _default_log_path("lab/ppg:stream").parent.name == "ridgewatch-logs"
+    assert _default_log_path("???").name.startswith("stream-")

@@ -18,6 +18,23 @@ MAX_HARMONIC = 4.0
 
 
 @kernel
+def predict(alpha, transition, mix, out):
+    """One prediction step of the tracker: ``alpha`` (F,) convolved with the banded,
+    symmetric step kernel ``transition`` (2 w + 1 taps; mass leaving the band is lost)
+    and mixed with a uniform jump of probability ``mix``; written into ``out``."""
+    n_bins = alpha.shape[0]
+    half = (transition.shape[0] - 1) // 2
+    for f in range(n_bins):
+        acc = 0.0
+        lo = f - half
+        for j in range(transition.shape[0]):
+            g = lo + j
+            if 0 <= g < n_bins:
+                acc += transition[j] * alpha[g]
+        out[f] = (1.0 - mix) * acc + mix / n_bins
+
+
+@kernel
 def forward_filter(alpha, emissions, weights, transition, mix, out_alpha):
     """Hidden-Markov forward filter over frequency bins, several hops in one call.
 
@@ -33,14 +50,7 @@ def forward_filter(alpha, emissions, weights, transition, mix, out_alpha):
     half = (transition.shape[0] - 1) // 2
     prior = np.empty(n_bins)
     for p in range(n_hops):
-        for f in range(n_bins):
-            acc = 0.0
-            lo = f - half
-            for j in range(transition.shape[0]):
-                g = lo + j
-                if 0 <= g < n_bins:
-                    acc += transition[j] * alpha[g]
-            prior[f] = (1.0 - mix) * acc + mix / n_bins
+        predict(alpha, transition, mix, prior)
         w = weights[p]
         total = 0.0
         for f in range(n_bins):
@@ -367,14 +377,7 @@ def track_block(spectra, readout, weights, alpha, transition, mix, power, floor,
                                     span, pw)
         if not check_rhythm:
             rhythm = 1.0
-        for f in range(n_bins):
-            acc = 0.0
-            lo = f - half
-            for j in range(transition.shape[0]):
-                g = lo + j
-                if 0 <= g < n_bins:
-                    acc += transition[j] * alpha[g]
-            prior[f] = (1.0 - mix) * acc + mix / n_bins
+        predict(alpha, transition, mix, prior)
         w = weights[p] * rhythm
         total = 0.0
         for f in range(n_bins):

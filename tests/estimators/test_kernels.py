@@ -37,7 +37,7 @@ def hmm_inputs(rng, n_hops=40):
 
 TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "stuck_runs", "squeeze_column",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
-                  "rhythm_scores", "hop_rhythm"}
+                  "rhythm_scores", "hop_rhythm", "predict"}
 """Kernels with a test here (``harmonic_score`` in test_quality.py, ``track_block`` also
 through ``RidgeTracker.track`` in test_tracker.py)."""
 
@@ -226,6 +226,18 @@ def test_rhythm_scores(rng):
         fn(spectra, readout, offset, hw, 1.5, 0.3, out)
         np.testing.assert_allclose(out, want, rtol=1e-12, atol=1e-15, err_msg=label)
     assert want[4] == want[5] == want[6] == 0.0 and max(want) > 0
+
+
+def test_predict_is_the_dense_transition_with_jumps(rng):
+    """The banded prediction equals the dense matrix product of the reference twin."""
+    params = tracker.make_params(0.75, 0.25, 3.0, 1e-2, 4.0)
+    alpha = rng.random(N_BINS)
+    alpha /= alpha.sum()
+    want = dense_hmm.transition_matrix(params.transition, N_BINS, params.jump_probability) @ alpha
+    for label, fn in both(_kernels.predict):
+        out = np.empty(N_BINS)
+        fn(alpha, params.transition, params.jump_probability, out)
+        np.testing.assert_allclose(out, want, rtol=1e-12, atol=1e-15, err_msg=label)
 
 
 def test_hop_rhythm_is_one_row_of_rhythm_scores(rng):

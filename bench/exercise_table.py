@@ -51,6 +51,7 @@ from pathlib import Path
 import numpy as np
 
 from bench import RESULTS_DIR, SHARED_DATA, jsonable, measure
+from bench.accuracy import held_rate_at, spc_records  # one SPC 2015 scoring for both
 
 FS = 125.0
 WINDOW, SHIFT = 1000, 250
@@ -90,37 +91,12 @@ def configurations() -> dict:
     }
 
 
-def records(data: Path) -> list[tuple[str, Path, Path]]:
-    folder = data / "ieee_spc2015" / "Training_data"
-    out = []
-    for sig in sorted(folder.glob("DATA_*_TYPE*.mat")):
-        if sig.stem.endswith("BPMtrace"):
-            continue
-        trace = sig.with_name(sig.stem + "_BPMtrace.mat")
-        if trace.is_file():
-            out.append((sig.stem[5:7], sig, trace))
-    return out
-
-
 def load(sig_path: Path, trace_path: Path):
     from scipy.io import loadmat
 
     sig = np.asarray(loadmat(sig_path)["sig"], dtype=np.float64)  # ECG, PPG1, PPG2, acc x/y/z
     bpm0 = np.asarray(loadmat(trace_path)["BPM0"], dtype=np.float64).ravel()
     return sig, bpm0
-
-
-def held_rate_at(emitted_s: np.ndarray, rate: np.ndarray, at_s: np.ndarray) -> np.ndarray:
-    """The last finite rate emitted at or before each time in ``at_s`` (NaN before any).
-
-    >>> held_rate_at(np.array([1.0, 2.0, 3.0]), np.array([60.0, np.nan, 70.0]),
-    ...              np.array([0.5, 2.5, 3.0])).tolist()
-    [nan, 60.0, 70.0]
-    """
-    finite = np.isfinite(rate)
-    e, r = emitted_s[finite], rate[finite]
-    idx = np.searchsorted(e, at_s + 1e-9, side="right") - 1
-    return np.where(idx >= 0, r[np.clip(idx, 0, None)], np.nan)
 
 
 def score(sig: np.ndarray, bpm0: np.ndarray, profile, channels, source: str) -> dict:
@@ -155,7 +131,7 @@ def score(sig: np.ndarray, bpm0: np.ndarray, profile, channels, source: str) -> 
 
 
 def run(data: Path = SHARED_DATA) -> dict:
-    recs = records(data)
+    recs = spc_records(data)
     if not recs:
         raise FileNotFoundError(f"no SPC 2015 records under {data / 'ieee_spc2015'}")
     loaded = {name: load(s, tr) for name, s, tr in recs}

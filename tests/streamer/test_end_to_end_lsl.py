@@ -24,6 +24,7 @@ import pylsl
 import pytest
 
 from estimators.config import get_profile
+from estimators.monitor import RateMonitor
 from streamer.channels import select
 from streamer.runner import Runner
 from streamer.simulation import pulse_train
@@ -145,7 +146,11 @@ def live_session(tmp_path_factory):
     cli_log = folder / "cli.csv"
     proc = start_cli("live", "--name", name, "--timeout", "20", "--display", "none",
                      "--duration", RUN_S, "--log", cli_log, "--publish", cwd=folder)
-    cli_estimates = Collector("source_id", derived_source_id("estimates", source_id, "hr.PLETH"))
+    # The command line's outlet carries every stream its engine emits (here heart rate
+    # and breathing rate from the PPG), and its source_id is derived from them.
+    streams = RateMonitor([("PLETH", "ppg")], FS, PROFILE).streams
+    cli_estimates = Collector("source_id", derived_source_id(
+        "estimates", source_id, *(f"{q}.{s}" for q, s in streams)))
     cli_estimates.start()
 
     # (b) the Python API, in this process

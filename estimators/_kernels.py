@@ -80,7 +80,6 @@ def backward_pass(emissions, weights, transition, mix, out_beta):
     so the backward step uses the same banded kernel as the forward one.
     """
     n_hops, n_bins = emissions.shape
-    half = (transition.shape[0] - 1) // 2
     tmp = np.empty(n_bins)
     for f in range(n_bins):
         out_beta[n_hops - 1, f] = 1.0 / n_bins
@@ -93,17 +92,13 @@ def backward_pass(emissions, weights, transition, mix, out_beta):
                 e = e ** w
             tmp[f] = e * out_beta[p, f]
             total_in += tmp[f]
+        if total_in > 0.0:  # the jump term needs unit mass; the scale cancels below
+            for f in range(n_bins):
+                tmp[f] /= total_in
+        predict(tmp, transition, mix, out_beta[p - 1])
         total = 0.0
         for f in range(n_bins):
-            acc = 0.0
-            lo = f - half
-            for j in range(transition.shape[0]):
-                g = lo + j
-                if 0 <= g < n_bins:
-                    acc += transition[j] * tmp[g]
-            v = (1.0 - mix) * acc + mix * total_in / n_bins
-            out_beta[p - 1, f] = v
-            total += v
+            total += out_beta[p - 1, f]
         if total > 0.0:
             for f in range(n_bins):
                 out_beta[p - 1, f] /= total
@@ -152,30 +147,6 @@ def viterbi(log_emissions, log_transition, log_jump, out_path):
     for p in range(n_hops - 1, 0, -1):
         best = back[p, best]
         out_path[p - 1] = best
-
-
-@kernel
-def stuck_runs(x, last_value, last_run, min_run, out_flags):
-    """Flag samples that have repeated the same value for ``min_run`` samples or more.
-
-    A flat line (sensor off) and a clipped or saturated signal both show as runs of
-    identical values. The run carried in from the previous chunk is ``last_run`` samples
-    of ``last_value``; returns the run length at the end of ``x``. Non-finite samples
-    break runs and are not flagged here (they are counted separately).
-    """
-    run = last_run
-    prev = last_value
-    for k in range(x.shape[0]):
-        v = x[k]
-        if not np.isfinite(v):
-            run = 0  # inf == inf, so test finiteness rather than rely on NaN != NaN
-        elif v == prev:
-            run += 1
-        else:
-            run = 1
-        prev = v
-        out_flags[k] = 1.0 if run >= min_run else 0.0
-    return run
 
 
 @kernel

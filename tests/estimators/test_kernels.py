@@ -35,7 +35,7 @@ def hmm_inputs(rng, n_hops=40):
     return spectra, em, np.ascontiguousarray(w)
 
 
-TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "stuck_runs", "squeeze_column",
+TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "squeeze_column",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
                   "rhythm_scores", "hop_rhythm", "predict"}
 """Kernels with a test here (``harmonic_score`` in test_quality.py, ``track_block`` also
@@ -91,27 +91,6 @@ def test_viterbi(rng, mix):
         path = np.empty(len(em), dtype=np.int64)
         fn(log_e, log_t, float(np.log(mix / N_BINS)), path)
         np.testing.assert_array_equal(path, want, err_msg=label)
-
-
-def test_stuck_runs_with_carried_state(rng):
-    x = rng.integers(0, 3, 500).astype(np.float64)  # many short runs of equal values
-    x[100:140] = 7.0
-    x[200] = np.nan
-    x[201:260] = 7.0
-    x[300:320] = np.inf  # non-finite: never stuck, even though inf == inf
-    x[330:335] = -np.inf
-    min_run = 4
-    want = preprocess_loop.stuck_flags(x, min_run)
-    for label, fn in both(_kernels.stuck_runs):
-        flags, value, run, k = [], np.nan, 0, 0
-        for size in (1, 1, 2, 3, 50, 7, 137, 300):
-            out = np.empty(len(x[k:k + size]))
-            run = fn(x[k:k + size], value, run, min_run, out)
-            if len(out):
-                value = x[k + len(out) - 1]
-            flags.append(out)
-            k += size
-        np.testing.assert_array_equal(np.concatenate(flags), want, err_msg=label)
 
 
 def test_squeeze_column(rng):

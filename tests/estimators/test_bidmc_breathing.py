@@ -27,11 +27,11 @@ The monitor gets each record in one call: its estimates do not depend on the chu
 
 from __future__ import annotations
 
-import gzip
 
 import numpy as np
 import pytest
 
+from bench.breathing_table import load_record  # one BIDMC loader for tests and bench
 from estimators.metrics import rate_from_events
 from estimators.monitor import RateMonitor
 
@@ -40,20 +40,7 @@ pytestmark = [pytest.mark.data, pytest.mark.slow]
 FS = 125.0
 WINDOW_S = 32.0
 RECORDS = tuple(range(1, 13))
-SOURCES = (("RESP", "resp"), ("PLETH", "ppg"), ("II", "ecg"))
-
-
-def load(folder, record: int):
-    with gzip.open(folder / f"bidmc_{record:02d}_Signals.csv.gz", "rt") as f:
-        names = [c.strip() for c in f.readline().split(",")]
-        data = np.loadtxt(f, delimiter=",")
-    t = data[:, names.index("Time [s]")]
-    samples = np.column_stack([data[:, names.index(name)] for name, _ in SOURCES])
-    breaths = np.genfromtxt(folder / f"bidmc_{record:02d}_Breaths.csv", delimiter=",",
-                            skip_header=1, ndmin=2)
-    # Sample numbers of the 125 Hz signals (0- or 1-based is not stated: 8 ms, no matter).
-    ann = [np.unique(col[np.isfinite(col)]) / FS for col in breaths.T]
-    return t, samples, ann
+SOURCES = (("RESP", "resp"), ("PLETH", "ppg"), ("II", "ecg"))  # load_record's column order
 
 
 @pytest.fixture(scope="module")
@@ -63,7 +50,8 @@ def scores(shared_data):
         pytest.skip(f"BIDMC records not found in {folder}")
     out = {}
     for record in RECORDS:
-        t, samples, ann = load(folder, record)
+        t, samples, ann1, ann2 = load_record(record, folder)
+        ann = [ann1, ann2]
         estimates = RateMonitor(list(SOURCES), FS, "resp-belt").update(samples, t)
         for name, _ in SOURCES:
             rows = [e for e in estimates if e.quantity == "rr" and e.source == name]

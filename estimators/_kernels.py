@@ -13,6 +13,9 @@ import numpy as np
 
 from estimators._jit import kernel
 
+TINY = 1e-300
+"""Keeps divisions by a vanishing level finite."""
+
 MAX_HARMONIC = 4.0
 """The harmonic family of a rate: its multiples up to the fourth."""
 
@@ -411,3 +414,81 @@ def rhythm_scores(spectra, readout, offset, halfwidth, chance_factor, span, out)
     for p in range(n_hops):
         out[p] = hop_rhythm(spectra[p], readout[p], offset, halfwidth, chance_factor, span,
                             pw)[0]
+
+
+@kernel
+def cancel_columns(cov, cross, power, count, x, y, forget, loading, independent_hops,
+                   gate_low, gate_high, out, out_gate):
+    """Coherence-gated multi-reference recursive least squares, per bin, several hops.
+
+    ``cov`` (F, K, K) and ``cross`` (F, K) complex, ``power`` (F,) and ``count`` (1,)
+    float: the exponentially weighted statistics, updated in place. ``x`` (P, F) the PPG
+    columns, ``y`` (P, F, K) the reference columns; ``out`` (P, F) receives the residual
+    ``x - g w^T y`` and ``out_gate`` (P, F) the gate ``g``. The regularised normal equations are solved by Gaussian elimination
+    with partial pivoting (K is small: one to a few accelerometer axes).
+    """
+    n_hops, n_bins = x.shape
+    n_refs = y.shape[2]
+    a = np.empty((n_refs, n_refs), dtype=np.complex128)
+    b = np.empty(n_refs, dtype=np.complex128)
+    for p in range(n_hops):
+        count[0] = forget * count[0] + 1.0
+        independent = 1.0 + count[0] / independent_hops
+        chance = min(1.0, n_refs / independent)
+        for f in range(n_bins):
+            xv = x[p, f]
+            for i in range(n_refs):
+                yi = y[p, f, i].conjugate()
+                cross[f, i] = forget * cross[f, i] + yi * xv
+                for j in range(n_refs):
+                    cov[f, i, j] = forget * cov[f, i, j] + yi * y[p, f, j]
+            power[f] = forget * power[f] + xv.real * xv.real + xv.imag * xv.imag
+            trace = 0.0
+            for i in range(n_refs):
+                trace += cov[f, i, i].real
+            load = loading * trace / n_refs + TINY
+            for i in range(n_refs):
+                b[i] = cross[f, i]
+                for j in range(n_refs):
+                    a[i, j] = cov[f, i, j]
+                a[i, i] += load
+            # Gaussian elimination with partial pivoting; a is Hermitian positive definite
+            # after the loading, so pivots are non-zero.
+            for k in range(n_refs):
+                piv = k
+                for i in range(k + 1, n_refs):
+                    if abs(a[i, k]) > abs(a[piv, k]):
+                        piv = i
+                if piv != k:
+                    for j in range(n_refs):
+                        tmp = a[k, j]
+                        a[k, j] = a[piv, j]
+                        a[piv, j] = tmp
+                    tmp = b[k]
+                    b[k] = b[piv]
+                    b[piv] = tmp
+                for i in range(k + 1, n_refs):
+                    factor = a[i, k] / a[k, k]
+                    for j in range(k, n_refs):
+                        a[i, j] -= factor * a[k, j]
+                    b[i] -= factor * b[k]
+            for k in range(n_refs - 1, -1, -1):
+                acc = b[k]
+                for j in range(k + 1, n_refs):
+                    acc -= a[k, j] * b[j]
+                b[k] = acc / a[k, k]
+            explained = 0.0
+            predicted = 0.0 + 0.0j
+            for i in range(n_refs):
+                explained += (cross[f, i].conjugate() * b[i]).real
+                predicted += b[i] * y[p, f, i]
+            coherence = explained / power[f] if power[f] > 0.0 else 0.0
+            coherence = min(1.0, max(0.0, coherence))
+            if chance < 1.0:
+                corrected = (coherence - chance) / (1.0 - chance)
+            else:
+                corrected = 0.0
+            gate = (corrected - gate_low) / (gate_high - gate_low)
+            gate = min(1.0, max(0.0, gate))
+            out[p, f] = xv - gate * predicted
+            out_gate[p, f] = gate

@@ -37,8 +37,9 @@ def hmm_inputs(rng, n_hops=40):
 
 TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "squeeze_column",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
-                  "rhythm_scores", "hop_rhythm", "predict"}
-"""Kernels with a test here (``harmonic_score`` in test_quality.py, ``track_block`` also
+                  "rhythm_scores", "hop_rhythm", "predict", "cancel_columns"}
+"""Kernels with a test here (``cancel_columns`` in test_motion.py,
+``harmonic_score`` in test_quality.py, ``track_block`` also
 through ``RidgeTracker.track`` in test_tracker.py)."""
 
 

@@ -38,6 +38,19 @@ def predict(alpha, transition, mix, out):
 
 
 @kernel
+def normalise_or_prior(alpha, total, prior):
+    """Finish a tracker update in place: divide ``alpha`` by its ``total``, or, when the
+    total is zero or not finite (no usable evidence), fall back on the ``prior``."""
+    n_bins = alpha.shape[0]
+    if total > 0.0 and np.isfinite(total):
+        for f in range(n_bins):
+            alpha[f] /= total
+    else:
+        for f in range(n_bins):
+            alpha[f] = prior[f]
+
+
+@kernel
 def forward_filter(alpha, emissions, weights, transition, mix, out_alpha):
     """Hidden-Markov forward filter over frequency bins, several hops in one call.
 
@@ -63,12 +76,7 @@ def forward_filter(alpha, emissions, weights, transition, mix, out_alpha):
             v = prior[f] * e
             alpha[f] = v
             total += v
-        if total > 0.0 and np.isfinite(total):
-            for f in range(n_bins):
-                alpha[f] /= total
-        else:
-            for f in range(n_bins):
-                alpha[f] = prior[f]
+        normalise_or_prior(alpha, total, prior)
         for f in range(n_bins):
             out_alpha[p, f] = alpha[f]
     return alpha
@@ -362,12 +370,7 @@ def track_block(spectra, readout, weights, alpha, transition, mix, power, floor,
                 e = e ** w
             alpha[f] = prior[f] * e
             total += alpha[f]
-        if total > 0.0 and np.isfinite(total):
-            for f in range(n_bins):
-                alpha[f] /= total
-        else:
-            for f in range(n_bins):
-                alpha[f] = prior[f]
+        normalise_or_prior(alpha, total, prior)
         mode = 0
         for f in range(1, n_bins):
             if alpha[f] > alpha[mode]:

@@ -37,7 +37,8 @@ def hmm_inputs(rng, n_hops=40):
 
 TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "squeeze_column",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
-                  "rhythm_scores", "hop_rhythm", "predict", "cancel_columns"}
+                  "rhythm_scores", "hop_rhythm", "predict", "cancel_columns",
+                  "normalise_or_prior"}
 """Kernels with a test here (``cancel_columns`` in test_motion.py,
 ``harmonic_score`` in test_quality.py, ``track_block`` also
 through ``RidgeTracker.track`` in test_tracker.py)."""
@@ -218,6 +219,20 @@ def test_predict_is_the_dense_transition_with_jumps(rng):
         out = np.empty(N_BINS)
         fn(alpha, params.transition, params.jump_probability, out)
         np.testing.assert_allclose(out, want, rtol=1e-12, atol=1e-15, err_msg=label)
+
+
+def test_normalise_or_prior(rng):
+    """Unit mass when there is evidence; the prior itself when the total is 0 or NaN."""
+    prior = rng.random(N_BINS)
+    for label, fn in both(_kernels.normalise_or_prior):
+        alpha = rng.random(N_BINS)
+        want = alpha / alpha.sum()
+        fn(alpha, alpha.sum(), prior)
+        np.testing.assert_allclose(alpha, want, rtol=1e-15, err_msg=label)
+        for bad in (0.0, np.nan, np.inf):
+            alpha = np.zeros(N_BINS)
+            fn(alpha, bad, prior)
+            np.testing.assert_array_equal(alpha, prior, err_msg=label)
 
 
 def test_hop_rhythm_is_one_row_of_rhythm_scores(rng):

@@ -263,18 +263,20 @@ class _Output:
 
 
 def concat_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
-    mags = [b.magnitude for b in blocks]
-    return HopBlock(np.concatenate([b.spectra for b in blocks]),
-                    np.concatenate([b.time_s for b in blocks]),
-                    np.concatenate([b.emitted_s for b in blocks]),
-                    np.concatenate([b.integrity for b in blocks]),
-                    None if any(m is None for m in mags) else np.concatenate(mags))
+    """Hop blocks one after the other; an optional field is kept when every block has
+    it."""
+    fields = {}
+    for field in dataclasses.fields(HopBlock):
+        parts = [getattr(b, field.name) for b in blocks]
+        fields[field.name] = None if any(x is None for x in parts) else np.concatenate(parts)
+    return HopBlock(**fields)
 
 
-def take_hops(block: HopBlock, index: np.ndarray) -> HopBlock:
-    return HopBlock(block.spectra[index], block.time_s[index], block.emitted_s[index],
-                    block.integrity[index],
-                    None if block.magnitude is None else block.magnitude[index])
+def take_hops(block: HopBlock, index) -> HopBlock:
+    """The hops ``index`` (an index array or a slice) of every field of ``block``."""
+    return HopBlock(**{field.name: None if getattr(block, field.name) is None
+                       else getattr(block, field.name)[index]
+                       for field in dataclasses.fields(HopBlock)})
 
 
 def monotone_times(timestamps: np.ndarray, newest_s: float) -> np.ndarray:
@@ -408,19 +410,47 @@ class RateMonitor:
                 f"timestamps.shape={timestamps.shape} must be ({samples.shape[0]},)")
         return samples, timestamps
 
-    def suppress_motion(self, blocks: dict, motion_blocks: dict) -> dict:
-        """The motion stage on the PPG heart-rate blocks: new blocks whose spectra (and
-        read-out) are the stage's output, with motion-line marks; the accelerometer
-        blocks of the same hops are the references."""
+    def _consumer(self, key: tuple[str, str]) -> "_Output":
+        """The output whose track guides the motion stage of ``key``: the fused heart
+        rate when there is one (it is what is reported), else the channel's own."""
+        return self.outputs.get(("hr", FUSED), self.outputs[key])
+
+    def _expected_pulse(self, key: tuple[str, str]) -> np.ndarray | None:
+        """Where the guiding tracker expects the pulse before its next hop; None before
+        it has seen a hop."""
+        tracker = self._consumer(key).tracker
+        if tracker.hops_seen == 0:
+            return None
+        return motion_mod.expected_pulse(tracker.posterior, tracker.params.halfwidth_bins)
+
+    def track_with_motion(self, blocks: dict, motion_blocks: dict) -> tuple[list, dict]:
+        """The motion stage and the heart-rate trackers, hop by hop: the motion stage of
+        hop ``p`` trusts its canceller where the trackers' posteriors after hop ``p - 1``
+        expect the pulse (:func:`estimators.motion.expected_pulse`). Returns the
+        heart-rate estimates and the blocks as tracked (motion-suppressed spectra, fused
+        block)."""
         refs = [motion_blocks[name].columns for name in self.motion_paths]
-        out = {}
-        for key, suppressor in self.motion.items():
-            block = blocks[key]
-            acc = np.stack(refs, axis=-1) if refs else None
-            spectra, lines = suppressor.update(block.columns, acc)
-            out[key] = dataclasses.replace(block, spectra=spectra, magnitude=spectra,
-                                           columns=None, motion_lines=lines)
-        return out
+        acc = np.stack(refs, axis=-1) if refs else None
+        hr_keys = [key for key in self.outputs if key[0] == "hr"]
+        n_hops = len(blocks[next(iter(self.motion))])
+        estimates, tracked = [], {key: [] for key in hr_keys}
+        for p in range(n_hops):
+            hop = {key: take_hops(blocks[key], slice(p, p + 1)) for key in hr_keys
+                   if key in blocks}
+            for key, suppressor in self.motion.items():
+                spectra, lines = suppressor.update(
+                    hop[key].columns, None if acc is None else acc[p:p + 1],
+                    self._expected_pulse(key))
+                hop[key] = dataclasses.replace(hop[key], spectra=spectra, magnitude=spectra,
+                                               columns=None, motion_lines=lines)
+            if ("hr", FUSED) in self.outputs:
+                hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in hr_keys
+                                                  if key[1] != FUSED])
+            for key in hr_keys:
+                estimates.extend(self.outputs[key].update(hop[key]))
+                tracked[key].append(hop[key])
+        return estimates, {key: concat_blocks(parts) for key, parts in tracked.items()
+                           if parts}
 
     def update(self, samples, timestamps) -> list[Estimate]:
         """Feed a chunk ``(n, channels)`` with timestamps ``(n,)``; return the estimates
@@ -440,15 +470,19 @@ class RateMonitor:
             blocks[key] = path.update(samples[:, self._index[key[1]]], timestamps)
         for name, path in self.motion_paths.items():
             self.motion_spectra[name] = path.update(samples[:, self._index[name]], timestamps)
-        if self.motion:
-            blocks.update(self.suppress_motion(blocks, self.motion_spectra))
-        hr_blocks = [b for (q, _), b in blocks.items() if q == "hr"]
-        if ("hr", FUSED) in self.outputs:
-            blocks[("hr", FUSED)] = fuse_blocks(hr_blocks)
-        self.last_blocks = blocks
         estimates = []
+        if self.motion:
+            hr_estimates, tracked = self.track_with_motion(blocks, self.motion_spectra)
+            estimates.extend(hr_estimates)
+            blocks.update(tracked)
+        else:
+            hr_blocks = [b for (q, _), b in blocks.items() if q == "hr"]
+            if ("hr", FUSED) in self.outputs:
+                blocks[("hr", FUSED)] = fuse_blocks(hr_blocks)
+        self.last_blocks = blocks
         for key, out in self.outputs.items():
-            estimates.extend(out.update(blocks[key]))
+            if not (self.motion and key[0] == "hr"):
+                estimates.extend(out.update(blocks[key]))
         for name, breathing in self.pulse_breathing.items():
             estimates.extend(breathing.update(samples[:, self._index[name]], timestamps))
         estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
@@ -472,12 +506,15 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
     blocks = {key: path.batch(samples[:, monitor._index[key[1]]], timestamps, True)
               for key, path in monitor.paths.items()}
     if monitor.motion:
-        blocks.update(monitor.suppress_motion(blocks, {
+        # The motion stage needs a track to know where to trust its canceller: a causal
+        # forward pass over the zero-phase columns gives it (its estimates are dropped);
+        # the Viterbi ridge below then runs on the spectra that pass made.
+        _, tracked = monitor.track_with_motion(blocks, {
             name: path.batch(samples[:, monitor._index[name]], timestamps, True)
-            for name, path in monitor.motion_paths.items()}))
-    hr_blocks = [b for (q, _), b in blocks.items() if q == "hr"]
-    if ("hr", FUSED) in monitor.outputs:
-        blocks[("hr", FUSED)] = fuse_blocks(hr_blocks)
+            for name, path in monitor.motion_paths.items()})
+        blocks.update(tracked)
+    elif ("hr", FUSED) in monitor.outputs:
+        blocks[("hr", FUSED)] = fuse_blocks([b for (q, _), b in blocks.items() if q == "hr"])
     estimates = []
     for key, out in monitor.outputs.items():
         block = blocks[key]

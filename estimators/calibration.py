@@ -65,8 +65,8 @@ both ranks worse in each (measured, see :mod:`bench.calibration`)."""
 
 
 def _columns(measures: np.ndarray) -> dict:
-    m = np.nan_to_num(np.atleast_2d(np.asarray(measures, dtype=np.float64)),
-                      nan=0.0, posinf=0.0, neginf=0.0)
+    m = np.atleast_2d(np.asarray(measures, dtype=np.float64))
+    m = np.where(np.isfinite(m), m, 0.0)
     if m.shape[1] != len(FEATURES):
         raise ParameterError(f"evidence has {m.shape[1]} columns, expected {len(FEATURES)} "
                              f"({', '.join(FEATURES)})")
@@ -94,7 +94,7 @@ def design_extended(measures: np.ndarray) -> np.ndarray:
     (squares of quality and concentration, products with the posterior mass and the
     jumpiness, and the part of the rival ratio above 1)."""
     f = _columns(measures)
-    base = design_basic(measures)
+    base = design_basic(np.column_stack([f[name] for name in FEATURES]))
     logit_pm, jumps = base[:, 0], base[:, 8]
     log_double = np.log(np.maximum(f["double_ratio"], 1e-3))
     q, c = f["quality"], f["concentration"]

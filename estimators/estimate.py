@@ -45,3 +45,11 @@ class Estimate:
     @property
     def has_rate(self) -> bool:
         return not math.isnan(self.rate_per_min)
+
+    @property
+    def display(self) -> str:
+        """``show``, ``grey`` or ``withhold``: the one rule every display, the log and
+        the outlet follow (:mod:`estimators.display_rule`)."""
+        from estimators.display_rule import decide_estimate
+
+        return decide_estimate(self)

@@ -44,6 +44,8 @@ import math
 
 import numpy as np
 
+from estimators import _kernels
+
 FEATURES = ("posterior_mass", "motion_mark", "quality", "integrity", "concentration",
             "rival_ratio", "half_ratio", "double_ratio", "jumpiness", "channel_spread",
             "motion_profile")
@@ -76,7 +78,9 @@ def _ratio(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
 
 def spectral_margins(spectra: np.ndarray, readout: np.ndarray, rate_bins: np.ndarray,
                      offset_bins: float, halfwidth_bins: float) -> tuple:
-    """``(rival_ratio, half_ratio, double_ratio)`` per hop (see the module notes).
+    """``(rival_ratio, half_ratio, double_ratio)`` per hop (see the module notes), in
+    one compiled pass (:func:`estimators._kernels.spectral_margins`; its batch twin is
+    :func:`spectral_margins_batch`).
 
     ``rate_bins`` (P,) is the rate in fractional bins of the grid whose bin ``f`` has
     rate ``(f + offset_bins) * step``.
@@ -87,6 +91,18 @@ def spectral_margins(spectra: np.ndarray, readout: np.ndarray, rate_bins: np.nda
     >>> [round(float(v[0]), 2) for v in spectral_margins(s, s, np.array([10.0]), 0.0, 2.0)]
     [0.5, 0.0, 0.0]
     """
+    spectra = np.ascontiguousarray(np.atleast_2d(spectra), dtype=np.float64)
+    readout = np.ascontiguousarray(np.atleast_2d(readout), dtype=np.float64)
+    rate_bins = np.ascontiguousarray(rate_bins, dtype=np.float64)
+    out = np.empty((len(spectra), 3))
+    _kernels.spectral_margins(spectra, readout, rate_bins, float(offset_bins),
+                              float(halfwidth_bins), out)
+    return out[:, 0], out[:, 1], out[:, 2]
+
+
+def spectral_margins_batch(spectra: np.ndarray, readout: np.ndarray, rate_bins: np.ndarray,
+                           offset_bins: float, halfwidth_bins: float) -> tuple:
+    """Array twin of :func:`spectral_margins` (masks over all hops and bins at once)."""
     spectra = np.atleast_2d(spectra)
     readout = np.atleast_2d(readout)
     rate_bins = np.asarray(rate_bins, dtype=np.float64)

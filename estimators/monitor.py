@@ -189,7 +189,8 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
                          settings: RateSettings, emitted_s: np.ndarray,
                          concentration: np.ndarray | None = None,
                          smoothing: dict | None = None,
-                         channel_rates: np.ndarray | None = None) -> list[Estimate]:
+                         channel_rates: np.ndarray | None = None,
+                         calibrate: bool = True) -> list[Estimate]:
     """Estimate records from tracker output aligned with ``block`` (same hops).
 
     ``concentration`` is the harmonic concentration score at each rate; computed here
@@ -197,10 +198,12 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     calls (a dict, updated in place). ``channel_rates`` (C, P): for a fused output, the
     channels' own rates at the same hops (their spread is evidence).
 
-    A heart-rate estimate's ``confidence`` is the calibrated probability that it is
-    within the heart-rate tolerance (:mod:`estimators.calibration`) and its
-    ``evidence`` holds the raw measures behind it (:mod:`estimators.evidence`); a
-    breathing-rate estimate keeps the posterior mass as its confidence."""
+    With ``calibrate`` (heart rate from PPG), a heart-rate estimate's ``confidence``
+    is the calibrated probability that it is within the heart-rate tolerance
+    (:mod:`estimators.calibration`); otherwise (ECG: no map is fitted for it yet) the
+    tracker's raw confidence. A heart-rate estimate's ``evidence`` holds the raw
+    measures (:mod:`estimators.evidence`); a breathing-rate estimate keeps the posterior
+    mass as its confidence."""
     step = rates_grid[1] - rates_grid[0]
     halfwidth = settings.confidence_halfwidth_per_min / step
     posterior_mass = np.asarray(confidence, dtype=np.float64)
@@ -229,7 +232,8 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
             posterior_mass, mark, quality, block.integrity, concentration, rival, half,
             double, jumps, evidence_mod.channel_spread(channel_rates, len(quality)),
             np.full(len(quality), 1.0 if settings.motion else 0.0)])
-        confidence = calibration_mod.calibrated_confidence(measures, confidence)
+        if calibrate:
+            confidence = calibration_mod.calibrated_confidence(measures, confidence)
         evidence = [tuple(row) for row in measures.tolist()]
     # The grid reaches the confidence half-width beyond the band, so that a rate on the
     # band's edge is a peak; such rates are shown at the edge (off by less than the
@@ -254,6 +258,7 @@ class _Output:
                                          settings.jump_probability,
                                          settings.confidence_halfwidth_per_min,
                                          settings.lag_hops)
+        self.calibrate = True  # set by the monitor: heart rate from PPG channels only
         self.tracker = tracker_mod.RidgeTracker(grid_rates, params, settings.emission_power,
                                                 True, quality_mod.CHANCE_FACTOR,
                                                 quality_mod.CONCENTRATION_SPAN)
@@ -276,7 +281,7 @@ class _Output:
             rate, conf, frac = self.tracker.track(block.spectra, block.integrity, block.magnitude)
             return estimates_from_track(self.quantity, self.source, block, rate, conf,
                                         self.rates, self.settings, block.emitted_s, frac,
-                                        self._smoothing, channel_rates)
+                                        self._smoothing, channel_rates, self.calibrate)
         rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
         self._held.append(block)
@@ -288,7 +293,7 @@ class _Output:
         self._held = [take_hops(held, np.arange(max(0, len(held) - lag - 1), len(held)))]
         return estimates_from_track(self.quantity, self.source, referred, rate, conf,
                                     self.rates, self.settings, newest, None, self._smoothing,
-                                    channel_rates)
+                                    channel_rates, self.calibrate)
 
 
 def _stacked(rates: list) -> np.ndarray | None:
@@ -387,6 +392,12 @@ class RateMonitor:
         if len(hr_paths) >= 2:
             grid = self.paths[hr_paths[0]].grid.rates_per_min
             self.outputs[("hr", FUSED)] = _Output("hr", FUSED, grid, hr)
+        # The confidence map is fitted on PPG heart rate; ECG (and a fusion with ECG)
+        # keeps the tracker's raw confidence until a map is fitted for it.
+        for (quantity, name), out in self.outputs.items():
+            kinds = ({self.paths[k].kind for k in hr_paths} if name == FUSED
+                     else {self.paths[(quantity, name)].kind})
+            out.calibrate = quantity == "hr" and kinds == {"ppg"}
         self._index = {name: i for i, (name, _) in enumerate(self.channels)}
         self.last_blocks: dict[tuple[str, str], HopBlock] = {}
         self.motion_spectra: dict[str, HopBlock] = {}
@@ -539,7 +550,7 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
         new = estimates_from_track(key[0], key[1], block, rate, conf, out.rates, out.settings,
                                    np.full(len(block), end),
                                    channel_rates=_stacked(channel_rates)
-                                   if key[1] == FUSED else None)
+                                   if key[1] == FUSED else None, calibrate=out.calibrate)
         if key[0] == "hr" and key[1] != FUSED:
             channel_rates.append([e.rate_per_min for e in new])
         estimates.extend(new)

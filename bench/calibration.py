@@ -199,6 +199,7 @@ class Table:
     group: np.ndarray
     fold: np.ndarray
     record: np.ndarray
+    time_s: np.ndarray
     withheld: dict
 
     @property
@@ -232,11 +233,12 @@ def collect(shared: Path = SHARED_DATA, groups=tuple(GROUPS), use_cache: bool = 
                                           & ~np.isfinite(rows["rate"])))
             n = int(keep.sum())
             parts.append((rows["evidence"][keep], rows["rate"][keep], rows["reference"][keep],
-                          [group] * n, [f"{dataset}:{record}"] * n, [record] * n))
+                          [group] * n, [f"{dataset}:{record}"] * n, [record] * n,
+                          rows["time_s"][keep]))
     cols = list(zip(*parts))
     return Table(np.concatenate(cols[0]), np.concatenate(cols[1]), np.concatenate(cols[2]),
                  np.concatenate(cols[3]).astype(str), np.concatenate(cols[4]).astype(str),
-                 np.concatenate(cols[5]).astype(str), withheld)
+                 np.concatenate(cols[5]).astype(str), np.concatenate(cols[6]), withheld)
 
 
 # ---------------------------------------------------------------------- fitting

@@ -14,8 +14,9 @@ never replaces a full one. Exit status 1 when a part failed (raised), 0 otherwis
 a missed target is a finding, not a failure.
 
 The table modules of other parts (``bench/exercise_table.py``,
-``bench/breathing_table.py``, ``bench/display_fps.py``) are run with ``python -m`` when
-they exist and their JSON (``exercise.json``, ``breathing.json``, ``display.json`` in
+``bench/breathing_table.py``, ``bench/display_fps.py``, ``bench/calibration.py``) are run
+with ``python -m`` when
+they exist and their JSON (``exercise.json``, ``breathing.json``, ``display.json``, ``calibration.json`` in
 ``bench/results/``) is folded into the table; otherwise their section says "not
 available". ``--quick`` does not run them (they write to ``bench/results/`` themselves).
 """
@@ -42,6 +43,8 @@ EXTERNAL_PARTS = {
     "exercise": ("bench.exercise_table", "exercise.json", "Exercise heart-rate table (SPC 2015)"),
     "breathing": ("bench.breathing_table", "breathing.json", "Breathing-rate table (BIDMC)"),
     "display": ("bench.display_fps", "display.json", "Display frame rate"),
+    "calibration": ("bench.calibration", "calibration.json",
+                    "Calibrated heart-rate confidence (SPC 2015, BIDMC 01-26)"),
 }
 PARTS = OWN_PARTS + tuple(EXTERNAL_PARTS)
 EXTERNAL_TIMEOUT_S = 180.0

@@ -495,3 +495,43 @@ def cancel_columns(cov, cross, power, count, x, y, forget, loading, independent_
             gate = min(1.0, max(0.0, gate))
             out[p, f] = xv - gate * predicted
             out_gate[p, f] = gate
+
+
+@kernel
+def spectral_margins(spectra, readout, rate_bins, offset, halfwidth, out):
+    """Per hop, the spectral margins of a rate at fractional bin ``rate_bins[p]``
+    (see :mod:`estimators.evidence`): ``out[p, 0]`` the highest ``spectra`` value more
+    than ``2 halfwidth`` bins from the rate over the highest within ``halfwidth``;
+    ``out[p, 1]`` (``out[p, 2]``) the highest ``readout`` value within ``halfwidth`` of
+    half (double) the rate over the highest within ``halfwidth`` of the rate. Bins have
+    rate ``(f + offset) * step``; non-finite values count as 0; a ratio with nothing
+    below it is 0; ratios are capped at 10."""
+    n_hops, n_bins = spectra.shape
+    for p in range(n_hops):
+        c = rate_bins[p]
+        at_s = 0.0
+        rival = 0.0
+        at_r = 0.0
+        half = 0.0
+        double = 0.0
+        if np.isfinite(c):
+            c_half = (c + offset) / 2.0 - offset
+            c_double = (c + offset) * 2.0 - offset
+            for f in range(n_bins):
+                d = abs(f - c)
+                s = spectra[p, f]
+                s = s if np.isfinite(s) else 0.0
+                r = readout[p, f]
+                r = r if np.isfinite(r) else 0.0
+                if d <= halfwidth:
+                    at_s = max(at_s, s)
+                    at_r = max(at_r, r)
+                elif d > 2.0 * halfwidth:
+                    rival = max(rival, s)
+                if c_half >= 0.0 and abs(f - c_half) <= halfwidth:
+                    half = max(half, r)
+                if c_double <= n_bins - 1 and abs(f - c_double) <= halfwidth:
+                    double = max(double, r)
+        out[p, 0] = min(10.0, rival / at_s) if at_s > 0.0 else 0.0
+        out[p, 1] = min(10.0, half / at_r) if at_r > 0.0 else 0.0
+        out[p, 2] = min(10.0, double / at_r) if at_r > 0.0 else 0.0

@@ -21,8 +21,12 @@ class Estimate:
         nothing: the window is symmetric, so its centre is the instant it describes).
     emitted_s : stream time of the newest sample the estimate used.
     rate_per_min : rate in events per minute; NaN when there is no estimate.
-    confidence : in [0, 1], posterior mass of the tracker near the reported rate.
+    confidence : in [0, 1]. Heart rate: the calibrated probability that the rate is
+        within the heart-rate tolerance (:mod:`estimators.calibration`). Breathing rate:
+        the tracker's posterior mass near the reported rate (not calibrated).
     quality : in [0, 1], the data-quality index of the window.
+    evidence : heart rate: the raw measures behind the confidence, named by
+        :data:`estimators.evidence.FEATURES` (for diagnostics); empty otherwise.
     """
 
     quantity: str
@@ -32,6 +36,7 @@ class Estimate:
     rate_per_min: float
     confidence: float
     quality: float
+    evidence: tuple = ()
 
     @property
     def delay_s(self) -> float:
@@ -40,3 +45,11 @@ class Estimate:
     @property
     def has_rate(self) -> bool:
         return not math.isnan(self.rate_per_min)
+
+    @property
+    def display(self) -> str:
+        """``show``, ``grey`` or ``withhold``: the one rule every display, the log and
+        the outlet follow (:mod:`estimators.display_rule`)."""
+        from estimators.display_rule import decide_estimate
+
+        return decide_estimate(self)

@@ -29,7 +29,9 @@ from typing import Sequence
 
 import numpy as np
 
+from estimators import calibration as calibration_mod
 from estimators import deshape as deshape_mod
+from estimators import evidence as evidence_mod
 from estimators import motion as motion_mod
 from estimators import quality as quality_mod
 from estimators import tracker as tracker_mod
@@ -186,35 +188,62 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
                          confidence: np.ndarray, rates_grid: np.ndarray,
                          settings: RateSettings, emitted_s: np.ndarray,
                          concentration: np.ndarray | None = None,
-                         smoothing: dict | None = None) -> list[Estimate]:
+                         smoothing: dict | None = None,
+                         channel_rates: np.ndarray | None = None,
+                         calibrate: bool = True) -> list[Estimate]:
     """Estimate records from tracker output aligned with ``block`` (same hops).
 
     ``concentration`` is the harmonic concentration score at each rate; computed here
-    when not given. ``smoothing`` carries the state of its causal average between
-    calls (a dict, updated in place)."""
+    when not given. ``smoothing`` carries the state of its causal averages between
+    calls (a dict, updated in place). ``channel_rates`` (C, P): for a fused output, the
+    channels' own rates at the same hops (their spread is evidence).
+
+    With ``calibrate`` (heart rate from PPG), a heart-rate estimate's ``confidence``
+    is the calibrated probability that it is within the heart-rate tolerance
+    (:mod:`estimators.calibration`); otherwise (ECG: no map is fitted for it yet) the
+    tracker's raw confidence. A heart-rate estimate's ``evidence`` holds the raw
+    measures (:mod:`estimators.evidence`); a breathing-rate estimate keeps the posterior
+    mass as its confidence."""
     step = rates_grid[1] - rates_grid[0]
     halfwidth = settings.confidence_halfwidth_per_min / step
+    posterior_mass = np.asarray(confidence, dtype=np.float64)
+    mark = np.zeros(len(posterior_mass))
     if block.motion_lines is not None:  # pulse on a motion line: not told apart
         confidence = motion_mod.overlap_confidence(confidence, rate, block.motion_lines,
                                                    rates_grid,
                                                    settings.motion_confidence_penalty)
+        mark = 1.0 - motion_mod.overlap_confidence(np.ones(len(mark)), rate,
+                                                   block.motion_lines, rates_grid, 1.0)
+    readout = block.spectra if block.magnitude is None else block.magnitude
+    rate_bins = (rate - rates_grid[0]) / step
     if concentration is None:
-        readout = block.spectra if block.magnitude is None else block.magnitude
         concentration = quality_mod.harmonic_concentration(
-            readout, (rate - rates_grid[0]) / step, rates_grid[0] / step, halfwidth)
+            readout, rate_bins, rates_grid[0] / step, halfwidth)
     state = {} if smoothing is None else smoothing
     conc, state["last"] = quality_mod.smooth_scores(concentration, state.get("last"),
                                                     settings.hop_s)
     quality = quality_mod.quality_index(block.integrity, conc)
+    evidence = [()] * len(quality)
+    if quantity == "hr" and len(quality):
+        rival, half, double = evidence_mod.spectral_margins(
+            block.spectra, readout, rate_bins, rates_grid[0] / step, halfwidth)
+        jumps = evidence_mod.jumpiness(rate, settings.hop_s, state.setdefault("jumps", {}))
+        measures = np.column_stack([
+            posterior_mass, mark, quality, block.integrity, concentration, rival, half,
+            double, jumps, evidence_mod.channel_spread(channel_rates, len(quality)),
+            np.full(len(quality), 1.0 if settings.motion else 0.0)])
+        if calibrate:
+            confidence = calibration_mod.calibrated_confidence(measures, confidence)
+        evidence = [tuple(row) for row in measures.tolist()]
     # The grid reaches the confidence half-width beyond the band, so that a rate on the
     # band's edge is a peak; such rates are shown at the edge (off by less than the
     # half-width), never outside the band.
     lo, hi = settings.band_per_min
     withheld = (quality < settings.min_quality) | ~np.isfinite(rate)
     shown = np.where(withheld, np.nan, np.clip(rate, lo, hi))
-    return [Estimate(quantity, source, t, e, r, c, q) for t, e, r, c, q in zip(
-        block.time_s.tolist(), emitted_s.tolist(), shown.tolist(), confidence.tolist(),
-        quality.tolist())]
+    return [Estimate(quantity, source, t, e, r, c, q, v) for t, e, r, c, q, v in zip(
+        block.time_s.tolist(), emitted_s.tolist(), shown.tolist(),
+        np.asarray(confidence).tolist(), quality.tolist(), evidence)]
 
 
 class _Output:
@@ -229,6 +258,7 @@ class _Output:
                                          settings.jump_probability,
                                          settings.confidence_halfwidth_per_min,
                                          settings.lag_hops)
+        self.calibrate = True  # set by the monitor: heart rate from PPG channels only
         self.tracker = tracker_mod.RidgeTracker(grid_rates, params, settings.emission_power,
                                                 True, quality_mod.CHANCE_FACTOR,
                                                 quality_mod.CONCENTRATION_SPAN)
@@ -240,7 +270,10 @@ class _Output:
         self._held = []
         self._smoothing = {}
 
-    def update(self, block: HopBlock) -> list[Estimate]:
+    def update(self, block: HopBlock, channel_rates: np.ndarray | None = None
+               ) -> list[Estimate]:
+        """Estimates of the hops in ``block``; ``channel_rates`` (C, P): for a fused
+        output, the channels' rates of the hops this call reports."""
         if len(block) == 0:
             return []
         lag = self.settings.lag_hops
@@ -248,7 +281,7 @@ class _Output:
             rate, conf, frac = self.tracker.track(block.spectra, block.integrity, block.magnitude)
             return estimates_from_track(self.quantity, self.source, block, rate, conf,
                                         self.rates, self.settings, block.emitted_s, frac,
-                                        self._smoothing)
+                                        self._smoothing, channel_rates, self.calibrate)
         rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
         self._held.append(block)
@@ -259,7 +292,15 @@ class _Output:
         newest = held.emitted_s[pos + lag]
         self._held = [take_hops(held, np.arange(max(0, len(held) - lag - 1), len(held)))]
         return estimates_from_track(self.quantity, self.source, referred, rate, conf,
-                                    self.rates, self.settings, newest, None, self._smoothing)
+                                    self.rates, self.settings, newest, None, self._smoothing,
+                                    channel_rates, self.calibrate)
+
+
+def _stacked(rates: list) -> np.ndarray | None:
+    """Channels' rates (C, P) when every channel reported the same hops, else None."""
+    if len(rates) < 2 or len({len(r) for r in rates}) != 1:
+        return None
+    return np.array(rates, dtype=np.float64)
 
 
 def concat_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
@@ -353,6 +394,12 @@ class RateMonitor:
         if len(hr_paths) >= 2:
             grid = self.paths[hr_paths[0]].grid.rates_per_min
             self.outputs[("hr", FUSED)] = _Output("hr", FUSED, grid, hr)
+        # The confidence map is fitted on PPG heart rate; ECG (and a fusion with ECG)
+        # keeps the tracker's raw confidence until a map is fitted for it.
+        for (quantity, name), out in self.outputs.items():
+            kinds = ({self.paths[k].kind for k in hr_paths} if name == FUSED
+                     else {self.paths[(quantity, name)].kind})
+            out.calibrate = quantity == "hr" and kinds == {"ppg"}
         self._index = {name: i for i, (name, _) in enumerate(self.channels)}
         self.last_blocks: dict[tuple[str, str], HopBlock] = {}
         self.motion_spectra: dict[str, HopBlock] = {}
@@ -423,6 +470,18 @@ class RateMonitor:
             return None
         return motion_mod.expected_pulse(tracker.posterior, tracker.params.halfwidth_bins)
 
+    def _update_outputs(self, keys: list, blocks: dict) -> list[Estimate]:
+        """The outputs ``keys`` (in the monitor's order: the fused output comes after
+        the channels it reads) advanced over their blocks."""
+        estimates, channel_rates = [], []
+        for key in keys:
+            new = self.outputs[key].update(
+                blocks[key], _stacked(channel_rates) if key[1] == FUSED else None)
+            if key[0] == "hr" and key[1] != FUSED:
+                channel_rates.append([e.rate_per_min for e in new])
+            estimates.extend(new)
+        return estimates
+
     def track_with_motion(self, blocks: dict, motion_blocks: dict) -> tuple[list, dict]:
         """The motion stage and the heart-rate trackers, hop by hop: the motion stage of
         hop ``p`` trusts its canceller where the trackers' posteriors after hop ``p - 1``
@@ -446,8 +505,8 @@ class RateMonitor:
             if ("hr", FUSED) in self.outputs:
                 hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in hr_keys
                                                   if key[1] != FUSED])
+            estimates.extend(self._update_outputs(hr_keys, hop))
             for key in hr_keys:
-                estimates.extend(self.outputs[key].update(hop[key]))
                 tracked[key].append(hop[key])
         return estimates, {key: concat_blocks(parts) for key, parts in tracked.items()
                            if parts}
@@ -475,14 +534,11 @@ class RateMonitor:
             hr_estimates, tracked = self.track_with_motion(blocks, self.motion_spectra)
             estimates.extend(hr_estimates)
             blocks.update(tracked)
-        else:
-            hr_blocks = [b for (q, _), b in blocks.items() if q == "hr"]
-            if ("hr", FUSED) in self.outputs:
-                blocks[("hr", FUSED)] = fuse_blocks(hr_blocks)
+        elif ("hr", FUSED) in self.outputs:
+            blocks[("hr", FUSED)] = fuse_blocks([b for (q, _), b in blocks.items() if q == "hr"])
         self.last_blocks = blocks
-        for key, out in self.outputs.items():
-            if not (self.motion and key[0] == "hr"):
-                estimates.extend(out.update(blocks[key]))
+        estimates.extend(self._update_outputs(
+            [key for key in self.outputs if not (self.motion and key[0] == "hr")], blocks))
         for name, breathing in self.pulse_breathing.items():
             estimates.extend(breathing.update(samples[:, self._index[name]], timestamps))
         estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
@@ -516,6 +572,7 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
     elif ("hr", FUSED) in monitor.outputs:
         blocks[("hr", FUSED)] = fuse_blocks([b for (q, _), b in blocks.items() if q == "hr"])
     estimates = []
+    channel_rates = []
     for key, out in monitor.outputs.items():
         block = blocks[key]
         if len(block) == 0:
@@ -532,8 +589,13 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
         # Rate at the spectral peak near the Viterbi ridge (as live reads it near the mode).
         readout = block.spectra if block.magnitude is None else block.magnitude
         rate = tracker_mod.refine_peak(readout, path, params.halfwidth_bins, out.rates)
-        estimates.extend(estimates_from_track(key[0], key[1], block, rate, conf, out.rates,
-                                              out.settings, np.full(len(block), end)))
+        new = estimates_from_track(key[0], key[1], block, rate, conf, out.rates, out.settings,
+                                   np.full(len(block), end),
+                                   channel_rates=_stacked(channel_rates)
+                                   if key[1] == FUSED else None, calibrate=out.calibrate)
+        if key[0] == "hr" and key[1] != FUSED:
+            channel_rates.append([e.rate_per_min for e in new])
+        estimates.extend(new)
     for name, breathing in monitor.pulse_breathing.items():
         estimates.extend(breathing.offline(samples[:, monitor._index[name]], timestamps))
     estimates.sort(key=lambda e: (e.time_s, e.quantity, e.source))

@@ -40,6 +40,7 @@ import numpy as np
 import pyqtgraph as pg
 from pyqtgraph.Qt import QtCore, QtGui, QtWidgets
 
+from estimators.display_rule import GREY, SHOW, WITHHOLD
 from streamer.display.buffers import (DisplayBuffers, DisplayLayout, FramePacer, UpdateFeed,
                                       confidence_band, rate_axis_range)
 from streamer.display.state import (QUALITY_WORDS, format_rate, quality_word, quantity_name,
@@ -197,16 +198,18 @@ class ReadoutCard(QtWidgets.QFrame):
         self._dim = None
 
     def show_estimate(self, est, ever_rated: bool, stream_lost: bool = False) -> None:
-        """Show ``est`` (None before the first): a dash when there is no rate, the
-        last value greyed while the stream is lost."""
-        has_rate = est is not None and est.has_rate
+        """Show ``est`` (None before the first) as the display rule decides
+        (:mod:`estimators.display_rule`): the digits when shown, greyed digits when
+        greyed, a dash when withheld or without a rate; the last value greyed while the
+        stream is lost."""
+        decision = WITHHOLD if est is None else est.display
         key = (None if est is None else (est.rate_per_min, est.confidence, est.quality,
                                           est.delay_s), ever_rated, stream_lost)
         if key == self._shown:
             return
         self._shown = key
-        self.value.setText(format_rate(est.rate_per_min if est is not None else math.nan))
-        dim = not has_rate or stream_lost
+        self.value.setText(format_rate(est.rate_per_min if decision != WITHHOLD else math.nan))
+        dim = decision != SHOW or stream_lost
         if dim != self._dim:
             # Style sheets are costly to apply: only when the look changes.
             self._dim = dim
@@ -224,10 +227,14 @@ class ReadoutCard(QtWidgets.QFrame):
         delay = f"delay {est.delay_s:.1f} s"
         if stream_lost:
             first = "stream lost: last value shown"
-        elif has_rate:
+        elif decision != WITHHOLD:
             first = f"confidence {100 * est.confidence:.0f} %"
+            if decision == GREY:
+                first += ": uncertain"
             if self.compact:
                 first += f", {delay}"
+        elif est.has_rate:
+            first = f"not shown: confidence {100 * est.confidence:.0f} %"
         elif ever_rated:
             first = "no estimate: signal not usable"
         else:

@@ -9,8 +9,12 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
-QUALITY_WORDS = ((0.6, "good"), (0.3, "weak"), (0.0, "unusable"))
-"""Thresholds of the quality index and the plain word shown with it (our own wording)."""
+from estimators.display_rule import UNUSABLE_QUALITY
+
+QUALITY_WORDS = ((0.6, "good"), (UNUSABLE_QUALITY, "weak"), (0.0, "unusable"))
+"""Thresholds of the quality index and the plain word shown with it (our own wording).
+The ``unusable`` boundary is the display rule's: a rate beside that word is greyed at
+best (:mod:`estimators.display_rule`)."""
 
 UNITS = {"hr": "bpm", "rr": "breaths/min"}
 """Unit shown after a rate, per quantity."""

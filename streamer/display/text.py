@@ -13,27 +13,41 @@ import queue
 import sys
 import time
 
+from estimators.display_rule import GREY, WITHHOLD
 from streamer.display.state import DisplayState, quality_word, unit_of
 
 CAUTION = "research tool, not a medical device"
 
 
+GREY_NOTE = "  (uncertain)"
+"""Said after a greyed estimate (:mod:`estimators.display_rule`): a terminal has no
+grey that survives a log file."""
+WITHHELD_NOTE = "  (not shown: likely outside tolerance)"
+"""Said when the display rule withholds a rate the engine did find."""
+
+
 def format_line(key, est) -> str:
-    """One line for the newest estimate ``est`` of ``key = (quantity, source)``.
+    """One line for the newest estimate ``est`` of ``key = (quantity, source)``, as the
+    display rule decides (:mod:`estimators.display_rule`): the rate when shown, the rate
+    and :data:`GREY_NOTE` when greyed, a dash when withheld.
 
     Examples
     --------
     >>> from estimators.estimate import Estimate
     >>> print(format_line(("hr", "PPG"), Estimate("hr", "PPG", 10.0, 14.0, 71.96, 0.9, 0.8)))
     heart rate PPG         72.0 bpm          confidence 0.90  quality 0.80 (good)  delay  4.0 s
+    >>> print(format_line(("hr", "PPG"), Estimate("hr", "PPG", 10.0, 14.0, 71.96, 0.6, 0.8)))
+    heart rate PPG         72.0 bpm          confidence 0.60  quality 0.80 (good)  delay  4.0 s  (uncertain)
     """
     quantity, source = key
     unit = unit_of(quantity)
     label = "heart rate" if quantity == "hr" else "breathing"
-    rate = "   --" if math.isnan(est.rate_per_min) else f"{est.rate_per_min:5.1f}"
+    decision = est.display
+    rate = "   --" if decision == WITHHOLD else f"{est.rate_per_min:5.1f}"
+    note = {GREY: GREY_NOTE, WITHHOLD: WITHHELD_NOTE if est.has_rate else ""}.get(decision, "")
     return (f"{label:<10} {source:<10} {rate} {unit:<11}  confidence {est.confidence:4.2f}  "
             f"quality {est.quality:4.2f} ({quality_word(est.quality)})  "
-            f"delay {est.delay_s:4.1f} s")
+            f"delay {est.delay_s:4.1f} s{note}")
 
 
 class TextDisplay:

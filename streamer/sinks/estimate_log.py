@@ -17,7 +17,10 @@ Format
    log is a valid prefix of the full one.
 
 Times are seconds on the source's stream clock. ``rate_per_min`` is empty when there is
-no estimate.
+no estimate; it keeps the engine's rate even when the displays withhold it. ``display``
+(the last column) is what the displays did with the estimate: ``show``, ``grey`` or
+``withhold`` (:mod:`estimators.display_rule`). Logs written before that column existed
+are still read (:data:`COLUMNS_BEFORE_DISPLAY`); their ``display`` cells read as empty.
 """
 
 from __future__ import annotations
@@ -46,7 +49,11 @@ COLUMNS = (
     "quality",
     "delay_s",
     "compute_ms",
+    "display",
 )
+COLUMNS_BEFORE_DISPLAY = COLUMNS[:-1]
+"""The header row of logs written before the ``display`` column (still read)."""
+TEXT_COLUMNS = ("quantity", "source", "display")
 
 
 def _fmt(value: float, digits: int) -> str:
@@ -68,6 +75,7 @@ def format_row(estimate: Estimate, compute_ms: float) -> str:
             _fmt(estimate.quality, 4),
             _fmt(estimate.delay_s, 4),
             _fmt(compute_ms, 4),
+            estimate.display,
         )
     ) + "\n"
 
@@ -217,7 +225,8 @@ def read_log(path) -> LogTable:
                     pass
             header[key.strip()] = value
         i += 1
-    if i >= len(lines) or tuple(lines[i].split(",")) != COLUMNS:
+    names = tuple(lines[i].split(",")) if i < len(lines) else ()
+    if names not in (COLUMNS, COLUMNS_BEFORE_DISPLAY):
         raise InputError(
             f"{path} is not a ridgewatch estimate log (expected the header row "
             f"'{','.join(COLUMNS)}' after the '#' lines)"
@@ -226,13 +235,13 @@ def read_log(path) -> LogTable:
     numbered = [(k + 1, line.split(",")) for k, line in enumerate(lines) if k > i
                 and line.strip() and not line.startswith("#")]
     for line_no, r in numbered:
-        if len(r) != len(COLUMNS):
+        if len(r) != len(names):
             raise InputError(f"{path}, line {line_no}: {len(r)} cells instead of "
-                             f"{len(COLUMNS)}; not a row of a ridgewatch estimate log")
+                             f"{len(names)}; not a row of a ridgewatch estimate log")
     rows = [r for _, r in numbered]
     cols: dict = {}
-    for j, name in enumerate(COLUMNS):
-        if name in ("quantity", "source"):
+    for j, name in enumerate(names):
+        if name in TEXT_COLUMNS:
             cols[name] = np.array([r[j] for r in rows], dtype=str)
             continue
         try:
@@ -243,6 +252,8 @@ def read_log(path) -> LogTable:
             raise InputError(
                 f"{path}, line {line_no}: column '{name}' is not a number: {r[j]!r}"
             ) from None
+    if names == COLUMNS_BEFORE_DISPLAY:
+        cols["display"] = np.array([""] * len(rows), dtype=str)
     return LogTable(header, cols)
 
 

@@ -10,7 +10,10 @@ one group per (quantity, source) pair, in the order given::
     rr.fused.rate_per_min   ...
 
 A pair with no estimate in a hop sends NaN in all four channels; an estimate without a
-rate sends NaN as rate and delay (confidence and quality still say why there is none).
+rate, or one the display rule withholds (:mod:`estimators.display_rule`: a heart rate
+more likely outside the tolerance than inside), sends NaN as rate and delay (confidence
+and quality still say why there is none). A greyed estimate is sent as it is: its
+confidence tells the receiver how far to trust it.
 Values are double64: a few samples per second cost nothing, and rates and stream times
 keep full precision.
 
@@ -32,6 +35,7 @@ from typing import Iterable, Sequence
 import numpy as np
 import pylsl
 
+from estimators.display_rule import WITHHOLD
 from estimators.errors import ParameterError
 from estimators.estimate import QUANTITIES, Estimate
 from streamer.sources.lsl_publish import derived_source_id
@@ -133,9 +137,9 @@ class EstimateOutlet:
                     f"estimate for {pair} is not among the outlet's pairs {self.pairs}"
                 )
             c = self._column[pair]
-            has_rate = estimate.has_rate
+            has_rate = estimate.display != WITHHOLD
             samples[row_of[estimate.emitted_s], c : c + len(FIELDS)] = (
-                estimate.rate_per_min,
+                estimate.rate_per_min if has_rate else np.nan,
                 estimate.confidence,
                 estimate.quality,
                 estimate.delay_s if has_rate else np.nan,

@@ -38,9 +38,10 @@ def hmm_inputs(rng, n_hops=40):
 TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "squeeze_column",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
                   "rhythm_scores", "hop_rhythm", "predict", "cancel_columns",
-                  "normalise_or_prior"}
+                  "normalise_or_prior", "spectral_margins"}
 """Kernels with a test here (``cancel_columns`` in test_motion.py,
-``harmonic_score`` in test_quality.py, ``track_block`` also
+``harmonic_score`` in test_quality.py, ``spectral_margins`` in test_calibration.py,
+``track_block`` also
 through ``RidgeTracker.track`` in test_tracker.py)."""
 
 

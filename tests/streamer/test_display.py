@@ -174,6 +174,19 @@ def test_text_line_shows_a_dash_without_rate():
     assert "delay 16.0 s" in line
 
 
+@pytest.mark.parametrize("rate, confidence, quality, shown, note", [
+    (72.0, 0.93, 0.85, " 72.0 bpm", ""),
+    (72.0, 0.65, 0.85, " 72.0 bpm", "  (uncertain)"),
+    (174.0, 0.9, 0.18, "174.0 bpm", "  (uncertain)"),
+    (174.0, 0.3, 0.7, "   -- bpm", "  (not shown: likely outside tolerance)"),
+    (math.nan, 0.9, 0.9, "   -- bpm", ""),
+])
+def test_text_line_follows_the_display_rule(rate, confidence, quality, shown, note):
+    line = format_line(("hr", "PPG"), Estimate("hr", "PPG", 1.0, 5.0, rate, confidence, quality))
+    assert f"PPG        {shown}" in line
+    assert line.endswith("delay  4.0 s" + note)
+
+
 def test_text_display_runs_until_done():
     display = TextDisplay(stream=io.StringIO(), refresh_s=0.0)
     updates = [Update([Estimate("hr", "PPG", 1.0, 5.0, 72.0, 0.9, 0.8)], None, {})]
@@ -416,8 +429,11 @@ def test_window_curves_hold_the_estimates_fed(qt, fed):
             band = window.band_items[key]
             np.testing.assert_array_equal(band.lower, lower)
             np.testing.assert_array_equal(band.upper, upper)
-            # The readout shows the newest estimate in whole units.
-            assert window.cards[key].value.text() == format_rate(rates[-1])
+            # The readout shows the newest estimate in whole units, or a dash when the
+            # display rule withholds it.
+            shown = est[-1].display != "withhold"
+            assert window.cards[key].value.text() == format_rate(rates[-1] if shown
+                                                                 else math.nan)
             if key not in window.image_items:
                 continue
             for line in window.ridge_curves[key]:  # the ridge is the same track
@@ -461,6 +477,28 @@ def test_window_shows_a_dash_and_greys_without_a_rate(qt, fed):
         window.draw(force=True)
         assert "stream lost" in window.stream_label.text()
         assert "stream lost" in window.cards[("rr", "RESP")].detail.text()
+    finally:
+        window.close()
+
+
+@pytest.mark.gui
+@pytest.mark.parametrize("rate, confidence, quality, text, grey, detail", [
+    (72.0, 0.93, 0.85, "72", False, "confidence 93 %"),
+    (72.0, 0.65, 0.85, "72", True, "confidence 65 %: uncertain"),
+    # The case of issue 13: a confident rate beside quality 0.18 ('unusable') is greyed.
+    (174.0, 0.9, 0.18, "174", True, "confidence 90 %: uncertain"),
+    (174.0, 0.3, 0.7, "\u2014", True, "not shown: confidence 30 %"),
+])
+def test_window_card_follows_the_display_rule(qt, fed, rate, confidence, quality, text, grey,
+                                              detail):
+    monitor, updates, _, t = fed
+    newest = Estimate("hr", "PPG", t[-1] - 4, t[-1], rate, confidence, quality)
+    window = _window(qt, monitor, list(updates) + [Update([newest], None, {})])
+    try:
+        card = window.cards[("hr", "PPG")]
+        assert card.value.text() == text
+        assert ("color" in card.value.styleSheet()) == grey
+        assert detail in card.detail.text()
     finally:
         window.close()
 

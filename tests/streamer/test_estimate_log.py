@@ -188,3 +188,33 @@ def test_unwritable_path(tmp_path):
     (tmp_path / "file").write_text("x")
     with pytest.raises(InputError, match=r"cannot write the estimate log .*file/log\.csv"):
         EstimateLog(tmp_path / "file" / "log.csv", "live", "s", CHANNELS, CONFIG)
+
+
+def test_display_column_records_the_display_rule(tmp_path):
+    ests = [Estimate("hr", "PLETH", 0.0, 4.0, 72.0, 0.93, 0.8),
+            Estimate("hr", "PLETH", 0.25, 4.25, 72.5, 0.6, 0.8),
+            Estimate("hr", "PLETH", 0.5, 4.5, 140.0, 0.2, 0.8),
+            Estimate("hr", "PLETH", 0.75, 4.75, math.nan, 0.9, 0.1)]
+    write(tmp_path / "log.csv", ests)
+    assert COLUMNS[-1] == "display"
+    assert [row.split(",")[-1] for row in rows_text(tmp_path / "log.csv")] == [
+        "show", "grey", "withhold", "withhold"]
+    table = read_log(tmp_path / "log.csv")
+    assert list(table.columns["display"]) == ["show", "grey", "withhold", "withhold"]
+    # The withheld rate the engine found stays in the log: withholding is a display
+    # decision.
+    assert table.columns["rate_per_min"][2] == 140.0
+
+
+def test_a_log_written_before_the_display_column_is_still_read(tmp_path, rng):
+    ests = estimates(rng, n=8)
+    path = tmp_path / "old.csv"
+    write(path, ests)
+    # Rewrite it as the writer did before the display column existed.
+    lines = path.read_text().splitlines()
+    old = [ln if ln.startswith("#") else ln.rsplit(",", 1)[0] for ln in lines]
+    path.write_text("\n".join(old) + "\n")
+    assert "display" not in path.read_text()
+    table = read_log(path)
+    check_matches(table, ests)
+    assert list(table.columns["display"]) == [""] * len(ests)

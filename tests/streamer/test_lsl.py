@@ -454,6 +454,23 @@ def test_estimate_outlet_publishes_labelled_hops():
         EstimateOutlet(pairs, hop_s=0)
 
 
+@pytest.mark.lsl
+def test_estimate_outlet_sends_nan_for_a_withheld_rate_and_keeps_a_greyed_one():
+    name = unique("rw-rule")
+    outlet = EstimateOutlet([("hr", "PLETH")], hop_s=0.25, name=name, input_id=name)
+    try:
+        samples, _ = outlet.rows([
+            Estimate("hr", "PLETH", 0.0, 4.0, 150.0, 0.3, 0.9),    # withheld: P < 0.5
+            Estimate("hr", "PLETH", 0.25, 4.25, 151.0, 0.6, 0.9),  # greyed
+            Estimate("hr", "PLETH", 0.5, 4.5, 152.0, 0.9, 0.9),    # shown
+        ])
+    finally:
+        outlet.close()
+    np.testing.assert_array_equal(samples[:, 0], [np.nan, 151.0, 152.0])
+    np.testing.assert_array_equal(samples[:, 1], [0.3, 0.6, 0.9])  # confidence says why
+    np.testing.assert_array_equal(samples[:, 3], [np.nan, 4.0, 4.0])
+
+
 def test_stream_type_follows_channel_kinds():
     assert stream_type_for(make_info("x", CHANNELS[:1])) == "PPG"
     assert stream_type_for(make_info("x")) == "Physio"

@@ -199,9 +199,18 @@ class FamilyModel:
     beta: np.ndarray
     knots_score: np.ndarray
     knots_prob: np.ndarray
+    low: np.ndarray | None = None
+    high: np.ndarray | None = None
+    """Range of each design column in the training rows: a row outside it is clipped
+    to it, so the map never extrapolates the logistic stage beyond what it saw (a
+    synthetic pulse whose second harmonic outgrows anything in the real recordings
+    would otherwise be driven to a confidence near 0 or 1 by one measure)."""
 
     def score(self, measures: np.ndarray) -> np.ndarray:
-        x = (DESIGNS[self.design](measures) - self.centre) / self.scale
+        x = DESIGNS[self.design](measures)
+        if self.low is not None and self.high is not None:
+            x = np.clip(x, self.low, self.high)
+        x = (x - self.centre) / self.scale
         return self.beta[0] + x @ self.beta[1:]
 
     def __call__(self, measures: np.ndarray) -> np.ndarray:
@@ -211,10 +220,13 @@ class FamilyModel:
         return np.clip(prob, PROB_FLOOR, PROB_CEIL)
 
     def to_dict(self) -> dict:
-        return {"design": self.design, "centre": self.centre.tolist(),
-                "scale": self.scale.tolist(), "beta": self.beta.tolist(),
-                "knots_score": self.knots_score.tolist(),
-                "knots_prob": self.knots_prob.tolist()}
+        out = {"design": self.design, "centre": self.centre.tolist(),
+               "scale": self.scale.tolist(), "beta": self.beta.tolist(),
+               "knots_score": self.knots_score.tolist(),
+               "knots_prob": self.knots_prob.tolist()}
+        if self.low is not None and self.high is not None:
+            out.update(low=self.low.tolist(), high=self.high.tolist())
+        return out
 
     @classmethod
     def from_dict(cls, data: dict) -> "FamilyModel":
@@ -223,9 +235,13 @@ class FamilyModel:
                                  f"{', '.join(DESIGNS)}")
         arrays = {k: np.asarray(data[k], dtype=np.float64)
                   for k in ("centre", "scale", "beta", "knots_score", "knots_prob")}
+        for k in ("low", "high"):
+            arrays[k] = np.asarray(data[k], dtype=np.float64) if k in data else None
         width = DESIGNS[data["design"]](np.zeros((1, len(FEATURES)))).shape[1]
+        bounds = [b for b in (arrays["low"], arrays["high"]) if b is not None]
         if not (len(arrays["centre"]) == len(arrays["scale"]) == width
                 and len(arrays["beta"]) == width + 1
+                and all(len(b) == width for b in bounds)
                 and len(arrays["knots_score"]) == len(arrays["knots_prob"])):
             raise ParameterError("confidence map: array sizes do not match the design "
                                  "(refit with python -m bench.calibration --refit)")
@@ -277,11 +293,12 @@ def fit_family(measures: np.ndarray, within: np.ndarray, design: str,
     y = np.asarray(within, dtype=np.float64)
     beta = fit_logistic((x - centre) / scale, y, w, l2)
     empty = np.empty(0)
-    model = FamilyModel(design, centre, scale, beta, empty, empty)
+    low, high = x.min(axis=0), x.max(axis=0)
+    model = FamilyModel(design, centre, scale, beta, empty, empty, low, high)
     if not isotonic:
         return model
     knots_s, knots_p = fit_isotonic(model.score(measures), y, w)
-    return FamilyModel(design, centre, scale, beta, knots_s, knots_p)
+    return FamilyModel(design, centre, scale, beta, knots_s, knots_p, low, high)
 
 
 def fit_map(measures: np.ndarray, within: np.ndarray, weights: np.ndarray | None = None,
@@ -310,8 +327,18 @@ def load_map(path: Path = MAP_PATH) -> ConfidenceMap | None:
     return ConfidenceMap.from_dict(json.loads(text))
 
 
-MAP: ConfidenceMap | None = load_map()
-"""The shipped map (None: not installed; the raw confidence is used)."""
+def _load_shipped() -> tuple[ConfidenceMap | None, str]:
+    try:
+        return load_map(), ""
+    except (ParameterError, ValueError, KeyError) as error:
+        return None, str(error)
+
+
+MAP, MAP_PROBLEM = _load_shipped()
+"""The shipped map, and why it could not be used (empty when it loaded). Without a
+usable map the raw confidence is reported, so a stale map after a change of the
+evidence never stops the engine (or ``python -m bench.calibration --refit``, which
+replaces it); the test suite asserts that the shipped map loads."""
 
 
 def calibrated_confidence(measures: np.ndarray, raw_confidence: np.ndarray,

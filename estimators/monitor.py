@@ -225,8 +225,11 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     quality = quality_mod.quality_index(block.integrity, conc)
     evidence = [()] * len(quality)
     if quantity == "hr" and len(quality):
+        # Half and double rates are read on the tracked spectrum too: de-shape keeps
+        # the fundamental and drops its harmonics there, so a pulse with a strong second
+        # harmonic does not look like a lock on half the rate.
         rival, half, double = evidence_mod.spectral_margins(
-            block.spectra, readout, rate_bins, rates_grid[0] / step, halfwidth)
+            block.spectra, block.spectra, rate_bins, rates_grid[0] / step, halfwidth)
         jumps = evidence_mod.jumpiness(rate, settings.hop_s, state.setdefault("jumps", {}))
         measures = np.column_stack([
             posterior_mass, mark, quality, block.integrity, concentration, rival, half,

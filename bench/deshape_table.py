@@ -23,8 +23,9 @@ Rows
       cross-validation over the 27 records (lowest mean MAE on the other 26), separately
       with de-shape on and off, and the held-out record's figures are reported.
     * IEEE SPC 2015 training records 01-12 (Zhang, Pi & Liu, IEEE TBME 62(2):522-531,
-      2015), wrist PPG channel 1 heart rate with the default ``wrist`` profile (no motion
-      stage): the pulse's harmonics under running motion.
+      2015), 125 Hz, about 5 min each: wrist PPG channel 1 heart rate with the default
+      ``wrist`` profile (no motion stage: the pulse's harmonics under running motion);
+      the chest ECG's heart rate with ``chest-ecg`` (the envelope chain under motion).
     * The same records: the fundamental of the 3-axis wrist acceleration while running (the arm
       swing, one cycle per stride). Each axis goes through the engine's accelerometer
       path (the acc chain, STFT and band spectra of the ``exercise-wrist`` heart-rate
@@ -37,9 +38,9 @@ References
       reviewed beat annotations; for BIDMC, R-peaks found offline on lead II
       (``tests.estimators.test_real_records.detect_r_peaks``, checked there against the
       bedside monitor's heart rate). BIDMC records 03, 17, 24 and 26 have irregular
-      rhythms (R-R coefficient of variation 0.15-0.22); a rate from an 8 s spectrum and
-      the reference's mean R-R differ there whatever the spectrum, so they dominate the
-      worst-record figures of every heart-rate row.
+      rhythms (R-R coefficient of variation 0.15-0.23); a rate from an 8 s spectrum and
+      the reference's mean R-R differ there whatever the spectrum, so they set most of
+      the BIDMC worst-record figures.
     * SPC 2015 heart rate: ``BPM0`` with the data set's causal protocol (the last rate
       shown when each 8 s reference window ends, as ``bench/accuracy.py``).
     * Breathing rate: 60 / mean interval of annotator 1's breaths within the 32 s window
@@ -293,14 +294,14 @@ def load_spc(number: int, data: Path = SHARED_DATA):
     return sig, bpm0
 
 
-def spc_pulse(sig: np.ndarray, bpm0: np.ndarray, on: bool) -> dict:
-    """Wrist PPG channel 1 of one SPC 2015 record, profile ``wrist``, scored against
-    ``BPM0[k]`` with the last rate shown when window ``k`` ends (sample ``250 k + 999``)."""
+def spc_heart(x: np.ndarray, bpm0: np.ndarray, kind: str, profile: str, on: bool) -> dict:
+    """One SPC 2015 signal's heart rate scored against ``BPM0[k]`` with the last rate
+    shown when window ``k`` ends (sample ``250 k + 999``)."""
     from bench.accuracy import SPC_SHIFT, SPC_WINDOW, held_rate_at
 
-    t = np.arange(sig.shape[1]) / SPC_FS
-    run = track(sig[1], t, SPC_FS, "ppg", with_deshape("wrist", on))
-    n_windows = min(len(bpm0), (sig.shape[1] - SPC_WINDOW) // SPC_SHIFT + 1)
+    t = np.arange(len(x)) / SPC_FS
+    run = track(x, t, SPC_FS, kind, with_deshape(profile, on))
+    n_windows = min(len(bpm0), (len(x) - SPC_WINDOW) // SPC_SHIFT + 1)
     ends = (np.arange(n_windows) * SPC_SHIFT + SPC_WINDOW - 1) / SPC_FS
     shown = held_rate_at(run.emitted_s, run.rate, ends)
     reference = bpm0[:n_windows]
@@ -368,6 +369,7 @@ ROWS = {
     "pleth_fingertip": ("BIDMC PLETH heart rate, fingertip-rest", "bpm"),
     "ii_chest": ("BIDMC II (ECG) heart rate, chest-ecg (envelope)", "bpm"),
     "mitbih_chest": ("MIT-BIH 100 MLII heart rate, chest-ecg (envelope)", "bpm"),
+    "spc_ecg": ("SPC 2015 chest ECG heart rate while running, chest-ecg (envelope)", "bpm"),
     "raw_ecg": ("Raw ECG without the envelope (BIDMC II + MIT-BIH 100), chain by LORO-CV",
                 "bpm"),
     "resp": ("BIDMC RESP breathing rate, default breathing settings", "breaths/min"),
@@ -444,7 +446,10 @@ def run(data: Path = SHARED_DATA, bidmc_numbers=BIDMC_RECORDS,
         sig, bpm0 = load_spc(number, data)
         for on in (True, False):
             side = "on" if on else "off"
-            table["spc_ppg"][side][f"{number:02d}"] = spc_pulse(sig, bpm0, on)
+            table["spc_ppg"][side][f"{number:02d}"] = spc_heart(sig[1], bpm0, "ppg", "wrist",
+                                                                on)
+            table["spc_ecg"][side][f"{number:02d}"] = spc_heart(sig[0], bpm0, "ecg",
+                                                                "chest-ecg", on)
             table["arm_swing"][side][f"{number:02d}"] = arm_swing(sig[3:6], SPC_FS, on)
     table = {key: sides for key, sides in table.items() if sides["on"]}
     return {"table": table, "raw_ecg_chains": {"on" if on else "off": per_chain

@@ -18,16 +18,18 @@ Rows
       30 min, ``chest-ecg``.
     * Raw ECG without the envelope step: BIDMC ``II`` and MIT-BIH 100 through a plain
       band-pass chain (no squared difference), so that the ECG's own wave shape (P,
-      QRS, T) repeats once per beat. Three candidate chains, fixed beforehand
-      (:data:`RAW_ECG_CHAINS`); the chain is chosen by leave-one-record-out
-      cross-validation over the 27 records (lowest mean MAE on the other 26), separately
-      with de-shape on and off, and the held-out record's figures are reported.
+      QRS, T) repeats once per beat. Three candidate chains (:data:`RAW_ECG_CHAINS`);
+      the chain is chosen by leave-one-record-out cross-validation over the 27 records
+      (lowest mean MAE on the other 26), separately with de-shape on and off, and the
+      held-out record's figures are reported. The candidates were listed after a
+      throwaway exploration of nine chain variants on these same records, so the
+      de-shape figure is, if anything, optimistic for a raw chain.
     * IEEE SPC 2015 training records 01-12 (Zhang, Pi & Liu, IEEE TBME 62(2):522-531,
       2015), 125 Hz, about 5 min each: wrist PPG channel 1 heart rate with the default
       ``wrist`` profile (no motion stage: the pulse's harmonics under running motion);
       the chest ECG's heart rate with ``chest-ecg`` (the envelope chain under motion).
-    * The same records: the fundamental of the 3-axis wrist acceleration while running (the arm
-      swing, one cycle per stride). Each axis goes through the engine's accelerometer
+    * The same records: the fundamental of the 3-axis wrist acceleration while running
+      (the arm swing, one cycle per stride). Each axis goes through the engine's accelerometer
       path (the acc chain, STFT and band spectra of the ``exercise-wrist`` heart-rate
       settings, which the motion stage uses); the axes are fused as the engine fuses
       channels (:func:`estimators.monitor.fuse_blocks`) and each column's argmax is the
@@ -69,7 +71,7 @@ ratio). Summaries: mean and worst record.
 Out of sample: gamma (0.2) and every other setting are the profiles' a-priori values,
 so the on/off figures fit nothing to these records; the only choice made from data, the
 raw-ECG chain, is cross-validated as described. (Measured when this was written: gamma
-0.1-1.0 moves no row's mean MAE by more than 0.1, so nothing hangs on it.)
+0.1-1.0 moves no BIDMC row's mean MAE by more than 0.1, so nothing hangs on it.)
 """
 
 from __future__ import annotations
@@ -115,7 +117,7 @@ RAW_ECG_CHAINS = {
     "1-20 Hz at 50 Hz": (1.0, 20.0, 50.0, 2),   # the whole complex (P, QRS, T)
     "5-25 Hz at 62.5 Hz": (5.0, 25.0, 62.5, 2),  # chest-ecg's QRS band, no envelope
 }
-"""Candidate chains for an ECG without the envelope step, fixed before measuring."""
+"""Candidate chains for an ECG without the envelope step (see the module notes)."""
 
 
 # ------------------------------------------------------------------------- running

@@ -14,10 +14,11 @@ never replaces a full one. Exit status 1 when a part failed (raised), 0 otherwis
 a missed target is a finding, not a failure.
 
 The table modules of other parts (``bench/exercise_table.py``,
-``bench/breathing_table.py``, ``bench/display_fps.py``, ``bench/calibration.py``) are run
-with ``python -m`` when
-they exist and their JSON (``exercise.json``, ``breathing.json``, ``display.json``, ``calibration.json`` in
-``bench/results/``) is folded into the table; otherwise their section says "not
+``bench/breathing_table.py``, ``bench/deshape_table.py``, ``bench/calibration.py``,
+``bench/display_fps.py``) are run with ``python -m`` when they exist and their JSON
+(``exercise.json``, ``breathing.json``, ``deshape.json``, ``calibration.json``,
+``display.json`` in ``bench/results/``) is folded into the table; otherwise their
+section says "not
 available". ``--quick`` does not run them (they write to ``bench/results/`` themselves).
 """
 
@@ -42,6 +43,7 @@ EXTERNAL_PARTS = {
     # name: (module, results file, section title)
     "exercise": ("bench.exercise_table", "exercise.json", "Exercise heart-rate table (SPC 2015)"),
     "breathing": ("bench.breathing_table", "breathing.json", "Breathing-rate table (BIDMC)"),
+    "deshape": ("bench.deshape_table", "deshape.json", "De-shape on vs off (real recordings)"),
     "display": ("bench.display_fps", "display.json", "Display frame rate"),
     "calibration": ("bench.calibration", "calibration.json",
                     "Calibrated heart-rate confidence (SPC 2015, BIDMC 01-26)"),

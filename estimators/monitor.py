@@ -273,18 +273,16 @@ class _Output:
         self._held = []
         self._smoothing = {}
 
-    def update(self, block: HopBlock, channel_rates: np.ndarray | None = None
-               ) -> list[Estimate]:
-        """Estimates of the hops in ``block``; ``channel_rates`` (C, P): for a fused
-        output, the channels' rates of the hops this call reports."""
+    def track(self, block: HopBlock) -> "Tracked":
+        """Advance the tracker over the hops of ``block``; the raw output for the hops
+        it refers to (with fixed-lag smoothing, ``lag_hops`` earlier)."""
         if len(block) == 0:
-            return []
+            empty = np.empty(0)
+            return Tracked(block, empty, empty, empty, empty)
         lag = self.settings.lag_hops
         if lag == 0:
             rate, conf, frac = self.tracker.track(block.spectra, block.integrity, block.magnitude)
-            return estimates_from_track(self.quantity, self.source, block, rate, conf,
-                                        self.rates, self.settings, block.emitted_s, frac,
-                                        self._smoothing, channel_rates, self.calibrate)
+            return Tracked(block, rate, conf, frac, block.emitted_s)
         rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
         self._held.append(block)
@@ -294,9 +292,46 @@ class _Output:
         referred = take_hops(held, pos)
         newest = held.emitted_s[pos + lag]
         self._held = [take_hops(held, np.arange(max(0, len(held) - lag - 1), len(held)))]
-        return estimates_from_track(self.quantity, self.source, referred, rate, conf,
-                                    self.rates, self.settings, newest, None, self._smoothing,
-                                    channel_rates, self.calibrate)
+        return Tracked(referred, rate, conf, None, newest)
+
+    def estimates(self, tracked: "Tracked", channel_rates: np.ndarray | None = None
+                  ) -> list[Estimate]:
+        """Estimate records of tracker output; ``channel_rates`` (C, P): for a fused
+        output, the channels' rates of the same hops."""
+        if len(tracked.rate) == 0:
+            return []
+        return estimates_from_track(self.quantity, self.source, tracked.block, tracked.rate,
+                                    tracked.confidence, self.rates, self.settings,
+                                    tracked.emitted_s, tracked.concentration,
+                                    self._smoothing, channel_rates, self.calibrate)
+
+    def update(self, block: HopBlock, channel_rates: np.ndarray | None = None
+               ) -> list[Estimate]:
+        """Estimates of the hops in ``block`` (see :meth:`track`, :meth:`estimates`)."""
+        return self.estimates(self.track(block), channel_rates)
+
+
+@dataclass(frozen=True)
+class Tracked:
+    """Raw tracker output: the hops it refers to, their rate, confidence, harmonic
+    concentration (None: computed from the block when the estimates are made) and the
+    newest sample time each used."""
+
+    block: HopBlock
+    rate: np.ndarray
+    confidence: np.ndarray
+    concentration: np.ndarray | None
+    emitted_s: np.ndarray
+
+    @staticmethod
+    def concat(parts: Sequence["Tracked"]) -> "Tracked":
+        concentration = [p.concentration for p in parts]
+        return Tracked(concat_blocks([p.block for p in parts]),
+                       np.concatenate([p.rate for p in parts]),
+                       np.concatenate([p.confidence for p in parts]),
+                       None if any(c is None for c in concentration)
+                       else np.concatenate(concentration),
+                       np.concatenate([p.emitted_s for p in parts]))
 
 
 def _stacked(rates: list) -> np.ndarray | None:
@@ -473,17 +508,21 @@ class RateMonitor:
             return None
         return motion_mod.expected_pulse(tracker.posterior, tracker.params.halfwidth_bins)
 
-    def _update_outputs(self, keys: list, blocks: dict) -> list[Estimate]:
-        """The outputs ``keys`` (in the monitor's order: the fused output comes after
-        the channels it reads) advanced over their blocks."""
+    def _report(self, keys: list, tracked: dict) -> list[Estimate]:
+        """Estimates of the outputs ``keys`` from their tracker output (in the monitor's
+        order: the fused output comes after the channels whose rates it reads)."""
         estimates, channel_rates = [], []
         for key in keys:
-            new = self.outputs[key].update(
-                blocks[key], _stacked(channel_rates) if key[1] == FUSED else None)
+            new = self.outputs[key].estimates(
+                tracked[key], _stacked(channel_rates) if key[1] == FUSED else None)
             if key[0] == "hr" and key[1] != FUSED:
                 channel_rates.append([e.rate_per_min for e in new])
             estimates.extend(new)
         return estimates
+
+    def _update_outputs(self, keys: list, blocks: dict) -> list[Estimate]:
+        """The outputs ``keys`` advanced over their blocks."""
+        return self._report(keys, {key: self.outputs[key].track(blocks[key]) for key in keys})
 
     def track_with_motion(self, blocks: dict, motion_blocks: dict) -> tuple[list, dict]:
         """The motion stage and the heart-rate trackers, hop by hop: the motion stage of
@@ -495,7 +534,7 @@ class RateMonitor:
         acc = np.stack(refs, axis=-1) if refs else None
         hr_keys = [key for key in self.outputs if key[0] == "hr"]
         n_hops = len(blocks[next(iter(self.motion))])
-        estimates, tracked = [], {key: [] for key in hr_keys}
+        tracked, hops = {key: [] for key in hr_keys}, {key: [] for key in hr_keys}
         for p in range(n_hops):
             hop = {key: take_hops(blocks[key], slice(p, p + 1)) for key in hr_keys
                    if key in blocks}
@@ -508,11 +547,14 @@ class RateMonitor:
             if ("hr", FUSED) in self.outputs:
                 hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in hr_keys
                                                   if key[1] != FUSED])
-            estimates.extend(self._update_outputs(hr_keys, hop))
             for key in hr_keys:
-                tracked[key].append(hop[key])
-        return estimates, {key: concat_blocks(parts) for key, parts in tracked.items()
-                           if parts}
+                tracked[key].append(self.outputs[key].track(hop[key]))
+                hops[key].append(hop[key])
+        if n_hops == 0:
+            return [], {}
+        estimates = self._report(hr_keys, {key: Tracked.concat(parts)
+                                           for key, parts in tracked.items()})
+        return estimates, {key: concat_blocks(parts) for key, parts in hops.items()}
 
     def update(self, samples, timestamps) -> list[Estimate]:
         """Feed a chunk ``(n, channels)`` with timestamps ``(n,)``; return the estimates

@@ -103,7 +103,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage, signal
+from scipy import ndimage
 
 from estimators._kernels import TINY, cancel_columns
 from estimators.errors import ParameterError
@@ -228,10 +228,11 @@ def cancel_step(state: MotionState, ppg_columns: np.ndarray, acc_columns: np.nda
 def _running_mean(values: np.ndarray, last: np.ndarray, weight: float) -> np.ndarray:
     """Causal exponential average over hops ``m_p = (1 - a) m_{p-1} + a v_p`` from
     ``last``; returns all hops' means (P, F)."""
-    if len(values) == 0:
-        return values
-    zi = ((1.0 - weight) * last)[None, :]
-    out, _ = signal.lfilter([weight], [1.0, -(1.0 - weight)], values, axis=0, zi=zi)
+    out = np.empty_like(values)
+    mean = last
+    for p in range(len(values)):  # a few hops per call: a loop beats lfilter's set-up
+        mean = (1.0 - weight) * mean + weight * values[p]
+        out[p] = mean
     return out
 
 

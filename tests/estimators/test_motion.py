@@ -13,6 +13,7 @@ import pytest
 from estimators import motion
 from estimators.config import PROFILES, RateSettings, get_profile
 from estimators.errors import ParameterError
+from estimators.evidence import FEATURES
 from estimators.monitor import FUSED, RateMonitor, offline_estimates
 
 FS = 125.0
@@ -386,16 +387,29 @@ def test_a_wrong_lock_on_the_cadence_is_left(rng):
     assert within[time_s > WARM_UP_S].all()  # and recovered for good
 
 
-def test_confidence_drops_where_pulse_and_cadence_overlap(rng):
+def test_the_evidence_marks_where_pulse_and_cadence_overlap(rng):
+    """Where the pulse sits on the cadence the evidence carries the motion-line mark
+    (a measure the calibrated confidence weighs, estimators.evidence). The confidence
+    itself is the calibrated probability of being within tolerance: on this crossing
+    the rate stays right (see the crossing tests), so it must stay high there too
+    rather than fall for the overlap alone."""
     rate_fn, cadence_fn = CROSSINGS["steady heart rate"]
     t, x = running_wrist(rng, rate_fn, cadence_fn)
-    time_s, rate, confidence = heart(RateMonitor(ALL, FS, EXERCISE).update(x, t), FUSED)
+    estimates = [e for e in RateMonitor(ALL, FS, EXERCISE).update(x, t)
+                 if e.quantity == "hr" and e.source == FUSED]
+    time_s = np.array([e.time_s for e in estimates])
+    rate = np.array([e.rate_per_min for e in estimates])
+    confidence = np.array([e.confidence for e in estimates])
+    mark = np.array([e.evidence[FEATURES.index("motion_mark")] for e in estimates])
     gap = np.abs(rate_fn(time_s) - cadence_fn(time_s))
     counted = time_s > WARM_UP_S
     on_line = counted & (gap < 3.0)
     apart = counted & (gap > 15.0)
     assert on_line.sum() > 10 and apart.sum() > 100
-    assert confidence[on_line].mean() < 0.75 * confidence[apart].mean()
+    assert mark[on_line].mean() > 0.5 and mark[apart].mean() < 0.1
+    right = np.abs(rate - rate_fn(time_s)) < 5.0
+    assert right[on_line].all()
+    assert np.mean(confidence[on_line] >= 0.8) >= 0.9
 
 
 def test_monitor_with_motion_is_chunk_invariant(rng):

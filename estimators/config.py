@@ -15,6 +15,10 @@ from estimators.errors import ParameterError
 SIGNAL_KINDS = ("ppg", "ecg", "resp", "acc")
 
 
+MOTION_TRUST = ("track", "everywhere", "nowhere")
+"""Values of :attr:`RateSettings.motion_trust`."""
+
+
 def _check(condition: bool, message: str) -> None:
     if not condition:
         raise ParameterError(message)
@@ -75,6 +79,9 @@ class RateSettings:
         starts to count as a motion line and counts fully.
     motion_confidence_penalty : confidence is multiplied by ``1 - penalty * mark`` where
         the rate sits on a motion line of mark in [0, 1].
+    motion_trust : where the motion gain trusts the coherent canceller (leaves alone what
+        it removed): ``track`` near the pulse the tracker expects (the default, see
+        :mod:`estimators.motion`), ``everywhere`` or ``nowhere`` (for comparisons).
     """
 
     quantity: str = "hr"
@@ -106,6 +113,7 @@ class RateSettings:
     harmonic_weight: float = 0.75
     motion_line_ratio: tuple = (10.0, 40.0)
     motion_confidence_penalty: float = 0.5
+    motion_trust: str = "track"
 
     def __post_init__(self):
         _check(self.quantity in ("hr", "rr"), f"quantity={self.quantity!r} must be 'hr' or 'rr'")
@@ -158,6 +166,8 @@ class RateSettings:
                f"0 < start < full")
         _check(0 <= self.motion_confidence_penalty <= 1,
                f"motion_confidence_penalty={self.motion_confidence_penalty} must be in [0, 1]")
+        _check(self.motion_trust in MOTION_TRUST,
+               f"motion_trust={self.motion_trust!r} must be one of {', '.join(MOTION_TRUST)}")
 
     @property
     def band_hz(self) -> tuple:

@@ -504,7 +504,10 @@ class RateMonitor:
         """Where the guiding tracker expects the pulse before its next hop; None before
         it has seen a hop."""
         tracker = self._consumer(key).tracker
-        if tracker.hops_seen == 0:
+        trust = self.profile.hr.motion_trust
+        if trust == "everywhere":
+            return np.ones((1, len(tracker.posterior)))
+        if trust == "nowhere" or tracker.hops_seen == 0:
             return None
         return motion_mod.expected_pulse(tracker.posterior, tracker.params.halfwidth_bins)
 

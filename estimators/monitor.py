@@ -36,7 +36,7 @@ from estimators import tracker as tracker_mod
 from estimators.config import PROFILES, SIGNAL_KINDS, Profile, RateSettings, get_profile
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
-from estimators.preprocess import Analysis, Preprocessor, STUCK_RUN_S, preprocess_batch
+from estimators.preprocess import Analysis, Limiter, Preprocessor, STUCK_RUN_S
 from estimators.respiration import MIN_FS_HZ, PulseBreathing
 from estimators.stft import Columns, SlidingSTFT, stft_batch
 
@@ -104,8 +104,8 @@ def column_spectra(columns: Columns, grid: deshape_mod.DeshapeGrid,
 
 
 def window_integrity(columns: Columns, decimation: int) -> np.ndarray:
-    """Integrity per column from the running counts of non-finite and stuck raw samples
-    carried beside the frames (``aux`` rows 0 and 1)."""
+    """Integrity per column from the running counts of rejected (non-finite or out of
+    range) and stuck raw samples carried beside the frames (``aux`` rows 0 and 1)."""
     if len(columns) == 0:
         return np.empty(0)
     raw = (columns.last_count - columns.first_count) * decimation
@@ -120,7 +120,8 @@ class ChannelPath:
                  chain_kind: str | None = None):
         self.name, self.kind, self.settings = name, kind, settings
         self.geometry = g = PathGeometry.of(settings, fs)
-        self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation)
+        self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation,
+                                Limiter.for_window(settings.window_s, fs))
         self.pre.min_run = max(3, int(round(settings.stuck_run_s * fs)))
         self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen)
         self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.analysis_band_hz)
@@ -133,7 +134,7 @@ class ChannelPath:
     def update(self, x: np.ndarray, t: np.ndarray) -> HopBlock:
         analysis = self.pre.update(x, t)
         columns = self.stft.update(analysis.values, analysis.timestamps,
-                                   (analysis.cum_nonfinite, analysis.cum_stuck))
+                                   (analysis.cum_rejected, analysis.cum_stuck))
         integrity = window_integrity(columns, self.geometry.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
         return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
@@ -142,11 +143,10 @@ class ChannelPath:
     def batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> HopBlock:
         """The whole record in one call (causal twin, or zero-phase for offline)."""
         g = self.geometry
-        analysis: Analysis = preprocess_batch(x, t, self.pre.chain, g.decimation,
-                                              self.pre.min_run, zero_phase)
+        analysis: Analysis = self.pre.batch(x, t, zero_phase)
         columns = stft_batch(analysis.values, analysis.timestamps, g.window, g.min_window,
                              g.hop, g.n_fft, self.settings.sharpen,
-                             (analysis.cum_nonfinite, analysis.cum_stuck))
+                             (analysis.cum_rejected, analysis.cum_stuck))
         integrity = window_integrity(columns, g.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
         return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,

@@ -17,8 +17,14 @@ for a set of channels and a profile.
   heart-rate channel goes through the motion stage (:mod:`estimators.motion`) before
   tracking and fusion, and a rate on a motion line loses confidence.
 
+Gaps: a step between consecutive timestamps longer than :func:`gap_threshold_s` is a
+gap (:func:`find_gaps`). No window may span one: the monitor restarts every path after
+it, so the first estimates after a gap come from samples after it only, one start-up
+window later, and :attr:`RateMonitor.last_gaps` tells the caller where it restarted.
+
 The offline twin (:func:`offline_estimates`) runs the same chain over a whole record
-with zero-phase filters, forward-backward posteriors and a Viterbi ridge.
+(each stretch between gaps on its own) with zero-phase filters, forward-backward
+posteriors and a Viterbi ridge.
 """
 
 from __future__ import annotations
@@ -41,6 +47,50 @@ from estimators.respiration import MIN_FS_HZ, PulseBreathing
 from estimators.stft import Columns, SlidingSTFT, stft_batch
 
 FUSED = "fused"
+
+GAP_PERIODS = 3.0
+GAP_MIN_S = 0.25
+"""A step between consecutive timestamps longer than ``max(GAP_PERIODS / fs, GAP_MIN_S)``
+is a gap (:func:`gap_threshold_s`). Three periods: two or more samples missing, which
+neither a one-sample hiccup nor a time column written with few digits causes. A quarter
+of a second: well above the jitter of senders that stamp samples on arrival (tens of
+milliseconds), and a hole this short cannot hide a change of rate (at most 1 bpm at the
+fastest change the profiles follow, 3-8 bpm/s), costs at most one hop of samples and
+shifts a spliced 8 s window by 3 % of its length, whereas restarting costs a whole
+start-up window of estimates. Our own choice."""
+
+
+def gap_threshold_s(fs: float) -> float:
+    """Longest step between consecutive timestamps that is not a gap (seconds)."""
+    return max(GAP_PERIODS / fs, GAP_MIN_S)
+
+
+@dataclass(frozen=True)
+class Gap:
+    """A hole in the time axis: ``before_s`` is the last timestamp before it,
+    ``after_s`` the first after it, ``missing_s = after_s - before_s - 1 / fs`` the
+    time without samples."""
+
+    before_s: float
+    after_s: float
+    missing_s: float
+
+
+def find_gaps(timestamps: np.ndarray, fs: float, newest_s: float = np.nan) -> np.ndarray:
+    """Indices ``k`` of the samples that follow a gap: the step from the newest earlier
+    timestamp (``newest_s`` before the first sample; NaN: none) to ``timestamps[k]``
+    exceeds :func:`gap_threshold_s`. Timestamps that go backwards or repeat are never a
+    gap (they are labelled with the newest one seen, :func:`monotone_times`).
+
+    >>> find_gaps(np.array([0.0, 0.01, 0.02, 5.0, 5.01, 4.0, 5.02]), 100.0).tolist()
+    [3]
+    """
+    labels = monotone_times(np.asarray(timestamps, dtype=np.float64), newest_s)
+    if len(labels) == 0:
+        return np.empty(0, np.int64)
+    steps = np.diff(np.concatenate(([newest_s], labels)))
+    with np.errstate(invalid="ignore"):
+        return np.flatnonzero(steps > gap_threshold_s(fs))
 
 
 @dataclass(frozen=True)
@@ -365,6 +415,7 @@ class RateMonitor:
             for path in self.motion_paths.values():
                 path.keep_columns = bool(self.motion)
         self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
+        self.last_gaps: list[Gap] = []
         self.pulse_breathing: dict[str, PulseBreathing] = {
             name: PulseBreathing(name, kind, self.profile.rr_pulse, fs)
             for name, kind in self.channels
@@ -384,7 +435,9 @@ class RateMonitor:
                 return path.grid.rates_per_min
         return None
 
-    def reset(self) -> None:
+    def restart(self) -> None:
+        """Start every path afresh (filters, windows, trackers, motion stage, breathing
+        from pulse), keeping the newest timestamp seen so labels never go backwards."""
         for path in list(self.paths.values()) + list(self.motion_paths.values()):
             path.reset()
         for out in self.outputs.values():
@@ -393,7 +446,13 @@ class RateMonitor:
             suppressor.reset()
         for breathing in self.pulse_breathing.values():
             breathing.reset()
+
+    def reset(self) -> None:
+        """As after construction: :meth:`restart`, and no timestamp seen (for a stream
+        whose time axis may start over, e.g. a sender that came back)."""
+        self.restart()
         self._newest_s = np.nan
+        self.last_gaps = []
 
     def _check(self, samples, timestamps):
         samples = np.asarray(samples, dtype=np.float64)
@@ -426,20 +485,44 @@ class RateMonitor:
         """Feed a chunk ``(n, channels)`` with timestamps ``(n,)``; return the estimates
         of every hop it completes, ordered by hop, then by quantity and source.
 
-        Hops fall by sample count (see :mod:`estimators.stft`); timestamps only label
-        the estimates. A timestamp earlier than one already seen (duplicated or
-        out-of-order samples, a clock stepped back) is labelled with the newest one
+        Hops fall by sample count (see :mod:`estimators.stft`); timestamps label the
+        estimates and mark gaps. A timestamp earlier than one already seen (duplicated
+        or out-of-order samples, a clock stepped back) is labelled with the newest one
         seen (:func:`monotone_times`), so ``emitted_s`` never decreases and
-        ``time_s <= emitted_s`` whatever the source delivers."""
+        ``time_s <= emitted_s`` whatever the source delivers. At a gap
+        (:func:`find_gaps`, here or between this chunk and the last) the monitor
+        restarts (:meth:`restart`): no window spans the gap, and the first estimates
+        after it use samples after it only. :attr:`last_gaps` lists the gaps of this
+        chunk."""
         samples, timestamps = self._check(samples, timestamps)
-        timestamps = monotone_times(timestamps, self._newest_s)
-        if len(timestamps):
-            self._newest_s = float(timestamps[-1])
+        starts = find_gaps(timestamps, self.fs, self._newest_s)
+        labels = monotone_times(timestamps, self._newest_s)
+        self.last_gaps = []
+        bounds = sorted({0, *starts.tolist(), len(labels)})
+        estimates, pieces = [], []
+        for a, b in zip(bounds[:-1], bounds[1:]):
+            if a in starts:
+                before = self._newest_s if a == 0 else float(labels[a - 1])
+                after = float(labels[a])
+                self.last_gaps.append(Gap(before, after, after - before - 1.0 / self.fs))
+                self.restart()
+            estimates.extend(self._update_stretch(samples[a:b], labels[a:b]))
+            pieces.append(self.last_blocks)
+        if len(pieces) > 1:  # the blocks of the chunk, for a display drawing them
+            self.last_blocks = {key: concat_blocks([p[key] for p in pieces]) for key in
+                                pieces[-1]}
+        estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
+        return estimates
+
+    def _update_stretch(self, samples: np.ndarray, labels: np.ndarray) -> list[Estimate]:
+        """One stretch without a gap; ``labels`` never decrease."""
+        if len(labels):
+            self._newest_s = float(labels[-1])
         blocks = {}
         for key, path in self.paths.items():
-            blocks[key] = path.update(samples[:, self._index[key[1]]], timestamps)
+            blocks[key] = path.update(samples[:, self._index[key[1]]], labels)
         for name, path in self.motion_paths.items():
-            self.motion_spectra[name] = path.update(samples[:, self._index[name]], timestamps)
+            self.motion_spectra[name] = path.update(samples[:, self._index[name]], labels)
         if self.motion:
             blocks.update(self.suppress_motion(blocks, self.motion_spectra))
         hr_blocks = [b for (q, _), b in blocks.items() if q == "hr"]
@@ -450,8 +533,7 @@ class RateMonitor:
         for key, out in self.outputs.items():
             estimates.extend(out.update(blocks[key]))
         for name, breathing in self.pulse_breathing.items():
-            estimates.extend(breathing.update(samples[:, self._index[name]], timestamps))
-        estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
+            estimates.extend(breathing.update(samples[:, self._index[name]], labels))
         return estimates
 
 
@@ -460,18 +542,31 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
 
     Zero-phase filters, the same STFT columns (each describes the centre of its
     window), forward-backward posteriors for the confidence and a Viterbi ridge for the
-    rate. Every estimate used the whole record, so ``emitted_s`` is the time of the last
-    sample.
+    rate. The record is cut at its gaps (:func:`find_gaps`) and each stretch is
+    estimated on its own, as live restarts there; every estimate used its whole
+    stretch, so ``emitted_s`` is the time of the stretch's last sample.
     """
     monitor = RateMonitor(channels, fs, profile)
     samples, timestamps = monitor._check(samples, timestamps)
     timestamps = monotone_times(timestamps, np.nan)
-    if len(timestamps) == 0:
-        return []
+    bounds = [0, *find_gaps(timestamps, monitor.fs).tolist(), len(timestamps)]
+    estimates = []
+    for a, b in zip(bounds[:-1], bounds[1:]):
+        if b > a:
+            estimates.extend(_offline_stretch(monitor, samples[a:b], timestamps[a:b]))
+    estimates.sort(key=lambda e: (e.time_s, e.quantity, e.source))
+    return estimates
+
+
+def _offline_stretch(monitor: RateMonitor, samples: np.ndarray,
+                     timestamps: np.ndarray) -> list[Estimate]:
+    """:func:`offline_estimates` of one stretch without a gap."""
     end = float(timestamps[-1])
     blocks = {key: path.batch(samples[:, monitor._index[key[1]]], timestamps, True)
               for key, path in monitor.paths.items()}
     if monitor.motion:
+        for suppressor in monitor.motion.values():
+            suppressor.reset()
         blocks.update(monitor.suppress_motion(blocks, {
             name: path.batch(samples[:, monitor._index[name]], timestamps, True)
             for name, path in monitor.motion_paths.items()}))
@@ -499,8 +594,8 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
                                               out.settings, np.full(len(block), end)))
     for name, breathing in monitor.pulse_breathing.items():
         estimates.extend(breathing.offline(samples[:, monitor._index[name]], timestamps))
-    estimates.sort(key=lambda e: (e.time_s, e.quantity, e.source))
     return estimates
 
 
-__all__ = ["RateMonitor", "offline_estimates", "PROFILES", "FUSED", "STUCK_RUN_S"]
+__all__ = ["RateMonitor", "offline_estimates", "find_gaps", "gap_threshold_s", "Gap",
+           "PROFILES", "FUSED", "STUCK_RUN_S"]

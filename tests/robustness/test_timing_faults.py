@@ -453,3 +453,119 @@ def test_runner_stays_quiet_when_the_rate_is_within_tolerance(tmp_path):
     stats, _, text = run_to_log(tmp_path, x, t)
     assert not [e for e in stats.events if e.kind == "irregular"]
     assert "irregular" not in text
+
+
+def log_lines(text: str) -> list[str]:
+    """The body of a log: rows and event lines, in order."""
+    return [line for line in text.splitlines()[7:] if line]
+
+
+def test_file_replay_writes_a_gap_event_between_the_rows_around_the_hole(tmp_path,
+                                                                         hole_record):
+    """Replaying a file with a 10-minute hole: one ``gap`` event, after every row from
+    before the hole and before every row after it; no row is dated inside it, and the
+    heart rate after it is the new one from its first row on."""
+    x, t, k = hole_record
+    stats, table, text = run_to_log(tmp_path, x[:, 0], t)
+    gaps = [e for e in stats.events if e.kind == "gap"]
+    assert len(gaps) == 1 and gaps[0].detail["restart"]
+    message = (f"gap: stream 'sensor' skipped 600.000 s of samples (timestamps jump from "
+               f"{t[k - 1]:.3f} s to {t[k]:.3f} s); estimates restart from the samples after "
+               f"the gap")
+    lines = log_lines(text)
+    (at,) = [i for i, line in enumerate(lines) if line.startswith("# event") and " gap: " in line]
+    assert lines[at] == f"# event {t[k]:.4f} {message}"
+    rows_before = [line for line in lines[:at] if not line.startswith("#")]
+    rows_after = [line for line in lines[at + 1:] if not line.startswith("#")]
+    assert all(float(r.split(",")[0]) <= t[k - 1] for r in rows_before)
+    assert all(float(r.split(",")[0]) >= t[k] + HR.min_window_s - 1 / FS for r in rows_after)
+    for key in ("time_s", "emitted_s"):
+        assert not ((table.columns[key] > t[k - 1]) & (table.columns[key] < t[k])).any()
+    hr = table.select("hr").columns
+    after = hr["emitted_s"] > t[k]
+    assert after.sum() > 150 and np.all(np.abs(hr["rate_per_min"][after] - AFTER[0]) <= 5.0)
+
+
+class AnnouncingSource:
+    """A live-like source: its chunks go through the LSL source's timing check, which
+    announces the hole itself."""
+
+    def __init__(self, x, t):
+        self.info = SourceInfo("sensor", FS, (ChannelInfo("PPG", "ppg"),), "test:sensor")
+        self._x, self._t = x, t
+
+    def chunks(self):
+        check = TimingCheck(FS, stream="sensor")
+        for x, t in chunked(self._x, self._t, CHUNK):
+            yield from check.check(x, t)
+        yield SourceEvent("end", "end of sensor", float(self._t[-1]))
+
+    def close(self):
+        pass
+
+
+def test_a_hole_the_source_announced_is_logged_once_and_clears_the_display(tmp_path,
+                                                                            hole_record):
+    """The LSL source reports a hole itself: the log holds its one ``gap`` line, not a
+    second one from the engine's restart; the display still hears of the restart and
+    drops the values from before the hole (no stale rate on screen)."""
+    from streamer.display.state import DisplayState
+
+    x, t, k = hole_record
+    path = tmp_path / "log.csv"
+    log = EstimateLog(path, "live", "sensor", {"PPG": "ppg"}, {})
+    display = DisplayState()
+    seen = []
+
+    def listener(update):
+        display.apply(update)
+        if update.event is not None and update.event.kind == "gap":
+            seen.append((update.event.detail.get("restart", False), dict(display.latest)))
+
+    Runner(AnnouncingSource(x[:, 0], t), [Selected(0, "PPG", "ppg")], PROFILE, log=log,
+           listeners=[listener]).run()
+    text = path.read_text()
+    assert text.count(" gap: ") == 1
+    assert f"gap: stream 'sensor' skipped {HOLE_S:.3f} s of samples\n" in text
+    assert [restart for restart, _ in seen] == [False, True]
+    assert seen[0][1] and not seen[1][1]  # values shown before the restart, none after
+
+
+def test_command_line_replay_and_offline_of_a_file_with_a_hole(tmp_path, hole_record):
+    """``replay`` and ``offline`` of a CSV whose time column has a 10-minute hole: exit
+    code 0, the ``gap`` line in the replay log and on stderr, no row dated inside the
+    hole in either log, and after it only the new heart rate."""
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    x, t, k = hole_record
+    csv = tmp_path / "hole.csv"
+    np.savetxt(csv, np.column_stack([t, x[:, 0]]), delimiter=",", header="time,PPG",
+               comments="", fmt="%.6f")
+    root = Path(__file__).resolve().parents[2]
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(
+        filter(None, [str(root), os.environ.get("PYTHONPATH")])))
+    for command in ("replay", "offline"):
+        args = [sys.executable, "-m", "streamer.cli", command, str(csv), "--log",
+                f"{command}.csv"]
+        if command == "replay":
+            args += ["--speed", "max", "--display", "none"]
+        done = subprocess.run(args, cwd=tmp_path, env=env, capture_output=True, text=True,
+                              timeout=600)  # a guard against hangs only
+        assert done.returncode == 0, done.stderr
+        assert "Traceback" not in done.stderr
+        if command == "replay":
+            assert f"stream '{csv}' skipped 600.000 s of samples" in done.stderr
+        table = read_log(tmp_path / f"{command}.csv")
+        for key in ("time_s", "emitted_s"):
+            assert not ((table.columns[key] > t[k - 1]) & (table.columns[key] < t[k])).any()
+        hr = table.select("hr").columns
+        after = hr["time_s"] > t[k]
+        assert after.sum() > 150
+        assert np.all(np.abs(hr["rate_per_min"][after] - AFTER[0]) <= 5.0), command
+    gap = (f"gap: stream '{csv}' skipped 600.000 s of samples (timestamps jump from "
+           f"{t[k - 1]:.3f} s to {t[k]:.3f} s); estimates restart from the samples after the "
+           f"gap")
+    assert f"# event {t[k]:.4f} {gap}" in (tmp_path / "replay.csv").read_text()

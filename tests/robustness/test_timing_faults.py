@@ -36,8 +36,8 @@ from streamer.sources.base import ChannelInfo, Chunk, Recording, SourceEvent, So
 from streamer.sources.lsl_source import TimingCheck
 from streamer.sources.replay import RecordingSource
 from tests.robustness.faults import (Fault, actual_rate_stream, assert_log_invariants,
-                                     chunked, columns, feed, inject, pulse_signal, pulse_wave,
-                                     within_ec13)
+                                     breathing_pulse, chunked, columns, feed, inject,
+                                     pulse_signal, pulse_wave, within_ec13)
 
 FS = 125.0
 PROFILE = get_profile("wrist")
@@ -216,20 +216,13 @@ BEFORE, AFTER = (72.0, 12.0), (120.0, 24.0)
 HOLE_CHANNELS = (("green", "ppg"), ("red", "ppg"), ("belt", "resp"), ("wrist", "acc"))
 
 
-def breathing_pulse(t, heart_per_min, breaths_per_min, seed):
-    """A pulse wave whose amplitude and baseline follow breathing (so breathing shows in
-    its modulations), from time 0 of ``t``."""
-    breath = np.sin(2 * np.pi * breaths_per_min / 60.0 * (t - t[0]))
-    x, _ = pulse_wave(FS, np.full(len(t), heart_per_min), seed=seed)
-    return (1.0 + 0.2 * breath) * x + 0.1 * breath
-
-
 def stretch(start_s, heart_per_min, breaths_per_min, seed):
     t = start_s + np.arange(int(STRETCH_S * FS)) / FS
     breath = np.sin(2 * np.pi * breaths_per_min / 60.0 * (t - t[0]))
     cadence = np.sin(2 * np.pi * 2.6 * t)  # an arm swinging at 156 per minute
-    return np.column_stack([breathing_pulse(t, heart_per_min, breaths_per_min, seed),
-                            breathing_pulse(t, heart_per_min, breaths_per_min, seed + 1),
+    heart = np.full(len(t), heart_per_min)
+    return np.column_stack([breathing_pulse(FS, heart, breaths_per_min, seed),
+                            breathing_pulse(FS, heart, breaths_per_min, seed + 1),
                             breath, cadence]), t
 
 

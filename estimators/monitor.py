@@ -86,11 +86,18 @@ def find_gaps(timestamps: np.ndarray, fs: float, newest_s: float = np.nan) -> np
     [3]
     """
     labels = monotone_times(np.asarray(timestamps, dtype=np.float64), newest_s)
+    return _gap_starts(labels, newest_s, gap_threshold_s(fs))
+
+
+def _gap_starts(labels: np.ndarray, newest_s: float, threshold_s: float) -> np.ndarray:
+    """:func:`find_gaps` on labels from :func:`monotone_times` (never decreasing)."""
     if len(labels) == 0:
         return np.empty(0, np.int64)
-    steps = np.diff(np.concatenate(([newest_s], labels)))
-    with np.errstate(invalid="ignore"):
-        return np.flatnonzero(steps > gap_threshold_s(fs))
+    with np.errstate(invalid="ignore"):  # infinite timestamps: inf - inf
+        inner = np.flatnonzero(np.diff(labels) > threshold_s) + 1
+        if labels[0] - newest_s > threshold_s:  # NaN (nothing seen before) compares False
+            return np.concatenate(([0], inner))
+    return inner
 
 
 @dataclass(frozen=True)
@@ -415,6 +422,7 @@ class RateMonitor:
             for path in self.motion_paths.values():
                 path.keep_columns = bool(self.motion)
         self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
+        self._gap_s = gap_threshold_s(self.fs)
         self.last_gaps: list[Gap] = []
         self.pulse_breathing: dict[str, PulseBreathing] = {
             name: PulseBreathing(name, kind, self.profile.rr_pulse, fs)
@@ -495,9 +503,13 @@ class RateMonitor:
         after it use samples after it only. :attr:`last_gaps` lists the gaps of this
         chunk."""
         samples, timestamps = self._check(samples, timestamps)
-        starts = find_gaps(timestamps, self.fs, self._newest_s)
         labels = monotone_times(timestamps, self._newest_s)
+        starts = _gap_starts(labels, self._newest_s, self._gap_s)
         self.last_gaps = []
+        if len(starts) == 0:  # the usual case: one stretch
+            estimates = self._update_stretch(samples, labels)
+            estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
+            return estimates
         bounds = sorted({0, *starts.tolist(), len(labels)})
         estimates, pieces = [], []
         for a, b in zip(bounds[:-1], bounds[1:]):

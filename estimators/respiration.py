@@ -197,10 +197,10 @@ class BeatState:
     """Everything :func:`detect_step` carries between chunks.
 
     Filter states and the limiter's; the newest raw sample before the chunk
-    (``last_band``, for the slope) and the last accepted input; ``count`` raw samples seen; ``next_k`` the first candidate
-    not yet decided; the signal history (``detect[0]`` is raw sample ``count -
-    len(detect)``); recent beat heights and intervals; the last beat's detection index,
-    position and feature peak.
+    (``last_band``, for the slope) and the last accepted input; ``count`` raw samples
+    seen; ``next_k`` the first candidate not yet decided; the signal history
+    (``detect[0]`` is raw sample ``count - len(detect)``); recent beat heights and
+    intervals; the last beat's detection index, position and feature peak.
     """
 
     zi_detect: np.ndarray

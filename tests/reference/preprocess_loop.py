@@ -47,8 +47,8 @@ def accepted_flags(x: np.ndarray, block: int, blocks: int, rank: int, margin: fl
                 low = sorted(e[1] for e in known)[r - 1]
                 lo, hi = low - margin * (high - low), high + margin * (high - low)
             if (k + 1) % block == 0:  # the block is complete: its extremes count from now on
-                mine = [float(u) for u, ok in zip(x[k + 1 - block:k + 1], usable[k + 1 - block:k + 1])
-                        if ok]
+                span = range(k + 1 - block, k + 1)
+                mine = [float(x[i]) for i in span if usable[i]]
                 extremes.append((max(mine), min(mine)) if mine else None)
         flags[k] = 1.0 if usable[k] and lo <= v <= hi else 0.0
     return flags

@@ -70,7 +70,8 @@ class Fault:
 
     ``channel`` is the column it damages (None: every column; sample faults only).
     ``value`` is the DC step (``dc``), the spike height (``spike``), the clock step in
-    seconds (``clock_jump``) or the clock-speed factor (``rate``). ``low`` and ``high`` are the rails of ``clip``.
+    seconds (``clock_jump``) or the clock-speed factor (``rate``). ``low`` and ``high``
+    are the rails of ``clip``.
     """
 
     kind: str

@@ -234,11 +234,13 @@ def limit_sample(v, limiter, block, rank, margin, max_abs):
     known (``n <= B``), the envelope is the ``r``-th largest block maximum and the
     ``r``-th smallest block minimum, ``r = ceil(rank n / B)`` (the same upper quantile
     of the blocks however many are known), ``R`` its width, and the limits become
-    ``[low - margin R, high + margin R]``. With fewer than ``B / 4`` blocks (too short a
-    stretch to hold a slow beat or a breath) there are no limits, only ``max_abs``. A
-    burst is judged against the blocks before it, so it is rejected however many blocks
-    are known; bursts in fewer than ``rank`` blocks of a full ring never move the
-    envelope, while ``rank`` blocks of a new level or scale open it.
+    ``[low - m R, high + m R]`` with ``m = margin``; while fewer than ``B / 4`` blocks
+    are known (too short a stretch to be sure to hold a slow beat's peak or a breath),
+    ``m = margin B / (4 n)``, wider the less has been seen. Before the first block
+    completes there are no limits, only ``max_abs``. A burst is judged against the
+    blocks before it, so it is rejected however many blocks are known; bursts in fewer
+    than ``rank`` blocks of a full ring never move the envelope, while ``rank`` blocks
+    of a new level or scale open it.
 
     ``limiter`` holds ``[position in block, block max, block min, blocks pushed, lo,
     hi]`` followed by the ring of block maxima and the ring of block minima (negated),
@@ -260,19 +262,19 @@ def limit_sample(v, limiter, block, rank, margin, max_abs):
         limiter[LIMIT_HEADER + n_ring + slot] = np.nan if empty else -limiter[2]
         limiter[3] += 1.0
         n_known = min(int(limiter[3]), n_ring)
-        high = np.nan
-        low = np.nan
-        if 4 * n_known >= n_ring:
-            r = (rank * n_known + n_ring - 1) // n_ring
-            high = kth_largest(limiter[LIMIT_HEADER:LIMIT_HEADER + n_ring], n_known, r)
-            low = -kth_largest(limiter[LIMIT_HEADER + n_ring:], n_known, r)
+        r = (rank * n_known + n_ring - 1) // n_ring
+        high = kth_largest(limiter[LIMIT_HEADER:LIMIT_HEADER + n_ring], n_known, r)
+        low = -kth_largest(limiter[LIMIT_HEADER + n_ring:], n_known, r)
         if np.isnan(high) or np.isnan(low):
             limiter[4] = -np.inf
             limiter[5] = np.inf
         else:
+            m = margin
+            if 4 * n_known < n_ring:
+                m = margin * n_ring / (4.0 * n_known)
             width = high - low
-            limiter[4] = low - margin * width
-            limiter[5] = high + margin * width
+            limiter[4] = low - m * width
+            limiter[5] = high + m * width
         limiter[0] = 0.0
         limiter[1] = -np.inf
         limiter[2] = np.inf

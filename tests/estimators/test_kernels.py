@@ -209,24 +209,28 @@ def test_limit_chunk_equals_the_plain_loop(rng):
         np.testing.assert_array_equal(np.concatenate(outs), want, err_msg=label)
 
 
-def test_limit_sample_learns_a_quarter_of_its_memory_before_limiting():
-    """Until a quarter of the blocks are known only non-finite samples and those beyond
-    ``max_abs`` are rejected; then samples outside the range (an upper quantile of the
-    known blocks' extremes, widened by the margin) are."""
+def test_limit_sample_widens_its_margin_while_it_has_seen_little():
+    """Before the first block completes only non-finite samples and those beyond
+    ``max_abs`` are rejected; with ``n`` of ``B`` blocks known the range is widened by
+    ``margin * B / (4 n)`` envelope widths while ``n < B / 4``, by ``margin`` after."""
     for label, fn in both(_kernels.limit_sample):
-        state = Limiter(4, blocks=8, rank=3, margin=2.0).initial_state()
-        # Block 0: nothing known yet, so 1e50 passes (it is finite and below max_abs).
-        got = [fn(v, state, 4, 3, 2.0, 1e100) for v in [0.0, 1.0, 1e50, np.nan]]
-        assert got == [True, True, True, False], label
-        # Block 1: one block of 8 known, under a quarter: no limits.
-        assert [fn(v, state, 4, 3, 2.0, 1e100) for v in [2e100, 0.0, 1.0, 0.0]] == [
-            False, True, True, True], label
-        for v in [0.0, 1.0, 0.0, 1.0] * 2:  # blocks 2 and 3
-            fn(v, state, 4, 3, 2.0, 1e100)
-        # Four blocks known: r = ceil(3 * 4 / 8) = 2. Maxima 1e50, 1, 1, 1: the second
-        # largest is 1; minima all 0: the range is [0 - 2, 1 + 2].
-        assert [fn(v, state, 4, 3, 2.0, 1e100) for v in [3.0, -2.0, 3.5, -2.5]] == [
-            True, True, False, False], label
+        def probe(state, values):
+            # Whether each value would be accepted next (on a copy: the state stays).
+            return [fn(v, state.copy(), 4, 3, 2.0, 1e100) for v in values]
+
+        def block(state):
+            for v in (0.0, 1.0, 0.0, 1.0):  # envelope [0, 1], width 1
+                fn(v, state, 4, 3, 2.0, 1e100)
+
+        state = Limiter(4, blocks=16, rank=3, margin=2.0).initial_state()
+        assert probe(state, [1e50, -1e99, np.nan, 2e100]) == [True, True, False, False], label
+        block(state)  # 1 of 16 known: margin 2 * 16 / 4 = 8, range [-8, 9]
+        assert probe(state, [9.0, -8.0, 9.5, -8.5]) == [True, True, False, False], label
+        block(state)  # 2 known: margin 4, range [-4, 5]
+        assert probe(state, [5.0, -4.0, 5.5, -4.5]) == [True, True, False, False], label
+        block(state)
+        block(state)  # 4 known, a quarter: margin 2, range [-2, 3]
+        assert probe(state, [3.0, -2.0, 3.5, -2.5]) == [True, True, False, False], label
 
 
 def test_kth_largest_skips_nan_and_needs_rank_values():

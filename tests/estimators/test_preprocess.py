@@ -12,7 +12,7 @@ from scipy import signal
 
 from estimators.errors import ParameterError
 from estimators.preprocess import (
-    LIMIT_BLOCKS,
+    LIMIT_BLOCK_S,
     MAX_ABS,
     NO_LIMIT,
     STUCK_RUN_S,
@@ -288,9 +288,10 @@ def test_limit_step_equals_limit_batch_for_any_chunking(rng):
 
 
 def test_limiter_learns_over_one_window():
-    assert Limiter.for_window(8.0, 125.0).block == round(8.0 / LIMIT_BLOCKS * 125.0)
-    assert Limiter.for_window(32.0, 125.0).block == 125
-    assert Limiter.for_window(8.0, 2.0).block == 1  # never shorter than a sample
+    assert LIMIT_BLOCK_S == 0.25
+    assert Limiter.for_window(8.0, 125.0) == Limiter(31, 32)
+    assert Limiter.for_window(32.0, 125.0) == Limiter(31, 128)
+    assert Limiter.for_window(8.0, 2.0) == Limiter(1, 32)  # never shorter than a sample
     with pytest.raises(ParameterError, match=r"limiter Limiter\(block=4, blocks=2, rank=3, "
                                              r"margin=6.0\) must have block >= 0, blocks >= "
                                              r"rank >= 1 and margin >= 0"):

@@ -26,11 +26,12 @@ def accepted_flags(x: np.ndarray, block: int, blocks: int, rank: int, margin: fl
     Samples come in blocks of ``block`` (0: no blocks, only finiteness and ``max_abs``
     count). For each block, look at the up to ``blocks`` blocks before it (``n`` of
     them): each has the largest and the smallest of its samples that are finite and at
-    most ``max_abs`` in magnitude (none when it has no such sample). When ``n`` is at
-    least a quarter of ``blocks`` and at least ``r = ceil(rank n / blocks)`` blocks have
-    such samples, ``high`` is the ``r``-th largest maximum, ``low`` the ``r``-th smallest
-    minimum, and the block's samples must lie in
-    ``[low - margin (high - low), high + margin (high - low)]``.
+    most ``max_abs`` in magnitude (none when it has no such sample). When at least
+    ``r = ceil(rank n / blocks)`` blocks have such samples (and ``r >= 1``), ``high`` is
+    the ``r``-th largest maximum, ``low`` the ``r``-th smallest minimum, and the block's
+    samples must lie in ``[low - m (high - low), high + m (high - low)]``, where
+    ``m = margin``, or ``margin * blocks / (4 n)`` while ``n`` is under a quarter of
+    ``blocks``.
     """
     usable = [math.isfinite(v) and abs(v) <= max_abs for v in map(float, x)]
     flags = np.zeros(len(x))
@@ -42,10 +43,11 @@ def accepted_flags(x: np.ndarray, block: int, blocks: int, rank: int, margin: fl
             before = extremes[max(0, b - blocks):b]
             known = [e for e in before if e is not None]
             r = math.ceil(rank * len(before) / blocks)
-            if 4 * len(before) >= blocks and len(known) >= r >= 1:
+            if len(known) >= r >= 1:
                 high = sorted((e[0] for e in known), reverse=True)[r - 1]
                 low = sorted(e[1] for e in known)[r - 1]
-                lo, hi = low - margin * (high - low), high + margin * (high - low)
+                m = margin * blocks / (4.0 * len(before)) if 4 * len(before) < blocks else margin
+                lo, hi = low - m * (high - low), high + m * (high - low)
             if (k + 1) % block == 0:  # the block is complete: its extremes count from now on
                 span = range(k + 1 - block, k + 1)
                 mine = [float(x[i]) for i in span if usable[i]]

@@ -18,7 +18,8 @@ from estimators.monitor import FUSED, RateMonitor
 from estimators.preprocess import STUCK_RUN_S, design_chain
 from tests import signals
 from tests.robustness.faults import (Fault, assert_log_invariants, breathing_pulse, chunked,
-                                     columns, feed, inject, pulse_signal, within_ec13)
+                                     columns, feed, inject, pulse_signal, pulse_wave,
+                                     within_ec13)
 
 FS = 125.0
 PROFILE = get_profile("wrist")
@@ -304,6 +305,37 @@ def test_spikes_in_the_accelerometer_leave_the_exercise_heart_rate_alone(rising_
     c = columns(run_spiky(np.column_stack([x, acc]), t, [spike_fault(height, count, 1)],
                           (("finger", "ppg"), ("wrist", "acc")), profile))
     assert_no_confident_wrong_rate_and_back_soon(c, rising_per_min(c["time_s"]), 5.0, "acc")
+
+
+@pytest.mark.parametrize("kind,profile_name", [("ppg", "wrist"), ("ecg", "chest-ecg"),
+                                               ("resp", "resp-belt")])
+@pytest.mark.parametrize("at_s", [0.3, 1.0])
+def test_spikes_soon_after_the_start_or_a_gap_are_rejected_too(rng, kind, profile_name,
+                                                               at_s):
+    """Spikes of 1e30 ``at_s`` after the first sample, and again ``at_s`` after a 60 s
+    hole (a device that glitches as it reconnects): the range is learnt from the first
+    0.25 s block on, so no confident wrong rate follows either, and the estimates after
+    the hole are back on from 12 s after its spikes."""
+    profile = get_profile(profile_name)
+    quantity, truth, tolerance = ("rr", 15.0, 2.0) if kind == "resp" else ("hr", 72.0, 5.0)
+    n = int(50.0 * FS)
+    t = np.concatenate([np.arange(n) / FS, 110.0 + np.arange(n) / FS])
+    if kind == "ppg":
+        x, _ = pulse_wave(FS, np.full(2 * n, truth), seed=4)
+    else:
+        shape = signals.ecg_like if kind == "ecg" else signals.dicrotic_pulse
+        x = signals.rhythm(np.arange(2 * n) / FS, np.full(2 * n, truth), shape,
+                           noise_std=0.05, rng=rng)
+    for start in (at_s, 110.0 + at_s):
+        k = int(np.searchsorted(t, start))
+        x[k:k + 3] = [1e30, -1e30, 1e30]
+    c = columns(run_spiky(x, t, [], (("sensor", kind),), profile), quantity)
+    wrong = (np.abs(c["rate"] - truth) > tolerance) & (c["confidence"] >= 0.5)
+    assert not wrong.any(), c["rate"][wrong][:5]
+    for start, stop in ((at_s, 50.0), (110.0 + at_s, 160.0)):
+        settled = (c["emitted_s"] >= start + SETTLED_S) & (c["emitted_s"] < stop)
+        assert settled.sum() >= 40
+        assert np.isfinite(c["rate"][settled]).mean() >= 0.8, start
 
 
 def test_spikes_lower_the_quality_like_missing_samples(rising_ppg):

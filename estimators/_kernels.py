@@ -194,33 +194,137 @@ def sos_filter(sos, x, zi, out):
         out[k] = v
 
 
+LIMIT_HEADER = 6
+"""Scalars at the head of a limiter state (see :func:`limit_sample`); the two rings of
+block extremes follow."""
+
+
 @kernel
-def preprocess_chunk(x, t, sos_pre, zi_pre, envelope, sos_post, zi_post, scalars,
-                     decimation, min_run, out_values, out_times, out_nonfinite, out_stuck):
+def kth_largest(values, n, rank):
+    """The ``rank``-th largest of the non-NaN values among ``values[:n]`` (a scratch copy
+    is sorted partially), or NaN when fewer than ``rank`` are not NaN."""
+    scratch = np.empty(n)
+    m = 0
+    for i in range(n):
+        v = values[i]
+        if not np.isnan(v):
+            scratch[m] = v
+            m += 1
+    if m < rank:
+        return np.nan
+    for r in range(rank):  # selection sort of the top ``rank`` entries
+        best = r
+        for i in range(r + 1, m):
+            if scratch[i] > scratch[best]:
+                best = i
+        tmp = scratch[r]
+        scratch[r] = scratch[best]
+        scratch[best] = tmp
+    return scratch[rank - 1]
+
+
+@kernel
+def limit_sample(v, limiter, block, rank, margin, max_abs):
+    """Whether raw sample ``v`` lies in the running robust range; updates ``limiter``.
+
+    A sample is accepted when it is finite, ``|v| <= max_abs`` and inside ``[lo, hi]``,
+    the limits in force for its block. Raw samples are taken in blocks of ``block``; the
+    last ``B`` blocks' largest and smallest acceptable-magnitude samples (NaN for a block
+    without one) are kept in two rings. When a block completes and ``n`` blocks are
+    known (``n <= B``), the envelope is the ``r``-th largest block maximum and the
+    ``r``-th smallest block minimum, ``r = ceil(rank n / B)`` (the same upper quantile
+    of the blocks however many are known), ``R`` its width, and the limits become
+    ``[low - m R, high + m R]`` with ``m = margin``; while fewer than ``B / 4`` blocks
+    are known (too short a stretch to be sure to hold a slow beat's peak or a breath),
+    ``m = margin B / (4 n)``, wider the less has been seen. Before the first block
+    completes there are no limits, only ``max_abs``. A burst is judged against the
+    blocks before it, so it is rejected however many blocks are known; bursts in fewer
+    than ``rank`` blocks of a full ring never move the envelope, while ``rank`` blocks
+    of a new level or scale open it.
+
+    ``limiter`` holds ``[position in block, block max, block min, blocks pushed, lo,
+    hi]`` followed by the ring of block maxima and the ring of block minima (negated),
+    ``B`` each.
+    """
+    n_ring = (limiter.shape[0] - LIMIT_HEADER) // 2
+    ok = np.isfinite(v) and abs(v) <= max_abs
+    accepted = ok and limiter[4] <= v and v <= limiter[5]
+    if ok:
+        if v > limiter[1]:
+            limiter[1] = v
+        if v < limiter[2]:
+            limiter[2] = v
+    limiter[0] += 1.0
+    if limiter[0] >= block:
+        slot = int(limiter[3]) % n_ring
+        empty = limiter[1] < limiter[2]  # no acceptable-magnitude sample in the block
+        limiter[LIMIT_HEADER + slot] = np.nan if empty else limiter[1]
+        limiter[LIMIT_HEADER + n_ring + slot] = np.nan if empty else -limiter[2]
+        limiter[3] += 1.0
+        n_known = min(int(limiter[3]), n_ring)
+        r = (rank * n_known + n_ring - 1) // n_ring
+        high = kth_largest(limiter[LIMIT_HEADER:LIMIT_HEADER + n_ring], n_known, r)
+        low = -kth_largest(limiter[LIMIT_HEADER + n_ring:], n_known, r)
+        if np.isnan(high) or np.isnan(low):
+            limiter[4] = -np.inf
+            limiter[5] = np.inf
+        else:
+            m = margin
+            if 4 * n_known < n_ring:
+                m = margin * n_ring / (4.0 * n_known)
+            width = high - low
+            limiter[4] = low - m * width
+            limiter[5] = high + m * width
+        limiter[0] = 0.0
+        limiter[1] = -np.inf
+        limiter[2] = np.inf
+    return accepted
+
+
+@kernel
+def limit_chunk(x, limiter, block, rank, margin, max_abs, out_accepted):
+    """:func:`limit_sample` over a chunk: ``out_accepted[k]`` is 1.0 for accepted
+    samples, 0.0 for the others."""
+    for k in range(x.shape[0]):
+        out_accepted[k] = 1.0 if limit_sample(x[k], limiter, block, rank, margin,
+                                               max_abs) else 0.0
+
+
+@kernel
+def preprocess_chunk(x, t, sos_pre, zi_pre, envelope, sos_post, zi_post, scalars, limiter,
+                     block, rank, margin, max_abs, decimation, min_run, out_values,
+                     out_times, out_rejected, out_stuck):
     """The whole causal pre-processing of one chunk in one pass.
 
-    Per raw sample: non-finite values are held at the last finite one and counted;
-    runs of identical finite values of ``min_run`` samples or more are counted as stuck;
+    Per raw sample: samples outside the running robust range (:func:`limit_sample`, with
+    ``block = 0`` only the non-finite ones and those beyond ``max_abs``) are held at
+    the last accepted one and counted as rejected;
+    runs of identical accepted values of ``min_run`` samples or more are counted as stuck;
     the sample goes through the ``sos_pre`` cascade, optionally the squared first
     difference (``envelope``) and the ``sos_post`` cascade; every ``decimation``-th
     sample (raw index ``j M + M - 1``) is written out with its timestamp and the running
-    counts. ``scalars`` carries ``[last_filtered, last_finite, stuck_value, stuck_run,
-    count, cum_nonfinite, cum_stuck]`` between chunks. Returns the number written.
+    counts. ``scalars`` carries ``[last_filtered, last_accepted, stuck_value, stuck_run,
+    count, cum_rejected, cum_stuck]`` between chunks, ``limiter`` the range's state.
+    Returns the number written.
     """
     last_filtered = scalars[0]
-    last_finite = scalars[1]
+    last_accepted = scalars[1]
     stuck_value = scalars[2]
     stuck_run = scalars[3]
     count = int(scalars[4])
-    cum_nf = scalars[5]
+    cum_rj = scalars[5]
     cum_st = scalars[6]
     n_pre = sos_pre.shape[0]
     n_post = sos_post.shape[0]
     n_out = 0
     for k in range(x.shape[0]):
         v = x[k]
-        if np.isfinite(v):
-            last_finite = v
+        if block > 0:
+            accepted = limit_sample(v, limiter, block, rank, margin, max_abs)
+        else:
+            accepted = np.isfinite(v) and abs(v) <= max_abs
+        if accepted:
+            last_accepted = v
             if v == stuck_value:
                 stuck_run += 1.0
             else:
@@ -229,8 +333,8 @@ def preprocess_chunk(x, t, sos_pre, zi_pre, envelope, sos_post, zi_post, scalars
             if stuck_run >= min_run:
                 cum_st += 1.0
         else:
-            cum_nf += 1.0
-            v = last_finite
+            cum_rj += 1.0
+            v = last_accepted
             stuck_value = np.nan
             stuck_run = 0.0
         for s in range(n_pre):
@@ -250,16 +354,16 @@ def preprocess_chunk(x, t, sos_pre, zi_pre, envelope, sos_post, zi_post, scalars
         if count % decimation == decimation - 1:
             out_values[n_out] = v
             out_times[n_out] = t[k]
-            out_nonfinite[n_out] = cum_nf
+            out_rejected[n_out] = cum_rj
             out_stuck[n_out] = cum_st
             n_out += 1
         count += 1
     scalars[0] = last_filtered
-    scalars[1] = last_finite
+    scalars[1] = last_accepted
     scalars[2] = stuck_value
     scalars[3] = stuck_run
     scalars[4] = count
-    scalars[5] = cum_nf
+    scalars[5] = cum_rj
     scalars[6] = cum_st
     return n_out
 

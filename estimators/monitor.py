@@ -17,8 +17,14 @@ for a set of channels and a profile.
   heart-rate channel goes through the motion stage (:mod:`estimators.motion`) before
   tracking and fusion, and a rate on a motion line loses confidence.
 
+Gaps: a step between consecutive timestamps longer than :func:`gap_threshold_s` is a
+gap (:func:`find_gaps`). No window may span one: the monitor restarts every path after
+it, so the first estimates after a gap come from samples after it only, one start-up
+window later, and :attr:`RateMonitor.last_gaps` tells the caller where it restarted.
+
 The offline twin (:func:`offline_estimates`) runs the same chain over a whole record
-with zero-phase filters, forward-backward posteriors and a Viterbi ridge.
+(each stretch between gaps on its own) with zero-phase filters, forward-backward
+posteriors and a Viterbi ridge.
 """
 
 from __future__ import annotations
@@ -38,11 +44,62 @@ from estimators import tracker as tracker_mod
 from estimators.config import PROFILES, SIGNAL_KINDS, Profile, RateSettings, get_profile
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
-from estimators.preprocess import Analysis, Preprocessor, STUCK_RUN_S, preprocess_batch
+from estimators.preprocess import Analysis, Limiter, Preprocessor, STUCK_RUN_S
 from estimators.respiration import MIN_FS_HZ, PulseBreathing
 from estimators.stft import Columns, SlidingSTFT, stft_batch
 
 FUSED = "fused"
+
+GAP_PERIODS = 3.0
+GAP_MIN_S = 0.25
+"""A step between consecutive timestamps longer than ``max(GAP_PERIODS / fs, GAP_MIN_S)``
+is a gap (:func:`gap_threshold_s`). Three periods: two or more samples missing, which
+neither a one-sample hiccup nor a time column written with few digits causes. A quarter
+of a second: well above the jitter of senders that stamp samples on arrival (tens of
+milliseconds), and a hole this short cannot hide a change of rate (at most 1 bpm at the
+fastest change the profiles follow, 3-8 bpm/s), costs at most one hop of samples and
+shifts a spliced 8 s window by 3 % of its length, whereas restarting costs a whole
+start-up window of estimates. Our own choice."""
+
+
+def gap_threshold_s(fs: float) -> float:
+    """Longest step between consecutive timestamps that is not a gap (seconds)."""
+    return max(GAP_PERIODS / fs, GAP_MIN_S)
+
+
+@dataclass(frozen=True)
+class Gap:
+    """A hole in the time axis: ``before_s`` is the last timestamp before it,
+    ``after_s`` the first after it, ``missing_s = after_s - before_s - 1 / fs`` the
+    time without samples."""
+
+    before_s: float
+    after_s: float
+    missing_s: float
+
+
+def find_gaps(timestamps: np.ndarray, fs: float, newest_s: float = np.nan) -> np.ndarray:
+    """Indices ``k`` of the samples that follow a gap: the step from the newest earlier
+    timestamp (``newest_s`` before the first sample; NaN: none) to ``timestamps[k]``
+    exceeds :func:`gap_threshold_s`. Timestamps that go backwards or repeat are never a
+    gap (they are labelled with the newest one seen, :func:`monotone_times`).
+
+    >>> find_gaps(np.array([0.0, 0.01, 0.02, 5.0, 5.01, 4.0, 5.02]), 100.0).tolist()
+    [3]
+    """
+    labels = monotone_times(np.asarray(timestamps, dtype=np.float64), newest_s)
+    return _gap_starts(labels, newest_s, gap_threshold_s(fs))
+
+
+def _gap_starts(labels: np.ndarray, newest_s: float, threshold_s: float) -> np.ndarray:
+    """:func:`find_gaps` on labels from :func:`monotone_times` (never decreasing)."""
+    if len(labels) == 0:
+        return np.empty(0, np.int64)
+    with np.errstate(invalid="ignore"):  # infinite timestamps: inf - inf
+        inner = np.flatnonzero(np.diff(labels) > threshold_s) + 1
+        if labels[0] - newest_s > threshold_s:  # NaN (nothing seen before) compares False
+            return np.concatenate(([0], inner))
+    return inner
 
 
 @dataclass(frozen=True)
@@ -106,8 +163,8 @@ def column_spectra(columns: Columns, grid: deshape_mod.DeshapeGrid,
 
 
 def window_integrity(columns: Columns, decimation: int) -> np.ndarray:
-    """Integrity per column from the running counts of non-finite and stuck raw samples
-    carried beside the frames (``aux`` rows 0 and 1)."""
+    """Integrity per column from the running counts of rejected (non-finite or out of
+    range) and stuck raw samples carried beside the frames (``aux`` rows 0 and 1)."""
     if len(columns) == 0:
         return np.empty(0)
     raw = (columns.last_count - columns.first_count) * decimation
@@ -122,7 +179,8 @@ class ChannelPath:
                  chain_kind: str | None = None):
         self.name, self.kind, self.settings = name, kind, settings
         self.geometry = g = PathGeometry.of(settings, fs)
-        self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation)
+        self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation,
+                                Limiter.for_window(settings.window_s, fs))
         self.pre.min_run = max(3, int(round(settings.stuck_run_s * fs)))
         self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen)
         self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.analysis_band_hz)
@@ -135,7 +193,7 @@ class ChannelPath:
     def update(self, x: np.ndarray, t: np.ndarray) -> HopBlock:
         analysis = self.pre.update(x, t)
         columns = self.stft.update(analysis.values, analysis.timestamps,
-                                   (analysis.cum_nonfinite, analysis.cum_stuck))
+                                   (analysis.cum_rejected, analysis.cum_stuck))
         integrity = window_integrity(columns, self.geometry.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
         return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
@@ -144,11 +202,10 @@ class ChannelPath:
     def batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> HopBlock:
         """The whole record in one call (causal twin, or zero-phase for offline)."""
         g = self.geometry
-        analysis: Analysis = preprocess_batch(x, t, self.pre.chain, g.decimation,
-                                              self.pre.min_run, zero_phase)
+        analysis: Analysis = self.pre.batch(x, t, zero_phase)
         columns = stft_batch(analysis.values, analysis.timestamps, g.window, g.min_window,
                              g.hop, g.n_fft, self.settings.sharpen,
-                             (analysis.cum_nonfinite, analysis.cum_stuck))
+                             (analysis.cum_rejected, analysis.cum_stuck))
         integrity = window_integrity(columns, g.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
         return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
@@ -452,6 +509,8 @@ class RateMonitor:
             for path in self.motion_paths.values():
                 path.keep_columns = bool(self.motion)
         self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
+        self._gap_s = gap_threshold_s(self.fs)
+        self.last_gaps: list[Gap] = []
         self.pulse_breathing: dict[str, PulseBreathing] = {
             name: PulseBreathing(name, kind, self.profile.rr_pulse, fs)
             for name, kind in self.channels
@@ -471,7 +530,9 @@ class RateMonitor:
                 return path.grid.rates_per_min
         return None
 
-    def reset(self) -> None:
+    def restart(self) -> None:
+        """Start every path afresh (filters, windows, trackers, motion stage, breathing
+        from pulse), keeping the newest timestamp seen so labels never go backwards."""
         for path in list(self.paths.values()) + list(self.motion_paths.values()):
             path.reset()
         for out in self.outputs.values():
@@ -480,7 +541,13 @@ class RateMonitor:
             suppressor.reset()
         for breathing in self.pulse_breathing.values():
             breathing.reset()
+
+    def reset(self) -> None:
+        """As after construction: :meth:`restart`, and no timestamp seen (for a stream
+        whose time axis may start over, e.g. a sender that came back)."""
+        self.restart()
         self._newest_s = np.nan
+        self.last_gaps = []
 
     def _check(self, samples, timestamps):
         samples = np.asarray(samples, dtype=np.float64)
@@ -563,20 +630,48 @@ class RateMonitor:
         """Feed a chunk ``(n, channels)`` with timestamps ``(n,)``; return the estimates
         of every hop it completes, ordered by hop, then by quantity and source.
 
-        Hops fall by sample count (see :mod:`estimators.stft`); timestamps only label
-        the estimates. A timestamp earlier than one already seen (duplicated or
-        out-of-order samples, a clock stepped back) is labelled with the newest one
+        Hops fall by sample count (see :mod:`estimators.stft`); timestamps label the
+        estimates and mark gaps. A timestamp earlier than one already seen (duplicated
+        or out-of-order samples, a clock stepped back) is labelled with the newest one
         seen (:func:`monotone_times`), so ``emitted_s`` never decreases and
-        ``time_s <= emitted_s`` whatever the source delivers."""
+        ``time_s <= emitted_s`` whatever the source delivers. At a gap
+        (:func:`find_gaps`, here or between this chunk and the last) the monitor
+        restarts (:meth:`restart`): no window spans the gap, and the first estimates
+        after it use samples after it only. :attr:`last_gaps` lists the gaps of this
+        chunk."""
         samples, timestamps = self._check(samples, timestamps)
-        timestamps = monotone_times(timestamps, self._newest_s)
-        if len(timestamps):
-            self._newest_s = float(timestamps[-1])
+        labels = monotone_times(timestamps, self._newest_s)
+        starts = _gap_starts(labels, self._newest_s, self._gap_s)
+        self.last_gaps = []
+        if len(starts) == 0:  # the usual case: one stretch
+            estimates = self._update_stretch(samples, labels)
+            estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
+            return estimates
+        bounds = sorted({0, *starts.tolist(), len(labels)})
+        estimates, pieces = [], []
+        for a, b in zip(bounds[:-1], bounds[1:]):
+            if a in starts:
+                before = self._newest_s if a == 0 else float(labels[a - 1])
+                after = float(labels[a])
+                self.last_gaps.append(Gap(before, after, after - before - 1.0 / self.fs))
+                self.restart()
+            estimates.extend(self._update_stretch(samples[a:b], labels[a:b]))
+            pieces.append(self.last_blocks)
+        if len(pieces) > 1:  # the blocks of the chunk, for a display drawing them
+            self.last_blocks = {key: concat_blocks([p[key] for p in pieces]) for key in
+                                pieces[-1]}
+        estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
+        return estimates
+
+    def _update_stretch(self, samples: np.ndarray, labels: np.ndarray) -> list[Estimate]:
+        """One stretch without a gap; ``labels`` never decrease."""
+        if len(labels):
+            self._newest_s = float(labels[-1])
         blocks = {}
         for key, path in self.paths.items():
-            blocks[key] = path.update(samples[:, self._index[key[1]]], timestamps)
+            blocks[key] = path.update(samples[:, self._index[key[1]]], labels)
         for name, path in self.motion_paths.items():
-            self.motion_spectra[name] = path.update(samples[:, self._index[name]], timestamps)
+            self.motion_spectra[name] = path.update(samples[:, self._index[name]], labels)
         estimates = []
         if self.motion:
             hr_estimates, tracked = self.track_with_motion(blocks, self.motion_spectra)
@@ -588,8 +683,7 @@ class RateMonitor:
         estimates.extend(self._update_outputs(
             [key for key in self.outputs if not (self.motion and key[0] == "hr")], blocks))
         for name, breathing in self.pulse_breathing.items():
-            estimates.extend(breathing.update(samples[:, self._index[name]], timestamps))
-        estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
+            estimates.extend(breathing.update(samples[:, self._index[name]], labels))
         return estimates
 
 
@@ -598,14 +692,25 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
 
     Zero-phase filters, the same STFT columns (each describes the centre of its
     window), forward-backward posteriors for the confidence and a Viterbi ridge for the
-    rate. Every estimate used the whole record, so ``emitted_s`` is the time of the last
-    sample.
+    rate. The record is cut at its gaps (:func:`find_gaps`) and each stretch is
+    estimated on its own, as live restarts there; every estimate used its whole
+    stretch, so ``emitted_s`` is the time of the stretch's last sample.
     """
     monitor = RateMonitor(channels, fs, profile)
     samples, timestamps = monitor._check(samples, timestamps)
     timestamps = monotone_times(timestamps, np.nan)
-    if len(timestamps) == 0:
-        return []
+    bounds = [0, *find_gaps(timestamps, monitor.fs).tolist(), len(timestamps)]
+    estimates = []
+    for a, b in zip(bounds[:-1], bounds[1:]):
+        if b > a:
+            estimates.extend(_offline_stretch(monitor, samples[a:b], timestamps[a:b]))
+    estimates.sort(key=lambda e: (e.time_s, e.quantity, e.source))
+    return estimates
+
+
+def _offline_stretch(monitor: RateMonitor, samples: np.ndarray,
+                     timestamps: np.ndarray) -> list[Estimate]:
+    """:func:`offline_estimates` of one stretch without a gap."""
     end = float(timestamps[-1])
     blocks = {key: path.batch(samples[:, monitor._index[key[1]]], timestamps, True)
               for key, path in monitor.paths.items()}
@@ -613,6 +718,7 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
         # The motion stage needs a track to know where to trust its canceller: a causal
         # forward pass over the zero-phase columns gives it (its estimates are dropped);
         # the Viterbi ridge below then runs on the spectra that pass made.
+        monitor.restart()
         _, tracked = monitor.track_with_motion(blocks, {
             name: path.batch(samples[:, monitor._index[name]], timestamps, True)
             for name, path in monitor.motion_paths.items()})
@@ -646,8 +752,8 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
         estimates.extend(new)
     for name, breathing in monitor.pulse_breathing.items():
         estimates.extend(breathing.offline(samples[:, monitor._index[name]], timestamps))
-    estimates.sort(key=lambda e: (e.time_s, e.quantity, e.source))
     return estimates
 
 
-__all__ = ["RateMonitor", "offline_estimates", "PROFILES", "FUSED", "STUCK_RUN_S"]
+__all__ = ["RateMonitor", "offline_estimates", "find_gaps", "gap_threshold_s", "Gap",
+           "PROFILES", "FUSED", "STUCK_RUN_S"]

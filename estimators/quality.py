@@ -3,8 +3,10 @@
 The index is the product of three measures, each in [0, 1]:
 
 ``finite``
-    ``clip(1 - 5 * nonfinite_fraction, 0, 1)``: a window with 20 % or more missing
-    (NaN or infinite) samples is unusable. The factor 5 is our own choice.
+    ``clip(1 - 5 * rejected_fraction, 0, 1)``: a window with 20 % or more missing
+    (NaN or infinite) samples, or samples rejected as outside the signal's running
+    range (spikes, see :class:`estimators.preprocess.Limiter`), is unusable. The factor
+    5 is our own choice.
 ``unstuck``
     ``clip(1 - 3 * stuck_fraction, 0, 1)``: samples that repeat one value for
     :data:`estimators.preprocess.STUCK_RUN_S` or longer are a flat line (sensor off) or
@@ -33,9 +35,10 @@ import numpy as np
 from estimators import _kernels
 
 
-def integrity(nonfinite_fraction: np.ndarray, stuck_fraction: np.ndarray) -> np.ndarray:
-    """Signal-integrity part of the quality index, per hop."""
-    finite = np.maximum(1.0 - 5.0 * np.asarray(nonfinite_fraction), 0.0)
+def integrity(rejected_fraction: np.ndarray, stuck_fraction: np.ndarray) -> np.ndarray:
+    """Signal-integrity part of the quality index, per hop, from the fractions of the
+    window's raw samples that were rejected (non-finite or out of range) and stuck."""
+    finite = np.maximum(1.0 - 5.0 * np.asarray(rejected_fraction), 0.0)
     unstuck = np.maximum(1.0 - 3.0 * np.asarray(stuck_fraction), 0.0)
     return np.minimum(finite * unstuck, 1.0)
 

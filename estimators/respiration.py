@@ -55,8 +55,8 @@ from estimators import tracker as tracker_mod
 from estimators.config import RateSettings
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
-from estimators.preprocess import (causal_sos, design_chain, initial_state, preprocess_batch,
-                                   preprocess_step)
+from estimators.preprocess import (Limiter, causal_sos, design_chain, initial_state,
+                                   limit_batch, limit_step, preprocess_batch, preprocess_step)
 from estimators.stft import SlidingSTFT, stft_batch
 
 MODULATIONS = ("intensity", "amplitude", "frequency")
@@ -67,6 +67,11 @@ PULSE_KINDS = ("ppg", "ecg")
 MIN_FS_HZ = 40.0
 """Lowest raw sampling rate at which beats are located well enough for the
 modulations (our own choice); below it a pulse channel gives no breathing rate."""
+
+BEAT_LIMIT_WINDOW_S = 8.0
+"""The beat detector rejects samples outside the pulse's running range learnt over
+this long (:class:`estimators.preprocess.Limiter`), as the heart-rate path does over its
+8 s window: at least four beats at the slowest rate followed (30 per minute)."""
 
 
 # --------------------------------------------------------------------------- beats
@@ -100,6 +105,7 @@ class BeatParams:
     threshold_fraction: float
     history: int
     interval_tolerance: float
+    limiter: Limiter
 
     @property
     def lookahead(self) -> int:
@@ -144,11 +150,12 @@ def beat_params(kind: str, fs: float) -> BeatParams:
         return signal.butter(order, [lo, hi], btype="bandpass", fs=fs, output="sos")
 
     n = lambda seconds: int(round(seconds * fs))  # noqa: E731
+    limiter = Limiter.for_window(BEAT_LIMIT_WINDOW_S, fs)
     if kind == "ppg":
         return BeatParams(kind, float(fs), band(0.5, 8.0), band(0.0, 8.0), band(0.0, 8.0),
-                          0, n(0.25), n(0.25), 0, n(2.0), 0.5, 8, 0.3)
+                          0, n(0.25), n(0.25), 0, n(2.0), 0.5, 8, 0.3, limiter)
     return BeatParams(kind, float(fs), band(5.0, 25.0), band(0.5, 40.0), band(0.0, 8.0),
-                      n(0.1), n(0.25), n(0.12), n(0.064), n(2.0), 0.3, 8, 0.3)
+                      n(0.1), n(0.25), n(0.12), n(0.064), n(2.0), 0.3, 8, 0.3, limiter)
 
 
 @dataclass(frozen=True)
@@ -189,19 +196,20 @@ class Beats:
 class BeatState:
     """Everything :func:`detect_step` carries between chunks.
 
-    Filter states; the newest raw sample before the chunk (``last_band``, for the slope)
-    and the last finite input; ``count`` raw samples seen; ``next_k`` the first candidate
-    not yet decided; the signal history (``detect[0]`` is raw sample ``count -
-    len(detect)``); recent beat heights and intervals; the last beat's detection index,
-    position and feature peak.
+    Filter states and the limiter's; the newest raw sample before the chunk
+    (``last_band``, for the slope) and the last accepted input; ``count`` raw samples
+    seen; ``next_k`` the first candidate not yet decided; the signal history
+    (``detect[0]`` is raw sample ``count - len(detect)``); recent beat heights and
+    intervals; the last beat's detection index, position and feature peak.
     """
 
     zi_detect: np.ndarray
     zi_integrate: np.ndarray
     zi_feature: np.ndarray
     zi_level: np.ndarray
+    limiter: np.ndarray
     last_band: float = 0.0
-    last_finite: float = 0.0
+    last_accepted: float = 0.0
     count: int = 0
     next_k: int = 0
     detect: np.ndarray = field(default_factory=lambda: np.empty(0))
@@ -218,22 +226,22 @@ def beat_initial_state(params: BeatParams) -> BeatState:
     """Filters at rest, nothing seen."""
     zeros = lambda sos: np.zeros((sos.shape[0], 2))  # noqa: E731
     return BeatState(zeros(params.detect_sos), np.zeros(max(params.integrate - 1, 0)),
-                     zeros(params.feature_sos), zeros(params.level_sos))
+                     zeros(params.feature_sos), zeros(params.level_sos),
+                     params.limiter.initial_state())
 
 
-def _hold_nonfinite(state: BeatState, x: np.ndarray) -> np.ndarray:
-    """Non-finite samples hold the last finite value: a flat stretch has no beats, and
-    the filters stay bounded."""
-    finite = np.isfinite(x)
-    if finite.all():
+def _hold_rejected(state: BeatState, x: np.ndarray, accepted: np.ndarray) -> np.ndarray:
+    """Rejected samples (non-finite, or outside the running range: spikes) hold the last
+    accepted value: a flat stretch has no beats, and the filters stay bounded."""
+    if accepted.all():
         if len(x):
-            state.last_finite = float(x[-1])
+            state.last_accepted = float(x[-1])
         return x
-    idx = np.where(finite, np.arange(len(x)), -1)
+    idx = np.where(accepted, np.arange(len(x)), -1)
     np.maximum.accumulate(idx, out=idx)
-    filled = np.where(idx >= 0, x[np.maximum(idx, 0)], state.last_finite)
-    if finite.any():
-        state.last_finite = float(x[finite][-1])
+    filled = np.where(idx >= 0, x[np.maximum(idx, 0)], state.last_accepted)
+    if accepted.any():
+        state.last_accepted = float(x[accepted][-1])
     return filled
 
 
@@ -374,8 +382,9 @@ def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
     Parameters
     ----------
     state : carried state from :func:`beat_initial_state` (updated in place, returned).
-    x, t : raw samples (non-finite ones are held at the last finite value) and their
-        timestamps, 1-D float64 of equal length.
+    x, t : raw samples (non-finite ones and those outside the running range of
+        ``params.limiter`` are held at the last accepted value) and their timestamps,
+        1-D float64 of equal length.
     params : from :func:`beat_params`.
 
     Returns
@@ -385,7 +394,8 @@ def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
     n = len(x)
     if n == 0:
         return state, Beats.empty()
-    x = _hold_nonfinite(state, np.asarray(x, dtype=np.float64))
+    x = np.asarray(x, dtype=np.float64)
+    x = _hold_rejected(state, x, limit_step(params.limiter, state.limiter, x))
     detect = _detection_signal(params, state, x)
     feature, state.zi_feature = causal_sos(params.feature_sos, x, state.zi_feature)
     level, state.zi_level = causal_sos(params.level_sos, x, state.zi_level)
@@ -420,7 +430,8 @@ def detect_batch(x: np.ndarray, t: np.ndarray, params: BeatParams,
         return detect_step(state, x, t, params)[1]
     if len(x) == 0:
         return Beats.empty()
-    x = _hold_nonfinite(state, np.asarray(x, dtype=np.float64))
+    x = np.asarray(x, dtype=np.float64)
+    x = _hold_rejected(state, x, limit_batch(params.limiter, x))
     band = _zero_phase(params.detect_sos, x)
     detect = np.diff(band, prepend=band[0]) * params.fs
     if params.integrate:
@@ -736,7 +747,7 @@ class ModulationBank:
         return start[:, None] + np.cumsum(np.array(rows), axis=1)
 
     def _hops(self, columns) -> ModulationHops:
-        """Hops from aligned columns (one per modulation) whose aux rows are: nonfinite,
+        """Hops from aligned columns (one per modulation) whose aux rows are: rejected,
         stuck (that modulation), the running sums, ready_s."""
         first, last = columns[0].first_count, columns[0].last_count
         length = (last - first).astype(np.float64)
@@ -780,7 +791,7 @@ class ModulationBank:
         sums = self._running_sums(samples, [a.values for a in analyses], self._sums)
         self._sums = sums[:, -1].copy()
         columns = [self.stfts[c].update(a.values, a.timestamps,
-                                        (a.cum_nonfinite, a.cum_stuck, *sums, samples.ready_s))
+                                        (a.cum_rejected, a.cum_stuck, *sums, samples.ready_s))
                    for c, a in enumerate(analyses)]
         return self._hops(columns) if len(columns[0]) else self._empty()
 
@@ -795,7 +806,7 @@ class ModulationBank:
         sums = self._running_sums(samples, [a.values for a in analyses], np.zeros(_N_SUMS))
         columns = [stft_batch(a.values, a.timestamps, self.window, self.min_window, self.hop,
                               self.n_fft, False,
-                              (a.cum_nonfinite, a.cum_stuck, *sums, samples.ready_s))
+                              (a.cum_rejected, a.cum_stuck, *sums, samples.ready_s))
                    for a in analyses]
         return self._hops(columns) if len(columns[0]) else self._empty()
 

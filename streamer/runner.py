@@ -3,7 +3,10 @@
 The :class:`Runner` pulls items from a source, feeds chunks to the engine
 (:class:`estimators.monitor.RateMonitor`), writes every estimate to the log (flushed per
 line) and the LSL outlet, and hands copies to listeners (the display) without ever
-waiting for them. A stop request (Ctrl-C, SIGTERM, a closed window, ``--duration``)
+waiting for them. When the engine restarts at a gap in the timestamps
+(:func:`estimators.monitor.find_gaps`; any source, file replay included), a ``"gap"``
+event goes into the log between the rows before and after it, unless the source
+reported that hole itself. A stop request (Ctrl-C, SIGTERM, a closed window, ``--duration``)
 ends the loop at the next item; the log is closed in a ``finally`` block so it is
 complete up to the last hop processed.
 """
@@ -22,7 +25,7 @@ import numpy as np
 
 from estimators.config import Profile
 from estimators.estimate import Estimate
-from estimators.monitor import RateMonitor
+from estimators.monitor import Gap, RateMonitor
 from streamer.channels import Selected
 from streamer.sources.base import Chunk, SourceEvent
 
@@ -134,6 +137,7 @@ class Runner:
         self.stats = RunStats()
         self.stop_reason = ""
         self.rate_check = RateCheck(source.info.fs, source.info.name)
+        self._announced_gap_s = math.nan  # time_s of the source's last "gap" event
 
     def stop(self, reason: str = "stop requested") -> None:
         """Ask the loop to end at the next item (safe from any thread or signal handler)."""
@@ -173,18 +177,47 @@ class Runner:
             self._handle_event(rate_event)
         hops = len({e.emitted_s for e in estimates}) or 1
         compute_ms = 1e3 * elapsed / hops
-        if self.log is not None:
-            for est in estimates:
-                self.log.write(est, compute_ms)
-        if self.outlet is not None and estimates:
-            self.outlet.push(estimates)
+        written = 0
+        for gap in self.monitor.last_gaps:
+            # Rows from before the gap, then the gap, so the log reads in stream order.
+            before = [e for e in estimates[written:] if e.emitted_s <= gap.before_s]
+            self._write_estimates(before, compute_ms)
+            written += len(before)
+            self._engine_gap(gap)
+        self._write_estimates(estimates[written:], compute_ms)
         st.estimates += len(estimates)
         if self.listeners:
             view = Chunk(samples, chunk.timestamps)
             self._notify(Update(estimates, view, self.monitor.last_blocks))
 
+    def _write_estimates(self, estimates: list, compute_ms: float) -> None:
+        if self.log is not None:
+            for est in estimates:
+                self.log.write(est, compute_ms)
+        if self.outlet is not None and estimates:
+            self.outlet.push(estimates)
+
+    def _engine_gap(self, gap: Gap) -> None:
+        """The engine restarted at a gap in the timestamps: a ``"gap"`` event in the log,
+        unless the source reported this hole itself (the LSL source does). Either way the
+        display hears that the estimates start afresh (``detail["restart"]``)."""
+        name = self.source.info.name
+        event = SourceEvent(
+            "gap",
+            f"stream '{name}' skipped {gap.missing_s:.3f} s of samples (timestamps jump "
+            f"from {gap.before_s:.3f} s to {gap.after_s:.3f} s); estimates restart from the "
+            f"samples after the gap",
+            gap.after_s, {"missing_s": gap.missing_s, "before_s": gap.before_s,
+                          "restart": True})
+        if gap.before_s <= self._announced_gap_s <= gap.after_s:
+            self._notify(Update([], None, {}, event))
+        else:
+            self._handle_event(event)
+
     def _handle_event(self, event: SourceEvent) -> None:
         self.stats.events.append(event)
+        if event.kind == "gap" and not event.detail.get("restart"):
+            self._announced_gap_s = event.time_s
         if event.kind in ("lost", "resumed", "gap", "irregular"):
             log.warning("%s", event.message)
         else:

@@ -127,6 +127,9 @@ class DisplayState:
                 self.stream = "recording ended"
             elif event.kind in ("gap", "irregular"):
                 self.notice = event.message
+                if event.detail.get("restart"):
+                    # The engine starts afresh: the values before the gap are not current.
+                    self.latest.clear()
         elif update.estimates and self.status == "waiting for data":
             self.status = "running"
 

@@ -10,7 +10,7 @@ import pytest
 from scipy import signal
 
 from estimators import _jit, _kernels, tracker
-from estimators.preprocess import design_chain, initial_state
+from estimators.preprocess import MAX_ABS, Limiter, design_chain, initial_state
 from tests import signals
 from tests.reference import dense_hmm, deshape_interp, preprocess_loop, quality_loop
 
@@ -38,7 +38,8 @@ def hmm_inputs(rng, n_hops=40):
 TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "squeeze_column",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
                   "rhythm_scores", "hop_rhythm", "predict", "cancel_columns",
-                  "normalise_or_prior", "spectral_margins"}
+                  "normalise_or_prior", "spectral_margins", "kth_largest", "limit_sample",
+                  "limit_chunk"}
 """Kernels with a test here (``cancel_columns`` in test_motion.py,
 ``harmonic_score`` in test_quality.py, ``spectral_margins`` in test_calibration.py,
 ``track_block`` also
@@ -140,33 +141,106 @@ def test_sos_filter_equals_scipy_with_carried_state(rng):
                                    err_msg=label)
 
 
-@pytest.mark.parametrize("kind", ["ppg", "ecg"])
-def test_preprocess_chunk(rng, kind):
-    fs, decimation, min_run = 125.0, 5, 15
-    t = np.arange(3000) / fs
+def spiky_rhythm(rng, n, fs):
+    """An ECG-like rhythm with a NaN burst, a flat run, spikes of 1e6 to 1e308 (one of
+    them astride a limiter block boundary) and a lasting DC jump."""
+    t = np.arange(n) / fs
     x = signals.rhythm(t, np.full(len(t), 80.0), signals.ecg_like, noise_std=0.2, rng=rng)
     x[500:560] = np.nan
     x[900:1000] = x[900]
+    x[1240:1243] = [1e6, -1e15, 1e30]
+    x[1705] = -1e308
+    x[2000] = np.inf
+    x[2400:] += 40.0
+    return t, x
+
+
+@pytest.mark.parametrize("kind,limited", [("ppg", False), ("ecg", False), ("ppg", True),
+                                          ("ecg", True)])
+def test_preprocess_chunk(rng, kind, limited):
+    fs, decimation, min_run = 125.0, 5, 15
+    t, x = spiky_rhythm(rng, 3000, fs)
+    if not limited:
+        x[1240:1243] = x[1705] = 0.5
+    limiter = Limiter.for_window(8.0, fs) if limited else Limiter(0)
     chain = design_chain(kind, "hr", fs, fs / decimation)
-    want = preprocess_loop.preprocess(x, t, chain, decimation, min_run)
+    want = preprocess_loop.preprocess(x, t, chain, decimation, min_run,
+                                      limiter if limited else None)
     post = np.zeros((0, 6)) if chain.post is None else chain.post
     for label, fn in both(_kernels.preprocess_chunk):
-        state = initial_state(chain)
+        state = initial_state(chain, limiter)
         outs, k = [], 0
         for size in (1, 2, 4, 993, 2000):
             buf = np.empty((4, size // decimation + 2))
             n = fn(x[k:k + size], t[k:k + size], chain.pre, state.zi_pre, chain.envelope,
-                   post, state.zi_post, state.scalars, decimation, float(min_run),
+                   post, state.zi_post, state.scalars, state.limiter, limiter.block,
+                   limiter.rank, limiter.margin, MAX_ABS, decimation, float(min_run),
                    buf[0], buf[1], buf[2], buf[3])
             outs.append(buf[:, :n])
             k += size
         got = np.concatenate(outs, axis=1)
         scale = np.abs(want["values"]).max()
+        assert np.all(np.isfinite(got[0])), label
         np.testing.assert_allclose(got[0], want["values"], rtol=0, atol=1e-12 * scale,
                                    err_msg=label)
         np.testing.assert_array_equal(got[1], want["timestamps"], err_msg=label)
-        np.testing.assert_array_equal(got[2], want["cum_nonfinite"], err_msg=label)
+        np.testing.assert_array_equal(got[2], want["cum_rejected"], err_msg=label)
         np.testing.assert_array_equal(got[3], want["cum_stuck"], err_msg=label)
+
+
+def test_limit_chunk_equals_the_plain_loop(rng):
+    """The running range, chunk by chunk (single samples, sizes across block boundaries),
+    against the plain loop of the reference: the same samples accepted."""
+    fs = 125.0
+    _, x = spiky_rhythm(rng, 3000, fs)
+    limiter = Limiter.for_window(8.0, fs)
+    want = preprocess_loop.accepted_flags(x, limiter.block, limiter.blocks, limiter.rank,
+                                          limiter.margin, MAX_ABS)
+    # The case is what it means to be: the spikes and the jump's first samples rejected.
+    assert want[[1240, 1241, 1242, 1705, 2400]].sum() == 0 and want[:400].all()
+    for label, fn in both(_kernels.limit_chunk):
+        state = limiter.initial_state()
+        outs, k = [], 0
+        for size in [1] * 40 + [31, 30, 32, 1, 997] + [1] * 30 + [1839]:
+            out = np.empty(size)
+            fn(x[k:k + size], state, limiter.block, limiter.rank, limiter.margin, MAX_ABS,
+               out)
+            outs.append(out)
+            k += size
+        assert k == len(x)
+        np.testing.assert_array_equal(np.concatenate(outs), want, err_msg=label)
+
+
+def test_limit_sample_widens_its_margin_while_it_has_seen_little():
+    """Before the first block completes only non-finite samples and those beyond
+    ``max_abs`` are rejected; with ``n`` of ``B`` blocks known the range is widened by
+    ``margin * B / (4 n)`` envelope widths while ``n < B / 4``, by ``margin`` after."""
+    for label, fn in both(_kernels.limit_sample):
+        def probe(state, values):
+            # Whether each value would be accepted next (on a copy: the state stays).
+            return [fn(v, state.copy(), 4, 3, 2.0, 1e100) for v in values]
+
+        def block(state):
+            for v in (0.0, 1.0, 0.0, 1.0):  # envelope [0, 1], width 1
+                fn(v, state, 4, 3, 2.0, 1e100)
+
+        state = Limiter(4, blocks=16, rank=3, margin=2.0).initial_state()
+        assert probe(state, [1e50, -1e99, np.nan, 2e100]) == [True, True, False, False], label
+        block(state)  # 1 of 16 known: margin 2 * 16 / 4 = 8, range [-8, 9]
+        assert probe(state, [9.0, -8.0, 9.5, -8.5]) == [True, True, False, False], label
+        block(state)  # 2 known: margin 4, range [-4, 5]
+        assert probe(state, [5.0, -4.0, 5.5, -4.5]) == [True, True, False, False], label
+        block(state)
+        block(state)  # 4 known, a quarter: margin 2, range [-2, 3]
+        assert probe(state, [3.0, -2.0, 3.5, -2.5]) == [True, True, False, False], label
+
+
+def test_kth_largest_skips_nan_and_needs_rank_values():
+    values = np.array([3.0, np.nan, 7.0, -1.0, 7.0, 5.0])
+    for label, fn in both(_kernels.kth_largest):
+        assert [fn(values, 6, r) for r in (1, 2, 3, 4, 5)][:5] == [7.0, 7.0, 5.0, 3.0, -1.0]
+        assert np.isnan(fn(values, 6, 6)), label
+        assert fn(values, 3, 2) == 3.0 and np.isnan(fn(values, 2, 2)), label
 
 
 def test_track_block_compiled_equals_python(rng):

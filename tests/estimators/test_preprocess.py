@@ -12,10 +12,16 @@ from scipy import signal
 
 from estimators.errors import ParameterError
 from estimators.preprocess import (
+    LIMIT_BLOCK_S,
+    MAX_ABS,
+    NO_LIMIT,
     STUCK_RUN_S,
+    Limiter,
     Preprocessor,
     design_chain,
     initial_state,
+    limit_batch,
+    limit_step,
     preprocess_batch,
     preprocess_step,
 )
@@ -26,12 +32,15 @@ FS = 125.0
 
 
 def dirty_signal(rng, n, kind="ppg"):
-    """A pulse-like signal with a NaN burst, a lone inf, a flat run and a clipped run."""
+    """A pulse-like signal with a NaN burst, a lone inf, spikes of 1e6 to 1e308, a flat
+    run and a clipped run."""
     t = np.arange(n) / FS
     shape = signals.ecg_like if kind == "ecg" else signals.dicrotic_pulse
     x = signals.rhythm(t, np.full(n, 75.0), shape, noise_std=0.1, rng=rng)
     x[n // 5:n // 5 + 40] = np.nan
     x[n // 3] = np.inf
+    x[n // 3 + 7:n // 3 + 10] = [1e6, -1e15, 1e30]
+    x[n // 3 + 500:n // 3 + 502] = [1e308, -1e308]
     x[n // 2:n // 2 + 60] = x[n // 2]  # flat line
     x[2 * n // 3:] = np.minimum(x[2 * n // 3:], 0.3)  # clipping at a rail
     return t, x
@@ -50,32 +59,38 @@ def assert_analysis(got, want, label):
     np.testing.assert_allclose(got.values, want["values"], rtol=0, atol=1e-12 * scale,
                                err_msg=f"values {label}")
     np.testing.assert_array_equal(got.timestamps, want["timestamps"], err_msg=label)
-    np.testing.assert_array_equal(got.cum_nonfinite, want["cum_nonfinite"], err_msg=label)
+    np.testing.assert_array_equal(got.cum_rejected, want["cum_rejected"], err_msg=label)
     np.testing.assert_array_equal(got.cum_stuck, want["cum_stuck"], err_msg=label)
 
 
 def as_dict(analysis):
     return {"values": analysis.values, "timestamps": analysis.timestamps,
-            "cum_nonfinite": analysis.cum_nonfinite, "cum_stuck": analysis.cum_stuck}
+            "cum_rejected": analysis.cum_rejected, "cum_stuck": analysis.cum_stuck}
 
 
-@pytest.mark.parametrize("kind,quantity,decimation",
-                         [("ppg", "hr", 5), ("ecg", "hr", 5), ("resp", "rr", 25),
-                          ("acc", "hr", 1), ("ppg", "hr", 3)])
-def test_streaming_equals_batch_and_loop_after_every_update(rng, kind, quantity, decimation):
+@pytest.mark.parametrize("kind,quantity,decimation,window_s",
+                         [("ppg", "hr", 5, 8.0), ("ecg", "hr", 5, 8.0), ("resp", "rr", 25, 32.0),
+                          ("acc", "hr", 1, 8.0), ("ppg", "hr", 3, 8.0), ("ppg", "hr", 5, None)])
+def test_streaming_equals_batch_and_loop_after_every_update(rng, kind, quantity, decimation,
+                                                            window_s):
+    """With the running range of the path's window (None: without one), chunks of every
+    size including single samples."""
     n = 4000
     t, x = dirty_signal(rng, n, kind)
-    pre = Preprocessor(kind, quantity, FS, decimation)
-    loop = preprocess_loop.preprocess(x, t, pre.chain, decimation, pre.min_run)
-    batch = preprocess_batch(x, t, pre.chain, decimation, pre.min_run)
+    limiter = NO_LIMIT if window_s is None else Limiter.for_window(window_s, FS)
+    pre = Preprocessor(kind, quantity, FS, decimation, limiter)
+    loop = preprocess_loop.preprocess(x, t, pre.chain, decimation, pre.min_run,
+                                      None if window_s is None else limiter)
+    batch = preprocess_batch(x, t, pre.chain, decimation, pre.min_run, limiter=limiter)
     assert_analysis(batch, loop, "batch vs loop")
+    assert_analysis(pre.batch(x, t), loop, "Preprocessor.batch vs loop")
     got = []
     k = 0
     for size in chunks(rng, n):
         got.append(pre.update(x[k:k + size], t[k:k + size]))
         k += size
         so_far = SimpleNamespace(**{f: np.concatenate([getattr(a, f) for a in got]) for f in
-                                    ("values", "timestamps", "cum_nonfinite", "cum_stuck")})
+                                    ("values", "timestamps", "cum_rejected", "cum_stuck")})
         done = k // decimation
         assert len(so_far.values) == done
         assert_analysis(so_far, {f: v[:done] for f, v in loop.items()}, f"after {k} samples")
@@ -86,6 +101,7 @@ def test_streaming_equals_batch_and_loop_after_every_update(rng, kind, quantity,
 def test_zero_phase_batch_is_scipy_filtfilt(rng):
     t, x = dirty_signal(rng, 3000)
     x = np.nan_to_num(x, nan=0.0, posinf=0.0)
+    x[np.abs(x) > 10.0] = 0.0  # the spikes: nothing for the batch path to reject
     chain = design_chain("ppg", "hr", FS, 25.0)
     out = preprocess_batch(x, t, chain, 5, 15, zero_phase=True)
     want = signal.sosfiltfilt(chain.pre, x)[4::5]
@@ -182,8 +198,104 @@ def test_flat_and_nonfinite_samples_are_counted(rng):
     x[400:500] = 2.5             # 100 identical: stuck from the min_run-th on
     pre = Preprocessor("ppg", "hr", FS, 1)
     out = pre.update(x, t)
-    assert out.cum_nonfinite[-1] == 50
+    assert out.cum_rejected[-1] == 50
     assert out.cum_stuck[-1] == 100 - pre.min_run + 1
+
+
+# ------------------------------------------------------------------ the running range
+
+
+def pulse(rng, seconds, rate=75.0, shape=signals.dicrotic_pulse, noise=0.05):
+    t = np.arange(int(seconds * FS)) / FS
+    return t, signals.rhythm(t, np.full(len(t), rate), shape, noise_std=noise, rng=rng)
+
+
+@pytest.mark.parametrize("amplitude", [1e6, 1e15, 1e30, 1e308])
+def test_spikes_are_rejected_and_counted_and_the_filters_stay_finite(rng, amplitude):
+    """Three samples of +-amplitude after the range is learnt: exactly they are rejected
+    (held at the last accepted value, counted), and the filtered signal equals that of
+    the record with those three samples replaced by the held value."""
+    t, x = pulse(rng, 20.0)
+    k = int(12.0 * FS)
+    spiky = x.copy()
+    spiky[k:k + 3] = [amplitude, -amplitude, amplitude]
+    held = x.copy()
+    held[k:k + 3] = x[k - 1]
+    for kind in ("ppg", "ecg"):
+        pre = Preprocessor(kind, "hr", FS, 5, Limiter.for_window(8.0, FS))
+        out = pre.update(spiky, t)
+        assert np.all(np.isfinite(out.values))
+        assert out.cum_rejected[-1] == 3
+        clean = Preprocessor(kind, "hr", FS, 5, NO_LIMIT).update(held, t)
+        np.testing.assert_allclose(out.values, clean.values, rtol=1e-12, atol=1e-15)
+
+
+def test_samples_beyond_max_abs_are_rejected_from_the_first_sample(rng):
+    """No history is needed to refuse a value no signal can have: the filters never see
+    it, even before the range is learnt."""
+    t, x = pulse(rng, 3.0)
+    x[[0, 5, 6]] = [1e308, -1e200, 2 * MAX_ABS]
+    x[7] = MAX_ABS  # the bound itself is accepted
+    accepted = limit_batch(Limiter.for_window(8.0, FS), x)
+    assert np.flatnonzero(~accepted).tolist() == [0, 5, 6]
+    out = Preprocessor("ecg", "hr", FS, 5, NO_LIMIT).update(x, t)
+    assert np.all(np.isfinite(out.values)) and out.cum_rejected[-1] == 3
+
+
+@pytest.mark.parametrize("kind,shape,rate,window_s", [
+    ("ppg", signals.dicrotic_pulse, 75.0, 8.0), ("ppg", signals.sharp_pulse, 40.0, 8.0),
+    ("ecg", signals.ecg_like, 30.0, 8.0), ("ecg", signals.ecg_like, 180.0, 8.0),
+    ("resp", signals.dicrotic_pulse, 4.0, 32.0), ("resp", signals.dicrotic_pulse, 40.0, 32.0)])
+def test_clean_rhythms_lose_no_sample(rng, kind, shape, rate, window_s):
+    """A clean rhythm at the slow and fast ends of its band, whose amplitude and level
+    also drift by half over the record, keeps every sample: the range never rejects
+    normal signal (ECG at 30 per minute: a narrow R wave in one block of eight)."""
+    t = np.arange(int(120 * FS)) / FS
+    drift = 1.0 + 0.5 * np.sin(2 * np.pi * t / 60.0)
+    x = drift * signals.rhythm(t, np.full(len(t), rate), shape, noise_std=0.02, rng=rng) \
+        + 0.5 * np.sin(2 * np.pi * t / 45.0)
+    assert limit_batch(Limiter.for_window(window_s, FS), x).all()
+
+
+def test_a_lasting_jump_is_rejected_for_at_most_rank_blocks_then_followed(rng):
+    """A sensor re-seated far off the old level: rejected (held) until the third block of
+    the new level completes, then followed; the old level's blocks need not leave the
+    memory first."""
+    t, x = pulse(rng, 30.0)
+    k = int(15.0 * FS) + 7  # inside a block
+    x[k:] += 500.0
+    limiter = Limiter.for_window(8.0, FS)
+    accepted = limit_batch(limiter, x)
+    first_block_after = (k // limiter.block + 1) * limiter.block
+    rejected = np.flatnonzero(~accepted)
+    assert rejected[0] == k and accepted[:k].all()
+    # The block holding the jump and the next two complete the third block of the new level.
+    assert rejected[-1] == first_block_after + 2 * limiter.block - 1
+    assert accepted[rejected[-1] + 1:].all()
+
+
+def test_limit_step_equals_limit_batch_for_any_chunking(rng):
+    t, x = dirty_signal(rng, 5000)
+    limiter = Limiter.for_window(8.0, FS)
+    want = limit_batch(limiter, x)
+    state = limiter.initial_state()
+    got, k = [], 0
+    for size in chunks(rng, len(x)):
+        got.append(limit_step(limiter, state, x[k:k + size]))
+        k += size
+    np.testing.assert_array_equal(np.concatenate(got), want)
+    assert (~want).sum() >= 45  # the NaN burst, the inf, the five spikes
+
+
+def test_limiter_learns_over_one_window():
+    assert LIMIT_BLOCK_S == 0.25
+    assert Limiter.for_window(8.0, 125.0) == Limiter(31, 32)
+    assert Limiter.for_window(32.0, 125.0) == Limiter(31, 128)
+    assert Limiter.for_window(8.0, 2.0) == Limiter(1, 32)  # never shorter than a sample
+    with pytest.raises(ParameterError, match=r"limiter Limiter\(block=4, blocks=2, rank=3, "
+                                             r"margin=6.0\) must have block >= 0, blocks >= "
+                                             r"rank >= 1 and margin >= 0"):
+        Limiter(4, blocks=2)
 
 
 # ------------------------------------------------------------------ parameter errors

@@ -23,6 +23,10 @@ Sample faults (the values are damaged, the timing is clean):
     re-seated: the baseline jumps; give ``duration_s=inf`` for a lasting jump).
 ``zero``
     the channel is exactly 0 (a channel that is not connected).
+``spike``
+    the samples in the window are ``+value``, ``-value``, ``+value``, ... (a glitching
+    converter or a loose contact: a few samples far outside the signal; give a window of
+    two or three sample periods).
 
 Timing faults (the values are clean, the timing is damaged):
 
@@ -55,7 +59,7 @@ from typing import Iterable, Iterator, Sequence
 
 import numpy as np
 
-SAMPLE_FAULTS = ("nan", "inf", "flat", "clip", "dc", "zero")
+SAMPLE_FAULTS = ("nan", "inf", "flat", "clip", "dc", "zero", "spike")
 TIMING_FAULTS = ("drop", "duplicate", "reorder", "clock_jump", "rate")
 KINDS = SAMPLE_FAULTS + TIMING_FAULTS
 
@@ -65,8 +69,9 @@ class Fault:
     """One fault on the clean stream-time window ``[start_s, start_s + duration_s)``.
 
     ``channel`` is the column it damages (None: every column; sample faults only).
-    ``value`` is the DC step (``dc``), the clock step in seconds (``clock_jump``) or the
-    clock-speed factor (``rate``). ``low`` and ``high`` are the rails of ``clip``.
+    ``value`` is the DC step (``dc``), the spike height (``spike``), the clock step in
+    seconds (``clock_jump``) or the clock-speed factor (``rate``). ``low`` and ``high``
+    are the rails of ``clip``.
     """
 
     kind: str
@@ -139,6 +144,9 @@ def _damage_samples(x: np.ndarray, t: np.ndarray, faults: Sequence[Fault],
                 x[inside, c] += fault.value
             elif fault.kind == "zero":
                 x[inside, c] = 0.0
+            elif fault.kind == "spike":
+                k = np.flatnonzero(inside)
+                x[k, c] = np.where(k % 2 == 0, fault.value, -fault.value)
     return x
 
 
@@ -237,6 +245,15 @@ def pulse_signal(duration_s: float, fs: float, rate_per_min, seed: int = 0,
     truth = rate_per_min(t) if callable(rate_per_min) else np.full(len(t), float(rate_per_min))
     x, phase_end = pulse_wave(fs, truth, seed, phase0)
     return x, t, truth, phase_end
+
+
+def breathing_pulse(fs: float, heart_per_min: np.ndarray, breaths_per_min: float,
+                    seed: int = 0) -> np.ndarray:
+    """:func:`pulse_wave` whose amplitude (by 20 %) and baseline (by a tenth of the pulse)
+    follow a breathing rhythm, so that breathing shows in the pulse's modulations."""
+    breath = np.sin(2 * np.pi * breaths_per_min / 60.0 * np.arange(len(heart_per_min)) / fs)
+    x, _ = pulse_wave(fs, heart_per_min, seed=seed)
+    return (1.0 + 0.2 * breath) * x + 0.1 * breath
 
 
 def feed(monitor, chunks) -> list:

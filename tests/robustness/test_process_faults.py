@@ -269,8 +269,8 @@ class FillingDisk(io.RawIOBase):
     """A file on a disk with ``room`` bytes left: the write that does not fit stores
     what fits, then fails with ENOSPC, as a full disk does."""
 
-    def __init__(self, path: Path, room: int):
-        self._file = open(path, "wb")
+    def __init__(self, fd: int, room: int):
+        self._file = open(fd, "wb")
         self.room = room
 
     def writable(self) -> bool:
@@ -298,9 +298,11 @@ class FillingDisk(io.RawIOBase):
 
 
 def open_on_filling_disk(room: int):
-    def opener(path, mode="r", encoding=None, newline=None, **_):
-        assert "w" in mode
-        return io.TextIOWrapper(io.BufferedWriter(FillingDisk(Path(path), room)),
+    """Stands in for ``open`` in the estimate log module, which opens the file
+    descriptor it created exclusively."""
+    def opener(fd, mode="r", encoding=None, newline=None, **_):
+        assert "w" in mode and isinstance(fd, int)
+        return io.TextIOWrapper(io.BufferedWriter(FillingDisk(fd, room)),
                                 encoding=encoding, newline=newline)
     return opener
 

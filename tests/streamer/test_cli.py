@@ -19,6 +19,7 @@ import os
 import subprocess
 import sys
 import uuid
+from datetime import datetime, timedelta
 from pathlib import Path
 
 import numpy as np
@@ -68,14 +69,17 @@ def check_log_format(path, mode: str, source: str, channels: dict):
     assert lines[0] == "# ridgewatch estimate log"
     assert lines[1] == f"# version: {__version__}"
     assert lines[2] == f"# mode: {mode}"
-    assert lines[3] == f"# source: {source}"
-    assert lines[4].startswith("# channels: ")
-    assert json.loads(lines[4][len("# channels: "):]) == channels
-    assert lines[5].startswith("# config: ")
-    config = json.loads(lines[5][len("# config: "):])
+    assert lines[3].startswith("# started: ")
+    started = datetime.fromisoformat(lines[3][len("# started: "):])
+    assert started.utcoffset() == timedelta(0)  # UTC, ISO 8601
+    assert lines[4] == f"# source: {source}"
+    assert lines[5].startswith("# channels: ")
+    assert json.loads(lines[5][len("# channels: "):]) == channels
+    assert lines[6].startswith("# config: ")
+    config = json.loads(lines[6][len("# config: "):])
     assert set(config["profile"]) >= {"name", "hr", "rr"}
-    assert lines[6] == ",".join(COLUMNS)
-    body = [line for line in lines[7:] if not line.startswith("#")]
+    assert lines[7] == ",".join(COLUMNS)
+    body = [line for line in lines[8:] if not line.startswith("#")]
     assert body, f"{path} has no rows"
     assert all(len(line.split(",")) == len(COLUMNS) for line in body)
 

@@ -54,6 +54,11 @@ class BatchOptions:
     fs: float | None = None
     reference_suffixes: tuple = REFERENCE_SUFFIXES
     report: bool = True
+    overwrite: bool = False
+    """Replace the logs of an earlier batch in ``out_dir`` (only ridgewatch logs)."""
+    time_column: str | None = None
+    time_unit: str | None = None
+    """The time column of the CSV recordings, and its unit (other formats state theirs)."""
     extra: dict = field(default_factory=dict)
 
 
@@ -104,11 +109,12 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
     a batch).
     """
     from estimators.config import get_profile
+    from estimators.errors import ParameterError
     from estimators.monitor import offline_estimates
     from streamer.channels import select
     from streamer.runner import Runner
     from streamer.sinks.estimate_log import EstimateLog, read_log
-    from streamer.sources.files import read_recording
+    from streamer.sources.files import read_recording, recording_files
     from streamer.sources.replay import RecordingSource
 
     path = Path(path)
@@ -116,21 +122,33 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
     out = Path(options.out_dir) / stem
     out.mkdir(parents=True, exist_ok=True)
     try:
-        recording = read_recording(path, fs=options.fs)
+        is_csv = path.name.lower().endswith((".csv", ".csv.gz", ".tsv", ".tsv.gz"))
+        recording = read_recording(path, fs=options.fs,
+                                   time_column=options.time_column if is_csv else None,
+                                   time_unit=options.time_unit if is_csv else None)
         selected = select(recording.info, list(options.channels) or None)
         profile = get_profile(options.profile)
         mapping = {s.name: s.kind for s in selected}
         config = {"profile": profile.to_dict(), "fs": recording.info.fs}
+        if_exists = "overwrite" if options.overwrite else "refuse"
+        inputs = recording_files(path)
+        try:
+            runner = Runner(RecordingSource(recording, chunk_s=1.0), selected, profile)
+        except ParameterError as exc:
+            raise InputError(f"{path}: {exc}") from None
         live_path = out / "live.csv"
-        log = EstimateLog(live_path, "replay", str(path), mapping, dict(config, mode="replay"))
-        Runner(RecordingSource(recording, chunk_s=1.0), selected, profile, log=log).run()
+        runner.log = EstimateLog(live_path, "replay", str(path), mapping,
+                                 dict(config, mode="replay"), if_exists=if_exists,
+                                 inputs=inputs)
+        runner.run()
         offline_path = out / "offline.csv"
         estimates = offline_estimates(recording.samples[:, [s.index for s in selected]],
                                       recording.timestamps,
                                       [(s.name, s.kind) for s in selected],
                                       recording.info.fs, profile)
         with EstimateLog(offline_path, "offline", str(path), mapping,
-                         dict(config, mode="offline")) as off:
+                         dict(config, mode="offline"), if_exists=if_exists,
+                         inputs=inputs) as off:
             for est in estimates:
                 off.write(est)
         references = find_references(path, options.reference_suffixes)

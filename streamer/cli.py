@@ -29,6 +29,7 @@ CAUTION = ("ridgewatch is a research tool, not a medical device: it must not be 
 
 DEMO_NAME = "cycling_trial.csv.gz"
 TIME_UNIT_CHOICES = ("s", "ms", "us", "ns")  # streamer.sources.files.TIME_UNITS
+FS_RANGE_HZ = (1.0, 100_000.0)  # streamer.sources.files.FS_RANGE_HZ (kept light to import)
 
 
 def replay_chunk_s(speed: float) -> float:
@@ -62,6 +63,19 @@ def _positive(text: str) -> float:
     return value
 
 
+def _rate_hz(text: str) -> float:
+    """A sampling rate: finite, within :data:`FS_RANGE_HZ`."""
+    low, high = FS_RANGE_HZ
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of Hz")
+    if not low <= value <= high:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} must be a sampling rate between {low:g} and {high:g} Hz")
+    return value
+
+
 def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> None:
     p.add_argument("--channel", action="append", metavar="NAME=KIND",
                    help="use channel NAME (label or 0-based index) as KIND: ppg, ecg, resp "
@@ -92,7 +106,7 @@ def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> Non
 
 
 def _csv_time(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--fs", type=_positive, metavar="HZ",
+    p.add_argument("--fs", type=_rate_hz, metavar="HZ",
                    help="sampling rate of a CSV without a time column (with one, it must "
                         "agree with the column to within 1 %%)")
     p.add_argument("--time-column", metavar="NAME",
@@ -139,7 +153,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("simulate",
                        help="publish the synthetic cycling trial as an LSL stream (no hardware)")
     p.add_argument("--name", default="ridgewatch-sim", help="stream name (default ridgewatch-sim)")
-    p.add_argument("--fs", type=_positive, default=125.0, help="sampling rate (default 125)")
+    p.add_argument("--fs", type=_rate_hz, default=125.0, help="sampling rate (default 125)")
     p.add_argument("--speed", type=_speed, default=1.0, help="N x real time (default 1)")
     p.add_argument("--duration", type=_positive, metavar="SECONDS",
                    help="stop after this many wall-clock seconds (default: loop until Ctrl-C)")
@@ -163,7 +177,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--against", required=True, metavar="OTHER",
                    help="another estimate log, beat/breath times (WFDB annotation or CSV "
                         "of times) or a CSV of time,rate")
-    p.add_argument("--against-fs", type=_positive, metavar="HZ",
+    p.add_argument("--against-fs", type=_rate_hz, metavar="HZ",
                    help="sampling rate of sample numbers in OTHER (a CSV column of event "
                         "sample numbers, or WFDB annotations without their header)")
     p.add_argument("--against-column", metavar="NAME",
@@ -239,9 +253,20 @@ def find_demo() -> Path | None:
 
 
 def _profile(args):
+    """The chosen profile with ``--hop``, which must lie between one heart-rate analysis
+    sample (a shorter hop repeats estimates; a much shorter one runs for hours) and the
+    shortest window (a longer hop skips samples)."""
     profile = get_profile(args.profile)
-    if getattr(args, "hop", None):
-        profile = profile.with_hop(args.hop)
+    hop_s = getattr(args, "hop", None)
+    if hop_s is not None:
+        low = 1.0 / profile.hr.analysis_fs
+        high = min(profile.hr.window_s, profile.rr.window_s, profile.rr_pulse.window_s)
+        if not low <= hop_s <= high:
+            raise InputError(
+                f"--hop {hop_s:g} s must be between {low:g} s (one analysis sample; a shorter "
+                f"hop only repeats estimates) and {high:g} s (the heart-rate window of "
+                f"profile {profile.name})")
+        profile = profile.with_hop(hop_s)
     return profile
 
 

@@ -293,6 +293,7 @@ def _read_csv(path: Path, given: str, fs: float | None, time_column: str | None 
         raise InputError(f"{given}: cannot read: {reason}") from None
     if raw.startswith(b"\xef\xbb\xbf"):  # UTF-8 byte order mark from spreadsheet exports
         raw = raw[3:]
+    raw = _plain_text(raw, given)
 
     # Header: the first line that is neither empty nor a '#' comment.
     pos, line_no = 0, 0
@@ -387,6 +388,35 @@ def _read_csv(path: Path, given: str, fs: float | None, time_column: str | None 
     channels = tuple(ChannelInfo(names[i], None, _bracket_unit(names[i])) for i in channel_columns)
     info = SourceInfo(name=given, fs=nominal_fs, channels=channels, source_id=_source_id(path))
     return Recording(np.ascontiguousarray(data[:, channel_columns]), timestamps, info)
+
+
+_CONTROL_BYTES = re.compile(rb"[\x00-\x08\x0e-\x1f]")
+_TEXT_CHECK_BYTES = 1 << 16
+
+
+def _plain_text(raw: bytes, given: str) -> bytes:
+    """The CSV bytes with lines ending in ``\\n``, or :class:`InputError` for a file
+    that is not text.
+
+    A text CSV holds no control characters other than tab, line ends and form feeds:
+    the first 64 KiB are checked for them (a binary file shows them at once), the whole
+    file for NUL bytes (the holes a crashed writer can leave). Line ends written as
+    ``\\r`` alone (classic Mac OS) are read as line ends.
+    """
+    if raw.startswith((b"\xff\xfe", b"\xfe\xff")):
+        raise InputError(f"{given}: the file is UTF-16 text; save it as UTF-8 (or ASCII) CSV")
+    bad = _CONTROL_BYTES.search(raw, 0, _TEXT_CHECK_BYTES)
+    k = bad.start() if bad else raw.find(b"\0")
+    if k >= 0:
+        what = "a NUL byte" if raw[k] == 0 else f"the control character 0x{raw[k]:02x}"
+        line = raw.count(b"\n", 0, k) + 1
+        raise InputError(
+            f"{given}: byte {k} (line {line}) is {what}, which a CSV file never holds; the "
+            "file is binary or damaged: check that it is the right file"
+        )
+    if b"\r" in raw and raw.count(b"\r") != raw.count(b"\r\n"):
+        raw = raw.replace(b"\r\n", b"\n").replace(b"\r", b"\n")
+    return raw
 
 
 def _is_number(text: str) -> bool:

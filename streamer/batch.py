@@ -94,6 +94,12 @@ def find_recordings(folder, pattern: str | None = None) -> list[Path]:
     return recordings
 
 
+def log_paths(path: Path, out_dir) -> tuple[Path, Path]:
+    """The live and offline logs :func:`process_recording` writes for ``path``."""
+    out = Path(out_dir) / recording_stem(path)
+    return out / "live.csv", out / "offline.csv"
+
+
 def find_references(path: Path, suffixes) -> list[tuple[Path, str | None]]:
     """Every reference beside ``path`` with the quantity it holds."""
     stem = recording_stem(path)
@@ -119,7 +125,8 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
 
     path = Path(path)
     stem = recording_stem(path)
-    out = Path(options.out_dir) / stem
+    live_path, offline_path = log_paths(path, options.out_dir)
+    out = live_path.parent
     out.mkdir(parents=True, exist_ok=True)
     try:
         is_csv = path.name.lower().endswith((".csv", ".csv.gz", ".tsv", ".tsv.gz"))
@@ -136,12 +143,10 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
             runner = Runner(RecordingSource(recording, chunk_s=1.0), selected, profile)
         except ParameterError as exc:
             raise InputError(f"{path}: {exc}") from None
-        live_path = out / "live.csv"
         runner.log = EstimateLog(live_path, "replay", str(path), mapping,
                                  dict(config, mode="replay"), if_exists=if_exists,
                                  inputs=inputs)
         runner.run()
-        offline_path = out / "offline.csv"
         estimates = offline_estimates(recording.samples[:, [s.index for s in selected]],
                                       recording.timestamps,
                                       [(s.name, s.kind) for s in selected],
@@ -199,6 +204,21 @@ def run_batch(folder, options: BatchOptions, pattern: str | None = None, jobs: i
     from streamer.report import write_batch_summary
 
     recordings = find_recordings(folder, pattern)
+    out_dir = Path(options.out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise InputError(f"--out {out_dir}: is a file, not a folder; give a folder for the "
+                         "logs and reports")
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"--out {out_dir}: cannot create the folder ({exc.strerror})") from None
+    earlier = [path for p in recordings for path in log_paths(p, options.out_dir)
+               if os.path.lexists(path)]
+    if earlier and not options.overwrite:
+        more = f" and {len(earlier) - 1} more" if len(earlier) > 1 else ""
+        raise InputError(f"{options.out_dir}: holds the logs of an earlier batch ({earlier[0]}"
+                         f"{more}); give another --out folder, or add --overwrite to replace "
+                         "them")
     jobs = max(1, min(jobs or os.cpu_count() or 1, len(recordings)))
     rows: list[dict] = []
     if jobs == 1:

@@ -241,3 +241,30 @@ def test_odd_names_read_back_with_the_log_reader_and_the_csv_module(tmp_path):
     assert [r[3] for r in rows[1:]] == list(table.columns["source"])
     text = (tmp_path / "odd.csv").read_text(encoding="utf-8")
     assert '# source: "rec\\nwith, \\"odd\\" name.csv"\n' in text
+
+
+# -- batch ---------------------------------------------------------------------------------
+
+
+def test_a_second_batch_into_the_same_folder_is_refused(tmp_path):
+    folder = tmp_path / "recordings"
+    folder.mkdir()
+    recording(folder)
+    args = ["batch", "recordings", "--out", "results", "--jobs", "1", "-q", "--no-report"]
+    assert ridgewatch(tmp_path, *args).returncode == 0
+    logs = {p: p.read_bytes() for p in (tmp_path / "results" / "rec").glob("*.csv")}
+    assert sorted(p.name for p in logs) == ["live.csv", "offline.csv"]
+    line = one_error_line(ridgewatch(tmp_path, *args))
+    assert line == ("ridgewatch: error: results: holds the logs of an earlier batch "
+                    f"({Path('results/rec/live.csv')} and 1 more); give another --out folder, "
+                    "or add --overwrite to replace them")
+    assert {p: p.read_bytes() for p in logs} == logs
+    again = ridgewatch(tmp_path, *args, "--overwrite")
+    assert again.returncode == 0, again.stderr
+    for path in logs:
+        assert path.read_text().count("# ridgewatch estimate log") == 1
+        assert len(read_log(path)) > 0
+    (tmp_path / "file").write_text("x")
+    line = one_error_line(ridgewatch(tmp_path, "batch", "recordings", "--out", "file", "-q"))
+    assert line == ("ridgewatch: error: --out file: is a file, not a folder; give a folder for "
+                    "the logs and reports")

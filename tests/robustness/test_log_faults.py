@@ -268,3 +268,58 @@ def test_a_second_batch_into_the_same_folder_is_refused(tmp_path):
     line = one_error_line(ridgewatch(tmp_path, "batch", "recordings", "--out", "file", "-q"))
     assert line == ("ridgewatch: error: --out file: is a file, not a folder; give a folder for "
                     "the logs and reports")
+
+
+# -- live ------------------------------------------------------------------------------------
+
+
+@pytest.mark.lsl
+def test_live_stream_with_odd_names_gives_a_log_that_reads_back(tmp_path):
+    """An LSL stream whose name holds a line break and quotes, with channel labels that
+    hold a comma, quotes, a line break and non-ASCII letters; found by its source_id."""
+    import threading
+    import uuid
+
+    import pylsl
+
+    from streamer.sources.base import ChannelInfo, Chunk, SourceInfo
+    from streamer.sources.lsl_publish import SamplePublisher
+    from tests.robustness.faults import pulse_wave
+
+    labels = ["PPG, left", 'PPG "right"\nfinger', "Pulsoxymeter \u00e4\u00df"]
+    name = f'ward 3\n"bed, 7" {uuid.uuid4().hex[:8]}'
+    source_id = f"rw-odd-{uuid.uuid4().hex[:12]}"
+    publisher = SamplePublisher(SourceInfo(name, FS, tuple(ChannelInfo(label, "ppg", "au")
+                                                          for label in labels), source_id),
+                                align_to_local_clock=False)
+    stop = threading.Event()
+
+    def send():
+        if not publisher.wait_for_consumers(60.0):
+            return
+        t0, k = pylsl.local_clock(), 0
+        while not stop.is_set():
+            x, _ = pulse_wave(FS, np.full(16, RATE), seed=k)
+            t = t0 + (k + np.arange(16)) / FS
+            publisher.push_chunk(Chunk(np.repeat(x[:, None], len(labels), axis=1), t))
+            k += 16
+            time.sleep(16 / FS / 8)  # 8 x real time
+
+    thread = threading.Thread(target=send, daemon=True)
+    thread.start()
+    try:
+        done = ridgewatch(tmp_path, "live", "--source-id", source_id, "--timeout", "10",
+                          "--display", "none", "--duration", "8", "--log", "live.csv")
+    finally:
+        stop.set()
+        thread.join(10)
+        publisher.close()
+    assert done.returncode == 0, done.stderr
+    table = read_log(tmp_path / "live.csv")
+    assert table.header["source"] == name and table.header["mode"] == "live"
+    assert table.header["channels"] == {label: "ppg" for label in labels}
+    assert datetime.fromisoformat(table.header["started"]).utcoffset().total_seconds() == 0
+    assert set(labels) <= {s for _, s in table.pairs()} <= set(labels) | {"fused"}
+    with open(tmp_path / "live.csv", encoding="utf-8", newline="") as fh:
+        rows = [r for r in csv.reader(fh) if r and not r[0].startswith("#")]
+    assert [r[3] for r in rows[1:]] == list(table.columns["source"])

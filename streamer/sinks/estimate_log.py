@@ -490,6 +490,16 @@ def _is_num(cell: str) -> bool:
         return False
 
 
+def drop_cell(row: str, column: str = "compute_ms") -> str:
+    """A row's text without the cell of ``column``: for comparing the rows of two runs
+    of one input, whose only differing cell is the compute time."""
+    cells = next(csv.reader([row]))
+    del cells[COLUMNS.index(column)]
+    buffer = io.StringIO()
+    csv.writer(buffer, lineterminator="").writerow(cells)
+    return buffer.getvalue()
+
+
 def rows_text(path) -> list[str]:
     """The data rows of a log as text lines (for prefix comparisons)."""
     with io.open(path, encoding="utf-8") as fh:

@@ -23,7 +23,7 @@ import pytest
 from estimators.config import DEFAULT_PROFILE, get_profile
 from streamer.channels import select
 from streamer.runner import Runner
-from streamer.sinks.estimate_log import EstimateLog, read_log, rows_text
+from streamer.sinks.estimate_log import EstimateLog, drop_cell, read_log, rows_text
 from streamer.sources.files import read_recording
 from streamer.sources.replay import RecordingSource
 from tests.robustness.faults import pulse_signal, pulse_wave, within_ec13
@@ -62,7 +62,7 @@ def assert_valid_prefix_log(done: subprocess.CompletedProcess, cwd: Path,
     assert "Traceback" not in done.stderr
     assert warning in done.stderr, done.stderr
     table = read_log(cwd / "out.csv")
-    rows = [r.rsplit(",", 1)[0] for r in rows_text(cwd / "out.csv")]
+    rows = [drop_cell(r) for r in rows_text(cwd / "out.csv")]
     assert len(table) == len(rows) > 0
     assert len(rows) < len(full_rows)
     assert rows == full_rows[:len(rows)]
@@ -83,7 +83,7 @@ def full_rows(tmp_path: Path, name: str) -> list[str]:
     path = tmp_path / "intact.csv"
     log = EstimateLog(path, "replay", name, {s.name: s.kind for s in selected}, {})
     Runner(source, selected, get_profile(DEFAULT_PROFILE), log=log).run()
-    rows = [r.rsplit(",", 1)[0] for r in rows_text(path)]
+    rows = [drop_cell(r) for r in rows_text(path)]
     assert len(rows) > 50
     return rows
 
@@ -405,4 +405,4 @@ def test_cr_line_ends_read_like_newlines(tmp_path, line_end):
     (tmp_path / "cr.csv").write_bytes(csv_text(x, t).replace("\n", line_end).encode())
     done = replay(tmp_path, "cr.csv")
     assert done.returncode == 0, done.stderr
-    assert [r.rsplit(",", 1)[0] for r in rows_text(tmp_path / "out.csv")] == rows
+    assert [drop_cell(r) for r in rows_text(tmp_path / "out.csv")] == rows

@@ -27,7 +27,7 @@ import pytest
 
 from estimators.config import DEFAULT_PROFILE, PROFILES
 from streamer import __version__, cli
-from streamer.sinks.estimate_log import COLUMNS, read_log, rows_text
+from streamer.sinks.estimate_log import COLUMNS, drop_cell, read_log, rows_text
 from streamer.sources.files import read_recording
 
 REPO_ROOT = Path(__file__).resolve().parents[2]
@@ -59,8 +59,8 @@ def start_cli(*args, cwd) -> subprocess.Popen:
 
 
 def rows_without_compute(path) -> list[str]:
-    """Data rows as text minus the last cell (compute_ms, the only run-dependent one)."""
-    return [row.rsplit(",", 1)[0] for row in rows_text(path)]
+    """Data rows as text minus the compute_ms cell (the only run-dependent one)."""
+    return [drop_cell(row) for row in rows_text(path)]
 
 
 def check_log_format(path, mode: str, source: str, channels: dict):

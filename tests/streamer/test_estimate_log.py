@@ -12,7 +12,8 @@ import pytest
 from estimators.estimate import Estimate
 from streamer import __version__
 from streamer.errors import InputError
-from streamer.sinks.estimate_log import COLUMNS, EstimateLog, format_row, read_log, rows_text
+from streamer.sinks.estimate_log import (COLUMNS, EstimateLog, drop_cell, format_row, read_log,
+                                         rows_text)
 
 CHANNELS = {"PLETH": "ppg", "RESP": "resp"}
 CONFIG = {"profile": {"name": "wrist", "hr": {"window_s": 8.0}}, "fs": 125.0, "speed": "max"}
@@ -84,7 +85,8 @@ def test_text_layout(tmp_path, rng):
     assert rows_text(tmp_path / "a.csv") == lines[8:]
     assert lines[8] == format_row(ests[0], 0.0).rstrip("\n")
     no_rate = Estimate("hr", "PLETH", 1.0, 5.0, math.nan, 0.5, 0.25)
-    assert format_row(no_rate, math.nan) == "5.0000,1.0000,hr,PLETH,,0.5000,0.2500,4.0000,\n"
+    assert format_row(no_rate, math.nan) == ("5.0000,1.0000,hr,PLETH,,0.5000,0.2500,4.0000,,"
+                                              "withhold\n")
 
 
 def test_partial_last_line_is_ignored(tmp_path, rng):
@@ -173,7 +175,7 @@ def test_bad_number_names_the_line(tmp_path, rng):
         read_log(path)
 
 
-@pytest.mark.parametrize("cells", [3, 10])
+@pytest.mark.parametrize("cells", [3, 11])
 def test_wrong_number_of_cells_names_the_line(tmp_path, rng, cells):
     ests = estimates(rng, 4)
     path = tmp_path / "a.csv"
@@ -181,7 +183,7 @@ def test_wrong_number_of_cells_names_the_line(tmp_path, rng, cells):
     with open(path, "a") as fh:
         fh.write(",".join(["1.0"] * cells) + "\n")
         fh.write(format_row(ests[0], 0.0))
-    with pytest.raises(InputError, match=rf"a\.csv, line 17: {cells} cells instead of 9"):
+    with pytest.raises(InputError, match=rf"a\.csv, line 17: {cells} cells instead of 10"):
         read_log(path)
 
 
@@ -384,3 +386,11 @@ def test_numbered_names_never_replace_a_file(tmp_path):
 
 def test_a_device_is_written_as_it_is(tmp_path):
     EstimateLog("/dev/null", "live", "s", CHANNELS, CONFIG).close()
+
+
+def test_drop_cell_leaves_out_one_column_by_name():
+    est = Estimate("hr", "PPG, left", 4.0, 8.0, 72.0, 0.5, 0.75)
+    row = format_row(est, 1.25).rstrip("\n")
+    assert row == f'8.0000,4.0000,hr,"PPG, left",72.000,0.5000,0.7500,4.0000,1.2500,{est.display}'
+    assert drop_cell(row) == row.replace(",1.2500,", ",")
+    assert drop_cell(row, "display") == row.rsplit(",", 1)[0]

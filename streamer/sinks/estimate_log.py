@@ -492,8 +492,11 @@ def _is_num(cell: str) -> bool:
 
 def drop_cell(row: str, column: str = "compute_ms") -> str:
     """A row's text without the cell of ``column``: for comparing the rows of two runs
-    of one input, whose only differing cell is the compute time."""
+    of one input, whose only differing cell is the compute time. A row cut short before
+    that cell (an interrupted writer) comes back as it is."""
     cells = next(csv.reader([row]))
+    if len(cells) <= COLUMNS.index(column):
+        return row
     del cells[COLUMNS.index(column)]
     buffer = io.StringIO()
     csv.writer(buffer, lineterminator="").writerow(cells)

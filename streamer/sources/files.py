@@ -129,7 +129,8 @@ def read_recording(
     column may give its unit in brackets or after a separator (``time [ms]``,
     ``t (s)``, ``timestamp_us``, ``time_ns``); without one it is read as seconds if that
     gives at least :data:`IMPLICIT_SECONDS_MIN_HZ`, else refused with a hint. Timestamps
-    are always seconds. The rate of a time column is :math:`L / \operatorname{median}_k(t_{k+L} - t_k)` with
+    are always seconds. The rate of a time column is
+    :math:`L / \operatorname{median}_k(t_{k+L} - t_k)` with
     :math:`L = 100` samples (see :func:`_rate_from_times`). A time column that repeats
     times but lies within one sample period of a regular grid at that rate is replaced
     by the grid, with a warning; one that goes backwards is refused.

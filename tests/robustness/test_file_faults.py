@@ -352,8 +352,9 @@ def test_fs_that_contradicts_the_time_column_is_one_error_line(tmp_path):
 @pytest.mark.parametrize("times, expected", [
     (lambda t: np.full_like(t, 12.5), "time column 'time' does not increase (every row holds "
                                       "12.5); fix the time column, or drop it and pass --fs HZ"),
-    (lambda t: np.floor(t / 10) * 10, "time column 'time' does not increase (most rows repeat the time "
-                            "before them); fix the time column, or drop it and pass --fs HZ"),
+    (lambda t: np.floor(t / 10) * 10,
+     "time column 'time' does not increase (most rows repeat the time before them); fix the "
+     "time column, or drop it and pass --fs HZ"),
 ])
 def test_time_column_that_does_not_increase_is_one_error_line(tmp_path, times, expected):
     x, t = pulse()

@@ -233,7 +233,8 @@ def test_odd_names_read_back_with_the_log_reader_and_the_csv_module(tmp_path):
     # The run's wall-clock start, in UTC (written to the millisecond).
     started = datetime.fromisoformat(table.header["started"])
     assert started.utcoffset().total_seconds() == 0
-    assert before.timestamp() - 1e-3 <= started.timestamp() <= datetime.now(timezone.utc).timestamp()
+    after = datetime.now(timezone.utc)
+    assert before.timestamp() - 1e-3 <= started.timestamp() <= after.timestamp()
 
     with open(tmp_path / "odd.csv", encoding="utf-8", newline="") as fh:
         rows = [r for r in csv.reader(fh) if r and not r[0].startswith("#")]

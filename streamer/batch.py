@@ -54,6 +54,11 @@ class BatchOptions:
     fs: float | None = None
     reference_suffixes: tuple = REFERENCE_SUFFIXES
     report: bool = True
+    overwrite: bool = False
+    """Replace the logs of an earlier batch in ``out_dir`` (only ridgewatch logs)."""
+    time_column: str | None = None
+    time_unit: str | None = None
+    """The time column of the CSV recordings, and its unit (other formats state theirs)."""
     extra: dict = field(default_factory=dict)
 
 
@@ -89,6 +94,12 @@ def find_recordings(folder, pattern: str | None = None) -> list[Path]:
     return recordings
 
 
+def log_paths(path: Path, out_dir) -> tuple[Path, Path]:
+    """The live and offline logs :func:`process_recording` writes for ``path``."""
+    out = Path(out_dir) / recording_stem(path)
+    return out / "live.csv", out / "offline.csv"
+
+
 def find_references(path: Path, suffixes) -> list[tuple[Path, str | None]]:
     """Every reference beside ``path`` with the quantity it holds."""
     stem = recording_stem(path)
@@ -104,33 +115,45 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
     a batch).
     """
     from estimators.config import get_profile
+    from estimators.errors import ParameterError
     from estimators.monitor import offline_estimates
     from streamer.channels import select
     from streamer.runner import Runner
     from streamer.sinks.estimate_log import EstimateLog, read_log
-    from streamer.sources.files import read_recording
+    from streamer.sources.files import read_recording, recording_files
     from streamer.sources.replay import RecordingSource
 
     path = Path(path)
     stem = recording_stem(path)
-    out = Path(options.out_dir) / stem
+    live_path, offline_path = log_paths(path, options.out_dir)
+    out = live_path.parent
     out.mkdir(parents=True, exist_ok=True)
     try:
-        recording = read_recording(path, fs=options.fs)
+        is_csv = path.name.lower().endswith((".csv", ".csv.gz", ".tsv", ".tsv.gz"))
+        recording = read_recording(path, fs=options.fs,
+                                   time_column=options.time_column if is_csv else None,
+                                   time_unit=options.time_unit if is_csv else None)
         selected = select(recording.info, list(options.channels) or None)
         profile = get_profile(options.profile)
         mapping = {s.name: s.kind for s in selected}
         config = {"profile": profile.to_dict(), "fs": recording.info.fs}
-        live_path = out / "live.csv"
-        log = EstimateLog(live_path, "replay", str(path), mapping, dict(config, mode="replay"))
-        Runner(RecordingSource(recording, chunk_s=1.0), selected, profile, log=log).run()
-        offline_path = out / "offline.csv"
+        if_exists = "overwrite" if options.overwrite else "refuse"
+        inputs = recording_files(path)
+        try:
+            runner = Runner(RecordingSource(recording, chunk_s=1.0), selected, profile)
+        except ParameterError as exc:
+            raise InputError(f"{path}: {exc}") from None
+        runner.log = EstimateLog(live_path, "replay", str(path), mapping,
+                                 dict(config, mode="replay"), if_exists=if_exists,
+                                 inputs=inputs)
+        runner.run()
         estimates = offline_estimates(recording.samples[:, [s.index for s in selected]],
                                       recording.timestamps,
                                       [(s.name, s.kind) for s in selected],
                                       recording.info.fs, profile)
         with EstimateLog(offline_path, "offline", str(path), mapping,
-                         dict(config, mode="offline")) as off:
+                         dict(config, mode="offline"), if_exists=if_exists,
+                         inputs=inputs) as off:
             for est in estimates:
                 off.write(est)
         references = find_references(path, options.reference_suffixes)
@@ -181,6 +204,21 @@ def run_batch(folder, options: BatchOptions, pattern: str | None = None, jobs: i
     from streamer.report import write_batch_summary
 
     recordings = find_recordings(folder, pattern)
+    out_dir = Path(options.out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise InputError(f"--out {out_dir}: is a file, not a folder; give a folder for the "
+                         "logs and reports")
+    try:
+        out_dir.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InputError(f"--out {out_dir}: cannot create the folder ({exc.strerror})") from None
+    earlier = [path for p in recordings for path in log_paths(p, options.out_dir)
+               if os.path.lexists(path)]
+    if earlier and not options.overwrite:
+        more = f" and {len(earlier) - 1} more" if len(earlier) > 1 else ""
+        raise InputError(f"{options.out_dir}: holds the logs of an earlier batch ({earlier[0]}"
+                         f"{more}); give another --out folder, or add --overwrite to replace "
+                         "them")
     jobs = max(1, min(jobs or os.cpu_count() or 1, len(recordings)))
     rows: list[dict] = []
     if jobs == 1:

@@ -28,6 +28,8 @@ CAUTION = ("ridgewatch is a research tool, not a medical device: it must not be 
            "diagnosis or treatment. Defer to licensed clinical practice and local regulations.")
 
 DEMO_NAME = "cycling_trial.csv.gz"
+TIME_UNIT_CHOICES = ("s", "ms", "us", "ns")  # streamer.sources.files.TIME_UNITS
+FS_RANGE_HZ = (1.0, 100_000.0)  # streamer.sources.files.FS_RANGE_HZ (kept light to import)
 
 
 def replay_chunk_s(speed: float) -> float:
@@ -61,6 +63,19 @@ def _positive(text: str) -> float:
     return value
 
 
+def _rate_hz(text: str) -> float:
+    """A sampling rate: finite, within :data:`FS_RANGE_HZ`."""
+    low, high = FS_RANGE_HZ
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of Hz")
+    if not low <= value <= high:
+        raise argparse.ArgumentTypeError(
+            f"{text!r} must be a sampling rate between {low:g} and {high:g} Hz")
+    return value
+
+
 def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> None:
     p.add_argument("--channel", action="append", metavar="NAME=KIND",
                    help="use channel NAME (label or 0-based index) as KIND: ppg, ecg, resp "
@@ -70,7 +85,10 @@ def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> Non
     p.add_argument("--hop", type=_positive, metavar="SECONDS",
                    help="time between estimates (default from the profile, 0.25 s)")
     p.add_argument("--log", metavar="PATH",
-                   help="estimate log (CSV); default ridgewatch-logs/<source>-<time>.csv")
+                   help="estimate log (CSV); default ridgewatch-logs/<source>-<time>-<pid>.csv. "
+                        "An existing file is never replaced unless --overwrite is given")
+    p.add_argument("--overwrite", action="store_true",
+                   help="replace the --log file if it exists and is a ridgewatch estimate log")
     p.add_argument("--no-log", action="store_true", help="write no estimate log")
     p.add_argument("--publish", action="store_true",
                    help="publish the estimates as an LSL stream")
@@ -85,6 +103,18 @@ def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> Non
         p.add_argument("--publish-samples", action="store_true",
                        help="also publish the replayed samples as an LSL stream")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress or summary lines")
+
+
+def _csv_time(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--fs", type=_rate_hz, metavar="HZ",
+                   help="sampling rate of a CSV without a time column (with one, it must "
+                        "agree with the column to within 1 %%)")
+    p.add_argument("--time-column", metavar="NAME",
+                   help="CSV: the time column (default: one named time, t, timestamp or "
+                        "starting with 'time')")
+    p.add_argument("--time-unit", choices=TIME_UNIT_CHOICES,
+                   help="CSV: unit of the time column (default: from its name, e.g. "
+                        "time_ms or 'time [ms]', else seconds); logs are always in seconds")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -106,7 +136,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("replay", help="replay a recording (CSV, WFDB, EDF, XDF) into the engine")
     p.add_argument("file", help="recording: .csv, .csv.gz, .hea (WFDB), .edf, .xdf")
-    p.add_argument("--fs", type=_positive, help="sampling rate for a CSV without a time column")
+    _csv_time(p)
     _common(p, speed_default="max")
 
     p = sub.add_parser("demo", help="replay the bundled synthetic demo session")
@@ -123,7 +153,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("simulate",
                        help="publish the synthetic cycling trial as an LSL stream (no hardware)")
     p.add_argument("--name", default="ridgewatch-sim", help="stream name (default ridgewatch-sim)")
-    p.add_argument("--fs", type=_positive, default=125.0, help="sampling rate (default 125)")
+    p.add_argument("--fs", type=_rate_hz, default=125.0, help="sampling rate (default 125)")
     p.add_argument("--speed", type=_speed, default=1.0, help="N x real time (default 1)")
     p.add_argument("--duration", type=_positive, metavar="SECONDS",
                    help="stop after this many wall-clock seconds (default: loop until Ctrl-C)")
@@ -133,11 +163,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("offline", help="non-causal estimates over a whole recording")
     p.add_argument("file")
-    p.add_argument("--fs", type=_positive)
+    _csv_time(p)
     p.add_argument("--channel", action="append", metavar="NAME=KIND")
     p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES))
     p.add_argument("--hop", type=_positive, metavar="SECONDS")
     p.add_argument("--log", metavar="PATH", required=True, help="where to write the log")
+    p.add_argument("--overwrite", action="store_true",
+                   help="replace the --log file if it exists and is a ridgewatch estimate log")
     p.add_argument("-q", "--quiet", action="store_true")
 
     p = sub.add_parser("compare", help="compare an estimate log with another log or a reference")
@@ -145,7 +177,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--against", required=True, metavar="OTHER",
                    help="another estimate log, beat/breath times (WFDB annotation or CSV "
                         "of times) or a CSV of time,rate")
-    p.add_argument("--against-fs", type=_positive, metavar="HZ",
+    p.add_argument("--against-fs", type=_rate_hz, metavar="HZ",
                    help="sampling rate of sample numbers in OTHER (a CSV column of event "
                         "sample numbers, or WFDB annotations without their header)")
     p.add_argument("--against-column", metavar="NAME",
@@ -163,9 +195,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--pattern", help="file pattern, e.g. '*.csv.gz' (default: every format)")
     p.add_argument("--channel", action="append", metavar="NAME=KIND")
     p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES))
-    p.add_argument("--fs", type=_positive)
+    _csv_time(p)
     p.add_argument("--jobs", type=int, help="parallel processes (default: number of cores)")
     p.add_argument("--no-report", action="store_true", help="summary table only")
+    p.add_argument("--overwrite", action="store_true",
+                   help="replace logs of an earlier batch in --out (ridgewatch logs only)")
     p.add_argument("-q", "--quiet", action="store_true")
     return parser
 
@@ -197,14 +231,16 @@ def _screen_available() -> bool:
 
 
 def _default_log_path(source_name: str) -> Path:
-    """``ridgewatch-logs/<source>-<time>.csv``; the source's name reduced to a plain
-    file name (its file stem, or a stream name with anything unusual replaced)."""
+    """``ridgewatch-logs/<source>-<time>-<pid>.csv``; the source's name reduced to a
+    plain file name (its file stem, or a stream name with anything unusual replaced).
+    The process id keeps two runs started in the same second apart; a name that still
+    exists (a second run in this process) gets a number from :class:`EstimateLog`."""
     stem = Path(str(source_name).split(" (")[0]).name
     for suffix in (".gz", ".csv", ".hea", ".edf", ".xdf", ".dat"):
         stem = stem[: -len(suffix)] if stem.endswith(suffix) else stem
     stem = re.sub(r"[^A-Za-z0-9._-]+", "_", stem).strip("._")
     stamp = time.strftime("%Y%m%d-%H%M%S")
-    return Path("ridgewatch-logs") / f"{stem or 'stream'}-{stamp}.csv"
+    return Path("ridgewatch-logs") / f"{stem or 'stream'}-{stamp}-{os.getpid()}.csv"
 
 
 def find_demo() -> Path | None:
@@ -217,9 +253,20 @@ def find_demo() -> Path | None:
 
 
 def _profile(args):
+    """The chosen profile with ``--hop``, which must lie between one heart-rate analysis
+    sample (a shorter hop repeats estimates; a much shorter one runs for hours) and the
+    shortest window (a longer hop skips samples)."""
     profile = get_profile(args.profile)
-    if getattr(args, "hop", None):
-        profile = profile.with_hop(args.hop)
+    hop_s = getattr(args, "hop", None)
+    if hop_s is not None:
+        low = 1.0 / profile.hr.analysis_fs
+        high = min(profile.hr.window_s, profile.rr.window_s, profile.rr_pulse.window_s)
+        if not low <= hop_s <= high:
+            raise InputError(
+                f"--hop {hop_s:g} s must be between {low:g} s (one analysis sample; a shorter "
+                f"hop only repeats estimates) and {high:g} s (the heart-rate window of "
+                f"profile {profile.name})")
+        profile = profile.with_hop(hop_s)
     return profile
 
 
@@ -240,7 +287,16 @@ def _progress_printer(quiet: bool):
     return show
 
 
-def _run(args, source, mode: str, input_id: str) -> int:
+def _if_exists(args) -> str:
+    return "overwrite" if args.overwrite else "refuse"
+
+
+def _engine_error(name: str, exc: ParameterError) -> InputError:
+    """A parameter the engine refuses because of the input (its rate): name the input."""
+    return InputError(f"{name}: {exc}")
+
+
+def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
     from streamer.channels import select
     from streamer.runner import Runner, install_signal_handlers
     from streamer.sinks.estimate_log import EstimateLog
@@ -255,12 +311,19 @@ def _run(args, source, mode: str, input_id: str) -> int:
     if display == "qt" and not _screen_available():
         raise InputError("--display qt needs a screen (DISPLAY is not set); use --display text "
                          "or set QT_QPA_PLATFORM=offscreen")
-    log_sink = None
+    try:
+        runner = Runner(source, selected, profile, duration_s=args.duration)
+    except ParameterError as exc:
+        raise _engine_error(source.info.name, exc) from None
     log_path = None
     if not args.no_log:
-        log_path = Path(args.log) if args.log else _default_log_path(source.info.name)
-        log_sink = EstimateLog(log_path, mode, source.info.name, mapping, config)
-    runner = Runner(source, selected, profile, log=log_sink, duration_s=args.duration)
+        if args.log:
+            runner.log = EstimateLog(args.log, mode, source.info.name, mapping, config,
+                                     if_exists=_if_exists(args), inputs=inputs)
+        else:
+            runner.log = EstimateLog(_default_log_path(source.info.name), mode,
+                                     source.info.name, mapping, config, if_exists="number")
+        log_path = runner.log.path
     if args.publish or getattr(args, "publish_samples", False):
         _quiet_liblsl()
     if args.publish:
@@ -338,13 +401,15 @@ def _run_threaded(runner, display: str, install_signal_handlers):
 
 
 def cmd_replay(args) -> int:
-    from streamer.sources.files import read_recording
+    from streamer.sources.files import read_recording, recording_files
     from streamer.sources.replay import RecordingSource
 
-    recording = read_recording(args.file, fs=args.fs)
+    recording = read_recording(args.file, fs=args.fs, time_column=args.time_column,
+                               time_unit=args.time_unit)
     source = RecordingSource(recording, speed=args.speed, chunk_s=replay_chunk_s(args.speed),
                              progress=_progress_printer(args.quiet or args.display == "text"))
-    return _run(args, source, "replay", recording.info.source_id or str(args.file))
+    return _run(args, source, "replay", recording.info.source_id or str(args.file),
+                inputs=recording_files(args.file))
 
 
 def cmd_demo(args) -> int:
@@ -368,7 +433,7 @@ def cmd_demo(args) -> int:
               f"{'full speed' if math.isinf(args.speed) else f'{args.speed:g}x'}",
               file=sys.stderr)
     source = RecordingSource(recording, speed=args.speed, chunk_s=replay_chunk_s(args.speed))
-    return _run(args, source, "replay", "demo")
+    return _run(args, source, "replay", "demo", inputs=[path] if path is not None else [])
 
 
 def cmd_live(args) -> int:
@@ -446,23 +511,32 @@ def cmd_profiles(args) -> int:
 
 
 def cmd_offline(args) -> int:
-    from estimators.monitor import offline_estimates
+    from estimators.monitor import RateMonitor, offline_estimates
     from streamer.channels import select
     from streamer.sinks.estimate_log import EstimateLog
-    from streamer.sources.files import read_recording
+    from streamer.sources.files import read_recording, recording_files
 
-    recording = read_recording(args.file, fs=args.fs)
+    recording = read_recording(args.file, fs=args.fs, time_column=args.time_column,
+                               time_unit=args.time_unit)
     selected = select(recording.info, args.channel)
     profile = _profile(args)
     samples = recording.samples[:, [s.index for s in selected]]
-    start = time.perf_counter()
-    estimates = offline_estimates(samples, recording.timestamps,
-                                  [(s.name, s.kind) for s in selected], recording.info.fs,
-                                  profile)
-    elapsed = time.perf_counter() - start
     config = {"profile": profile.to_dict(), "fs": recording.info.fs, "mode": "offline"}
-    with EstimateLog(args.log, "offline", recording.info.name,
-                     {s.name: s.kind for s in selected}, config) as out:
+    paths = [(s.name, s.kind) for s in selected]
+    try:  # the settings the engine refuses for this input, before any file is touched
+        RateMonitor(paths, recording.info.fs, profile)
+    except ParameterError as exc:
+        raise _engine_error(recording.info.name, exc) from None
+    # Claimed before the work, so a refused --log costs nothing and no other run can
+    # take the path meanwhile.
+    out = EstimateLog(args.log, "offline", recording.info.name,
+                      {s.name: s.kind for s in selected}, config, if_exists=_if_exists(args),
+                      inputs=recording_files(args.file))
+    with out:
+        start = time.perf_counter()
+        estimates = offline_estimates(samples, recording.timestamps, paths,
+                                      recording.info.fs, profile)
+        elapsed = time.perf_counter() - start
         per_row = 1e3 * elapsed / max(1, len(estimates))
         for est in estimates:
             out.write(est, per_row)
@@ -512,7 +586,8 @@ def cmd_batch(args) -> int:
 
     options = BatchOptions(out_dir=args.out, profile=args.profile,
                            channels=tuple(args.channel or ()), fs=args.fs,
-                           report=not args.no_report)
+                           report=not args.no_report, overwrite=args.overwrite,
+                           time_column=args.time_column, time_unit=args.time_unit)
 
     def progress(done, total, path):
         if not args.quiet:
@@ -532,8 +607,21 @@ COMMANDS = {"batch": cmd_batch, "replay": cmd_replay, "demo": cmd_demo, "live": 
             "compare": cmd_compare}
 
 
+def one_line(text: str) -> str:
+    """``text`` with line breaks and other unprintable characters escaped (``\\n``), so a
+    message that quotes a file or stream name stays one line."""
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in str(text))
+
+
+class _OneLineFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        return one_line(super().format(record))
+
+
 def main(argv=None) -> int:
-    logging.basicConfig(level=logging.WARNING, format="ridgewatch: %(message)s")
+    stderr = logging.StreamHandler()
+    stderr.setFormatter(_OneLineFormatter("ridgewatch: %(message)s"))
+    logging.basicConfig(level=logging.WARNING, handlers=[stderr])  # no-op if configured
     parser = build_parser()
     args = parser.parse_args(argv)
     if getattr(args, "quiet", False):
@@ -541,7 +629,7 @@ def main(argv=None) -> int:
     try:
         return COMMANDS[args.command](args)
     except (InputError, ParameterError) as exc:
-        print(f"ridgewatch: error: {exc}", file=sys.stderr)
+        print(f"ridgewatch: error: {one_line(exc)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("ridgewatch: stopped", file=sys.stderr)

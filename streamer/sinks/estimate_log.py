@@ -7,37 +7,61 @@ Format
        # ridgewatch estimate log
        # version: 0.1.0
        # mode: live            (live | replay | offline)
+       # started: 2026-05-04T09:30:12.345+00:00     (wall clock at the start, UTC, ISO 8601)
        # source: <file path or stream name>
        # channels: {"PLETH": "ppg", ...}            (JSON)
        # config: {...}                               (JSON, the full configuration)
 
-2. One header row with :data:`COLUMNS`, then one row per estimate. Each row is flushed
-   (and ``os.fsync``-ed every ``sync_every_s`` seconds) as it is written, so a Ctrl-C,
+   A value that holds a double quote or a character that is not printable (a line
+   break, a tab) is written as a JSON string (it then starts with ``"``), so every
+   header value is one line, whatever a stream or file is called.
+
+2. One header row with :data:`COLUMNS`, then one row per estimate, written with the
+   :mod:`csv` module (cells quoted where needed, ``\n`` line ends): a channel called
+   ``PPG, left`` or ``"finger"`` reads back as itself. Each row is flushed (and
+   ``os.fsync``-ed every ``sync_every_s`` seconds) as it is written, so a Ctrl-C,
    SIGTERM or a crash of the display never loses a row already written; an interrupted
    log is a valid prefix of the full one.
+
+3. Status lines between rows: ``# event <time_s> <kind>: <message>`` (the message
+   escaped like a header value).
+
+Read it with :func:`read_log`, or with Python's csv module: ``[r for r in
+csv.reader(f) if r and not r[0].startswith("#")]`` gives the header row and the rows.
 
 Times are seconds on the source's stream clock. ``rate_per_min`` is empty when there is
 no estimate; it keeps the engine's rate even when the displays withhold it. ``display``
 (the last column) is what the displays did with the estimate: ``show``, ``grey`` or
 ``withhold`` (:mod:`estimators.display_rule`). Logs written before that column existed
 are still read (:data:`COLUMNS_BEFORE_DISPLAY`); their ``display`` cells read as empty.
+
+A log never replaces data by accident (see :class:`EstimateLog`): it is created
+exclusively, is never one of the run's input files, and replaces an existing file only
+when asked to, and only a file that is itself an estimate log.
 """
 
 from __future__ import annotations
 
+import csv
 import io
 import json
 import math
 import os
+import stat
 import time
 from dataclasses import dataclass, field
+from datetime import datetime, timezone
 from pathlib import Path
+from typing import Iterable
 
 import numpy as np
 
 from estimators.estimate import Estimate
 from streamer import __version__
 from streamer.errors import InputError
+
+MAGIC = "# ridgewatch estimate log"
+"""The first line of every estimate log; it is how a file is recognised as one."""
 
 COLUMNS = (
     "emitted_s",
@@ -63,21 +87,42 @@ def _fmt(value: float, digits: int) -> str:
 
 
 def format_row(estimate: Estimate, compute_ms: float) -> str:
-    """One CSV line (with newline) for an estimate."""
-    return ",".join(
-        (
-            _fmt(estimate.emitted_s, 4),
-            _fmt(estimate.time_s, 4),
-            estimate.quantity,
-            estimate.source,
-            _fmt(estimate.rate_per_min, 3),
-            _fmt(estimate.confidence, 4),
-            _fmt(estimate.quality, 4),
-            _fmt(estimate.delay_s, 4),
-            _fmt(compute_ms, 4),
-            estimate.display,
-        )
-    ) + "\n"
+    """One CSV line (with newline) for an estimate; the source cell is quoted by the
+    csv module when the name holds a comma, a quote or a line break."""
+    buffer = io.StringIO()
+    csv.writer(buffer, lineterminator="\n").writerow((
+        _fmt(estimate.emitted_s, 4),
+        _fmt(estimate.time_s, 4),
+        estimate.quantity,
+        estimate.source,
+        _fmt(estimate.rate_per_min, 3),
+        _fmt(estimate.confidence, 4),
+        _fmt(estimate.quality, 4),
+        _fmt(estimate.delay_s, 4),
+        _fmt(compute_ms, 4),
+        estimate.display,
+    ))
+    return buffer.getvalue()
+
+
+def one_line(text: str) -> str:
+    """``text`` as it is when it is printable and holds no double quote, else as a JSON
+    string: header values and event messages stay on their line, and a CSV reader never
+    sees a quote opening a cell in a ``#`` line. :func:`read_log` undoes it."""
+    text = str(text)
+    if text.isprintable() and '"' not in text and text == text.strip():
+        return text
+    return json.dumps(text)
+
+
+def _from_one_line(value: str) -> str:
+    if value.startswith('"'):
+        try:
+            decoded = json.loads(value)
+        except json.JSONDecodeError:
+            return value
+        return decoded if isinstance(decoded, str) else value
+    return value
 
 
 class EstimateLog:
@@ -91,25 +136,56 @@ class EstimateLog:
     channels : mapping channel name -> kind, for the header.
     config : the full configuration as a JSON-serialisable dict.
     sync_every_s : seconds between ``os.fsync`` calls (every line is flushed regardless).
+    if_exists : what to do when ``path`` exists: ``"refuse"`` (an error), ``"overwrite"``
+        (replace it, but only if it is an estimate log, recognised by :data:`MAGIC`, or
+        empty) or ``"number"`` (write ``<stem>-2.csv``, ``<stem>-3.csv``, ... instead;
+        for default names). A device or pipe (``/dev/stdout``) is written as it is.
+    inputs : files the run reads; the log refuses to be any of them (same file by
+        device and inode, so links and other spellings of a path count).
+    started : the run's wall-clock start (default: now), written to the header in UTC.
+
+    Raises
+    ------
+    InputError
+        One line naming the path: it exists, it is an input, another run is writing it,
+        or it cannot be created.
+
+    Notes
+    -----
+    The file is created with ``O_CREAT | O_EXCL``, so of two runs that start at once on
+    one path exactly one gets it; the other is refused. The file also carries an
+    advisory ``flock`` lock for the whole run, which is what keeps an
+    ``if_exists="overwrite"`` run (which opens an existing file) from touching a log
+    another run is writing.
     """
 
     def __init__(self, path, mode: str, source: str, channels: dict, config: dict,
-                 sync_every_s: float = 1.0):
+                 sync_every_s: float = 1.0, *, if_exists: str = "refuse",
+                 inputs: Iterable = (), started: datetime | None = None):
+        if if_exists not in ("refuse", "overwrite", "number"):
+            raise ValueError(f"{if_exists=} must be 'refuse', 'overwrite' or 'number'")
         self.path = Path(path)
         try:
             if self.path.parent and not self.path.parent.exists():
                 self.path.parent.mkdir(parents=True, exist_ok=True)
-            self._file = open(self.path, "w", encoding="utf-8", newline="")
         except OSError as exc:
             raise InputError(f"cannot write the estimate log {self.path}: {exc.strerror}") from None
+        fd = _claim(self, if_exists, [Path(p) for p in inputs])
+        try:
+            self._file = open(fd, "w", encoding="utf-8", newline="")
+        except BaseException:
+            os.close(fd)
+            raise
         self._sync_every_s = sync_every_s
         self._last_sync = time.monotonic()
         self.rows_written = 0
+        started = started or datetime.now(timezone.utc)
         header = [
-            "# ridgewatch estimate log",
+            MAGIC,
             f"# version: {__version__}",
-            f"# mode: {mode}",
-            f"# source: {source}",
+            f"# mode: {one_line(mode)}",
+            f"# started: {started.astimezone(timezone.utc).isoformat(timespec='milliseconds')}",
+            f"# source: {one_line(source)}",
             f"# channels: {json.dumps(channels)}",
             f"# config: {json.dumps(config, sort_keys=True)}",
             ",".join(COLUMNS),
@@ -137,7 +213,7 @@ class EstimateLog:
     def write_event(self, kind: str, message: str, time_s: float = float("nan")) -> None:
         """A status line in the body (``# event ...``), e.g. a stream lost or resumed;
         readers skip it like any ``#`` line."""
-        self._write(f"# event {_fmt(time_s, 4) or 'nan'} {kind}: {message}\n")
+        self._write(f"# event {_fmt(time_s, 4) or 'nan'} {one_line(kind)}: {one_line(message)}\n")
 
     def close(self) -> None:
         if self._file.closed:
@@ -160,6 +236,105 @@ class EstimateLog:
 
     def __exit__(self, *exc):
         self.close()
+
+
+# ---------------------------------------------------------------------------- opening
+
+try:
+    import fcntl
+except ImportError:  # pragma: no cover - not POSIX: exclusive creation still holds
+    fcntl = None
+
+
+def _claim(log: EstimateLog, if_exists: str, inputs: list[Path]) -> int:
+    """Open ``log.path`` for writing as :class:`EstimateLog` describes; returns the
+    file descriptor (locked, empty, positioned at 0). May change ``log.path`` when
+    ``if_exists == "number"``."""
+    base = log.path
+    for n in range(1, 1000):
+        if n > 1:
+            log.path = base.with_name(f"{base.stem}-{n}{base.suffix}")
+        try:
+            fd = os.open(log.path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
+        except FileExistsError:
+            if if_exists == "number":
+                continue
+            return _open_existing(log.path, if_exists, inputs)
+        except OSError as exc:
+            raise InputError(f"cannot write the estimate log {log.path}: {exc.strerror}") from None
+        try:
+            _lock(fd, log.path)
+        except BaseException:
+            os.close(fd)
+            raise
+        return fd
+    raise InputError(f"cannot write the estimate log {base}: {base.stem}-2 to "
+                     f"{base.stem}-999 exist too; clear the folder {base.parent}")
+
+
+def _open_existing(path: Path, if_exists: str, inputs: list[Path]) -> int:
+    try:
+        info = os.stat(path)
+    except OSError as exc:  # e.g. a symbolic link to nowhere
+        raise InputError(f"cannot write the estimate log {path}: {exc.strerror}") from None
+    if stat.S_ISDIR(info.st_mode):
+        raise InputError(f"cannot write the estimate log {path}: it is a folder; give a file "
+                         "name")
+    _refuse_inputs(path, info, inputs)
+    if not stat.S_ISREG(info.st_mode):  # a device or a pipe: nothing in it to destroy
+        try:
+            return os.open(path, os.O_WRONLY)
+        except OSError as exc:
+            raise InputError(f"cannot write the estimate log {path}: {exc.strerror}") from None
+    if if_exists != "overwrite":
+        raise InputError(
+            f"the estimate log {path} already exists; give another --log path, or add "
+            "--overwrite to replace an earlier ridgewatch log")
+    try:
+        fd = os.open(path, os.O_RDWR)
+    except OSError as exc:
+        raise InputError(f"cannot write the estimate log {path}: {exc.strerror}") from None
+    try:
+        _refuse_inputs(path, os.fstat(fd), inputs)  # the file opened, not the name looked up
+        _lock(fd, path)
+        first = os.pread(fd, len(MAGIC) + 1, 0)
+        if first and first.rstrip(b"\r\n") != MAGIC.encode():
+            raise InputError(
+                f"{path} is not a ridgewatch estimate log (its first line is not "
+                f"'{MAGIC}'); --overwrite only replaces logs: give another --log path")
+        os.ftruncate(fd, 0)
+    except OSError as exc:
+        os.close(fd)
+        raise InputError(f"cannot write the estimate log {path}: {exc.strerror}") from None
+    except BaseException:
+        os.close(fd)
+        raise
+    return fd
+
+
+def _refuse_inputs(path: Path, info: os.stat_result, inputs: list[Path]) -> None:
+    for source in inputs:
+        try:
+            other = os.stat(source)
+        except OSError:
+            continue
+        if (other.st_dev, other.st_ino) == (info.st_dev, info.st_ino):
+            raise InputError(
+                f"--log {path} is the input file {source}; the log would destroy it: give "
+                "another --log path")
+
+
+def _lock(fd: int, path: Path) -> None:
+    if fcntl is None:
+        return
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        raise InputError(
+            f"the estimate log {path} is being written by another ridgewatch run; give "
+            "another --log path") from None
+    except OSError:
+        pass  # a file system without locks: exclusive creation still holds
 
 
 @dataclass
@@ -195,12 +370,13 @@ class LogTable:
 def read_log(path) -> LogTable:
     """Read an estimate log written by :class:`EstimateLog`.
 
-    A last line cut short (the writer was killed mid-line) is ignored; anything else
+    A last row cut short (the writer was killed mid-line) is ignored; anything else
     malformed raises :class:`InputError` naming the file and line.
     """
     path = Path(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        with open(path, encoding="utf-8", newline="") as fh:
+            text = fh.read()
     except OSError as exc:
         raise InputError(f"cannot read the estimate log {path}: {exc.strerror}") from None
     except UnicodeDecodeError:
@@ -208,10 +384,12 @@ def read_log(path) -> LogTable:
             f"{path} is not a ridgewatch estimate log (not UTF-8 text); give a log written "
             f"by replay, live, demo or offline"
         ) from None
+    # Lines end at "\n" only: a quoted cell may hold any other character.
+    lines = text.split("\n")
+    cut = lines[-1] != ""  # text after the last "\n": a partial line
+    if not cut:
+        lines.pop()
     header: dict = {}
-    lines = text.splitlines()
-    if text and not text.endswith("\n") and lines:
-        lines = lines[:-1]  # a partial last line from an interrupted writer
     i = 0
     while i < len(lines) and lines[i].startswith("#"):
         body = lines[i][1:].strip()
@@ -223,17 +401,19 @@ def read_log(path) -> LogTable:
                     value = json.loads(value)
                 except json.JSONDecodeError:
                     pass
+            else:
+                value = _from_one_line(value)
             header[key.strip()] = value
         i += 1
-    names = tuple(lines[i].split(",")) if i < len(lines) else ()
+    names = tuple(lines[i].rstrip("\r").split(",")) if i < len(lines) else ()
     if names not in (COLUMNS, COLUMNS_BEFORE_DISPLAY):
         raise InputError(
             f"{path} is not a ridgewatch estimate log (expected the header row "
             f"'{','.join(COLUMNS)}' after the '#' lines)"
         )
-    # (1-based line number, cells): event lines between rows keep the numbers right.
-    numbered = [(k + 1, line.split(",")) for k, line in enumerate(lines) if k > i
-                and line.strip() and not line.startswith("#")]
+    if cut:
+        lines.append(None)  # marks the partial line for _records
+    numbered = _records(path, lines, i + 1)
     for line_no, r in numbered:
         if len(r) != len(names):
             raise InputError(f"{path}, line {line_no}: {len(r)} cells instead of "
@@ -257,6 +437,49 @@ def read_log(path) -> LogTable:
     return LogTable(header, cols)
 
 
+def _records(path: Path, lines: list, start: int) -> list[tuple[int, list[str]]]:
+    """(1-based line number, cells) of the rows from ``lines[start:]``.
+
+    A ``#`` line or a blank line where a row would begin is skipped (an event); inside
+    a quoted cell it is part of the cell. A last element None marks the line before it
+    as partial: the row that reaches it was cut short and is dropped, as is a row that
+    the file ends inside of (an unclosed quote).
+    """
+    partial = lines[-1] is None if len(lines) > start else False
+    if partial:
+        lines = lines[:-1]
+    state = {"k": start, "first": 0, "at_start": True}
+
+    def feed():
+        while state["k"] < len(lines):
+            line = lines[state["k"]]
+            state["k"] += 1
+            if state["at_start"]:
+                if line.startswith("#") or not line.strip():
+                    continue
+                state["first"] = state["k"]
+                state["at_start"] = False
+            yield line + ("\n" if state["k"] < len(lines) or not partial else "")
+
+    reader = csv.reader(feed(), strict=True)
+    records = []
+    while True:
+        state["at_start"] = True
+        try:
+            cells = next(reader)
+        except StopIteration:
+            break
+        except csv.Error as exc:
+            if state["k"] >= len(lines):  # the file ends inside a quoted cell: cut short
+                break
+            raise InputError(f"{path}, line {state['first']}: {exc}; not a row of a "
+                             "ridgewatch estimate log") from None
+        if partial and state["k"] >= len(lines):
+            break  # the row reaching the partial last line
+        records.append((state["first"], cells))
+    return records
+
+
 def _is_num(cell: str) -> bool:
     if cell == "":
         return True
@@ -265,6 +488,19 @@ def _is_num(cell: str) -> bool:
         return True
     except ValueError:
         return False
+
+
+def drop_cell(row: str, column: str = "compute_ms") -> str:
+    """A row's text without the cell of ``column``: for comparing the rows of two runs
+    of one input, whose only differing cell is the compute time. A row cut short before
+    that cell (an interrupted writer) comes back as it is."""
+    cells = next(csv.reader([row]))
+    if len(cells) <= COLUMNS.index(column):
+        return row
+    del cells[COLUMNS.index(column)]
+    buffer = io.StringIO()
+    csv.writer(buffer, lineterminator="").writerow(cells)
+    return buffer.getvalue()
 
 
 def rows_text(path) -> list[str]:

@@ -42,14 +42,31 @@ logger = logging.getLogger("ridgewatch")
 SUPPORTED = (".csv", ".csv.gz", ".tsv", ".tsv.gz", ".hea", ".edf", ".bdf", ".xdf", ".xdfz",
              ".xdf.gz")
 
-#: Names (lower case, spaces stripped) recognised as the time column; any name that
-#: starts with "time" is one too (e.g. "Time [s]", "timestamp").
+#: Names (lower case, spaces stripped, unit removed) recognised as the time column; any
+#: name that starts with "time" is one too (e.g. "Time [s]", "timestamp_us").
 TIME_COLUMN_NAMES = ("time", "t", "timestamp")
 
-# Units a time column may carry in brackets, e.g. "Time [ms]", and their size in seconds.
-_TIME_UNITS = {"s": 1.0, "sec": 1.0, "secs": 1.0, "seconds": 1.0, "ms": 1e-3, "us": 1e-6,
-               "µs": 1e-6}
+#: Units of a time column, in its name (``time [ms]``, ``t (s)``, ``time_ms``,
+#: ``timestamp_us``) or given with ``--time-unit``, and their size in seconds.
+TIME_UNITS = {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9}
+_TIME_UNIT_SPELLINGS = {
+    "s": "s", "sec": "s", "secs": "s", "second": "s", "seconds": "s",
+    "ms": "ms", "msec": "ms", "msecs": "ms", "millisecond": "ms", "milliseconds": "ms",
+    "us": "us", "\u00b5s": "us", "\u03bcs": "us", "usec": "us", "usecs": "us",
+    "microsecond": "us", "microseconds": "us",
+    "ns": "ns", "nsec": "ns", "nsecs": "ns", "nanosecond": "ns", "nanoseconds": "ns",
+}
 _UNIT_RE = re.compile(r"[\[(]\s*([^\])]*?)\s*[\])]\s*$")
+_SUFFIX_UNIT_RE = re.compile(r"(.*?)[\s_.\-]+([^\W\d_]+)", re.UNICODE)
+
+#: Sampling rates ridgewatch accepts, from --fs or a time column: from 1 Hz (a slow
+#: respiration record) to 100 kHz (above any physiological recorder; rule of thumb).
+FS_RANGE_HZ = (1.0, 100_000.0)
+
+#: A time column without a unit is read as seconds only if that gives at least this
+#: rate: pulse, ECG and breathing recorders sample at 10 Hz or more (rule of thumb),
+#: while integer milliseconds read as seconds give 1 Hz or less.
+IMPLICIT_SECONDS_MIN_HZ = 4.0
 
 
 def read_recording(
@@ -59,6 +76,8 @@ def read_recording(
     *,
     stream: str | None = None,
     annotators: Sequence[str] | None = None,
+    time_column: str | None = None,
+    time_unit: str | None = None,
 ) -> Recording:
     r"""Read a recording file.
 
@@ -83,6 +102,12 @@ def read_recording(
         WFDB only: annotation file extensions to read beside the record. Default
         ``("atr",)`` when ``<record>.atr`` exists. Only beat annotations are kept, as
         ``events[annotator]`` in seconds (see :data:`wfdb_reader.BEAT_CODES`).
+    time_column : str, optional
+        CSV only: the name of the time column (default: the first column named like
+        :data:`TIME_COLUMN_NAMES`).
+    time_unit : {"s", "ms", "us", "ns"}, optional
+        CSV only: the unit of the time column; overrides a unit in its name (with a
+        warning when they differ).
 
     Returns
     -------
@@ -94,14 +119,18 @@ def read_recording(
     ------
     InputError
         Missing file, unsupported extension, malformed content, unknown channel or
-        stream, bad ``fs``.
+        stream, bad ``fs``; a time column that does not increase, that gives a rate
+        outside :data:`FS_RANGE_HZ`, or that contradicts ``fs`` by more than 1 %.
 
     Notes
     -----
     CSV: the delimiter (``,``, ``;`` or tab) is the one the header uses most; lines
     starting with ``#`` and blank lines are skipped; an empty cell is NaN; a time
-    column may give its unit in brackets (``[s]``, ``[ms]``, ``[us]``). The rate of a
-    time column is :math:`L / \operatorname{median}_k(t_{k+L} - t_k)` with
+    column may give its unit in brackets or after a separator (``time [ms]``,
+    ``t (s)``, ``timestamp_us``, ``time_ns``); without one it is read as seconds if that
+    gives at least :data:`IMPLICIT_SECONDS_MIN_HZ`, else refused with a hint. Timestamps
+    are always seconds. The rate of a time column is
+    :math:`L / \operatorname{median}_k(t_{k+L} - t_k)` with
     :math:`L = 100` samples (see :func:`_rate_from_times`). A time column that repeats
     times but lies within one sample period of a regular grid at that rate is replaced
     by the grid, with a warning; one that goes backwards is refused.
@@ -115,6 +144,9 @@ def read_recording(
     if fs is not None and not (isinstance(fs, numbers.Real) and not isinstance(fs, bool)
                                and math.isfinite(fs) and fs > 0):
         raise InputError(f"{given}: --fs {fs!r} must be a positive number of Hz")
+    if time_unit is not None and time_unit not in TIME_UNITS:
+        raise InputError(f"{given}: --time-unit {time_unit!r} is not one of "
+                         f"{', '.join(TIME_UNITS)}")
     lower = path.name.lower()
 
     # A WFDB record can be named without extension, or by its signal file.
@@ -130,8 +162,13 @@ def read_recording(
     if not path.is_file():
         raise InputError(f"{given}: not a file; give a recording file")
 
-    if lower.endswith((".csv", ".csv.gz", ".tsv", ".tsv.gz")):
-        recording = _read_csv(path, given, fs)
+    is_csv = lower.endswith((".csv", ".csv.gz", ".tsv", ".tsv.gz"))
+    if not is_csv and (time_column is not None or time_unit is not None):
+        option = "--time-column" if time_column is not None else "--time-unit"
+        raise InputError(f"{given}: {option} applies to CSV files only; this file states "
+                         "its own times")
+    if is_csv:
+        recording = _read_csv(path, given, fs, time_column, time_unit)
     elif lower.endswith(".hea"):
         recording = _read_wfdb(path, given, annotators)
     elif lower.endswith((".edf", ".bdf")):
@@ -145,6 +182,27 @@ def read_recording(
             "(a WFDB record may also be given by its .dat file or record name)"
         )
     return select_channels(recording, channels)
+
+
+def recording_files(path: str | Path) -> list[Path]:
+    """The files :func:`read_recording` reads for ``path``: the file itself, and for a
+    WFDB record its header, the signal files the header names and the ``.atr``
+    annotation file beside it. An estimate log must never be one of them."""
+    path = Path(path)
+    files = [path]
+    if not path.exists() and path.with_name(path.name + ".hea").is_file():
+        path = path.with_name(path.name + ".hea")
+    elif path.name.lower().endswith(".dat") and path.with_suffix(".hea").is_file():
+        path = path.with_suffix(".hea")
+    if path.name.lower().endswith(".hea") and path.is_file():
+        files.append(path)
+        try:
+            header = wfdb_reader.read_header(path)
+        except InputError:
+            return files
+        files += [path.parent / s.file_name for s in header.signals]
+        files.append(path.with_suffix(".atr"))
+    return files
 
 
 # ---------------------------------------------------------------------------- channels
@@ -209,7 +267,8 @@ def _source_id(path: Path) -> str:
 # ---------------------------------------------------------------------------- CSV
 
 
-def _read_csv(path: Path, given: str, fs: float | None) -> Recording:
+def _read_csv(path: Path, given: str, fs: float | None, time_column: str | None = None,
+              time_unit: str | None = None) -> Recording:
     """CSV/TSV reader: a header row, then one numeric row per sample.
 
     Fast path: the whole file is read into memory and parsed by ``np.loadtxt`` (its C
@@ -235,6 +294,7 @@ def _read_csv(path: Path, given: str, fs: float | None) -> Recording:
         raise InputError(f"{given}: cannot read: {reason}") from None
     if raw.startswith(b"\xef\xbb\xbf"):  # UTF-8 byte order mark from spreadsheet exports
         raw = raw[3:]
+    raw = _plain_text(raw, given)
 
     # Header: the first line that is neither empty nor a '#' comment.
     pos, line_no = 0, 0
@@ -304,7 +364,13 @@ def _read_csv(path: Path, given: str, fs: float | None) -> Recording:
     if data.shape[0] == 0:
         raise InputError(f"{given}: no data rows after the header; the file holds no samples")
 
-    time_index = _find_time_column(names)
+    time_index = _find_time_column(names, given, time_column)
+    if time_index is None and time_unit is not None:
+        raise InputError(
+            f"{given}: --time-unit {time_unit} given, but no time column found (looked for a "
+            f"column named {', '.join(TIME_COLUMN_NAMES)} or starting with 'time'); name it "
+            "with --time-column NAME"
+        )
     if time_index is None:
         if fs is None:
             raise InputError(
@@ -315,13 +381,43 @@ def _read_csv(path: Path, given: str, fs: float | None) -> Recording:
         timestamps = np.arange(data.shape[0], dtype=np.float64) / fs
         nominal_fs = float(fs)
     else:
-        timestamps, nominal_fs = _time_axis(data[:, time_index], names[time_index], given, fs)
+        timestamps, nominal_fs = _time_axis(data[:, time_index], names[time_index], given, fs,
+                                            time_unit)
     channel_columns = [i for i in range(n_columns) if i != time_index]
     if not channel_columns:
         raise InputError(f"{given}: only a time column, no signal columns; nothing to read")
     channels = tuple(ChannelInfo(names[i], None, _bracket_unit(names[i])) for i in channel_columns)
     info = SourceInfo(name=given, fs=nominal_fs, channels=channels, source_id=_source_id(path))
     return Recording(np.ascontiguousarray(data[:, channel_columns]), timestamps, info)
+
+
+_CONTROL_BYTES = re.compile(rb"[\x00-\x08\x0e-\x1f]")
+_TEXT_CHECK_BYTES = 1 << 16
+
+
+def _plain_text(raw: bytes, given: str) -> bytes:
+    """The CSV bytes with lines ending in ``\\n``, or :class:`InputError` for a file
+    that is not text.
+
+    A text CSV holds no control characters other than tab, line ends and form feeds:
+    the first 64 KiB are checked for them (a binary file shows them at once), the whole
+    file for NUL bytes (the holes a crashed writer can leave). Line ends written as
+    ``\\r`` alone (classic Mac OS) are read as line ends.
+    """
+    if raw.startswith((b"\xff\xfe", b"\xfe\xff")):
+        raise InputError(f"{given}: the file is UTF-16 text; save it as UTF-8 (or ASCII) CSV")
+    bad = _CONTROL_BYTES.search(raw, 0, _TEXT_CHECK_BYTES)
+    k = bad.start() if bad else raw.find(b"\0")
+    if k >= 0:
+        what = "a NUL byte" if raw[k] == 0 else f"the control character 0x{raw[k]:02x}"
+        line = raw.count(b"\n", 0, k) + 1
+        raise InputError(
+            f"{given}: byte {k} (line {line}) is {what}, which a CSV file never holds; the "
+            "file is binary or damaged: check that it is the right file"
+        )
+    if b"\r" in raw and raw.count(b"\r") != raw.count(b"\r\n"):
+        raw = raw.replace(b"\r\n", b"\n").replace(b"\r", b"\n")
+    return raw
 
 
 def _is_number(text: str) -> bool:
@@ -373,9 +469,33 @@ def _parse_csv_slowly(body: bytes, given: str, names: list[str], n_cells: int,
     return np.asarray(rows, dtype=np.float64)
 
 
-def _find_time_column(names: list[str]) -> int | None:
+def split_time_unit(name: str) -> tuple[str, str]:
+    """A column name without its unit, and the unit as written: ``"time [ms]"`` ->
+    ``("time", "ms")``, ``"timestamp_us"`` -> ``("timestamp", "us")``, ``"t (s)"`` ->
+    ``("t", "s")``, ``"time"`` -> ``("time", "")``. A unit in brackets is returned
+    whatever it is; one after a separator only when it is a time unit (so
+    ``time_of_day`` keeps its name)."""
+    text = name.strip()
+    m = _UNIT_RE.search(text)
+    if m:
+        return text[: m.start()].strip(), m.group(1)
+    m = _SUFFIX_UNIT_RE.fullmatch(text)
+    if m and m.group(2).casefold() in _TIME_UNIT_SPELLINGS:
+        return m.group(1), m.group(2)
+    return text, ""
+
+
+def _find_time_column(names: list[str], given: str, time_column: str | None) -> int | None:
+    if time_column is not None:
+        if time_column in names:
+            return names.index(time_column)
+        folded = [n.casefold() for n in names]
+        if time_column.casefold() in folded:
+            return folded.index(time_column.casefold())
+        raise InputError(f"{given}: --time-column {time_column!r}: no such column; columns "
+                         f"are: {', '.join(names)}")
     for i, name in enumerate(names):
-        key = name.replace(" ", "").casefold()
+        key = split_time_unit(name)[0].replace(" ", "").casefold()
         if key in TIME_COLUMN_NAMES or key.startswith("time"):
             return i
     return None
@@ -386,17 +506,21 @@ def _bracket_unit(name: str) -> str:
     return m.group(1) if m else ""
 
 
-def _time_axis(column: np.ndarray, name: str, given: str,
-               fs: float | None) -> tuple[np.ndarray, float]:
+def _time_axis(column: np.ndarray, name: str, given: str, fs: float | None,
+               time_unit: str | None = None) -> tuple[np.ndarray, float]:
     """Timestamps in seconds from a time column, and the nominal rate."""
-    unit = _bracket_unit(name)
-    if unit and unit.casefold() not in _TIME_UNITS:
+    written = split_time_unit(name)[1]
+    if written and written.casefold() not in _TIME_UNIT_SPELLINGS:
         raise InputError(
-            f"{given}: time column {name!r} has unit {unit!r}; use seconds, ms or us, or "
-            "drop the time column and pass --fs HZ"
+            f"{given}: time column {name!r} has unit {written!r}; use s, ms, us or ns (in its "
+            "name or with --time-unit), or drop the time column and pass --fs HZ"
         )
-    scale = _TIME_UNITS.get(unit.casefold(), 1.0)
-    timestamps = column * scale
+    named = _TIME_UNIT_SPELLINGS.get(written.casefold(), "")
+    if time_unit is not None and named and named != time_unit:
+        logger.warning("%s: time column %r says %s; reading it in %s as --time-unit says",
+                       given, name, named, time_unit)
+    unit = time_unit or named
+    timestamps = column * TIME_UNITS[unit or "s"]
     bad = ~np.isfinite(timestamps)
     if bad.any():
         row = int(np.argmax(bad))
@@ -409,7 +533,7 @@ def _time_axis(column: np.ndarray, name: str, given: str,
         row = int(np.argmax(steps < 0)) + 1
         raise InputError(
             f"{given}: time column {name!r} goes backwards at data row {row + 1} "
-            f"({float(timestamps[row - 1])!r} then {float(timestamps[row])!r}); sort the rows"
+            f"({float(column[row - 1])!r} then {float(column[row])!r}); sort the rows"
         )
     if len(steps) == 0:
         if fs is None:
@@ -418,11 +542,35 @@ def _time_axis(column: np.ndarray, name: str, given: str,
             )
         return timestamps, float(fs)
     file_fs = _rate_from_times(timestamps)
-    if fs is not None and abs(file_fs - fs) > 0.01 * fs:
-        logger.warning(
-            "%s: --fs %g differs from the rate of the time column (%.6g Hz); using --fs as "
-            "the nominal rate and the time column for timestamps", given, fs, file_fs,
+    if not math.isfinite(file_fs):
+        which = (f"every row holds {float(column[0])!r}" if timestamps[-1] == timestamps[0]
+                 else "most rows repeat the time before them")
+        raise InputError(
+            f"{given}: time column {name!r} does not increase ({which}); fix the time "
+            "column, or drop it and pass --fs HZ"
         )
+    as_read = f"in {unit}" if unit else "read as seconds"
+    if fs is not None and abs(file_fs - fs) > 0.01 * fs:
+        other = _other_unit(file_fs, unit, lambda rate: abs(rate - fs) <= 0.01 * fs)
+        raise InputError(
+            f"{given}: --fs {fs:g} Hz contradicts time column {name!r}, which gives "
+            f"{file_fs:.6g} Hz {as_read}; "
+            + (f"if its times are in {other}, pass --time-unit {other}" if other else
+               "drop --fs, or fix the time column")
+        )
+    low = FS_RANGE_HZ[0] if unit else IMPLICIT_SECONDS_MIN_HZ
+    if fs is None and not low <= file_fs <= FS_RANGE_HZ[1]:
+        other = _other_unit(file_fs, unit,
+                            lambda rate: IMPLICIT_SECONDS_MIN_HZ <= rate <= FS_RANGE_HZ[1])
+        where = (f"has no unit, and read as seconds it gives {file_fs:.6g} Hz"
+                 if not unit else f"in {unit} gives {file_fs:.6g} Hz")
+        if other:
+            fix = f"if its times are in {other}, pass --time-unit {other}"
+            fix += f" or name the column time_{other}" if not unit else ""
+        else:
+            fix = "give its unit with --time-unit s|ms|us|ns"
+        raise InputError(f"{given}: time column {name!r} {where}, outside "
+                         f"{low:g}-{FS_RANGE_HZ[1]:g} Hz; {fix}")
     nominal_fs = float(fs) if fs is not None else file_fs
     if (steps == 0).any():
         # Times written with too few digits repeat (e.g. 100.02, 100.02 at 125 Hz). When
@@ -446,6 +594,15 @@ def _time_axis(column: np.ndarray, name: str, given: str,
     return timestamps, nominal_fs
 
 
+def _other_unit(rate: float, unit: str, fits) -> str:
+    """The first time unit other than ``unit`` (empty: seconds) under which a column
+    that gives ``rate`` would give a rate for which ``fits(rate)`` holds, or ""."""
+    for other, size in TIME_UNITS.items():
+        if other != (unit or "s") and fits(rate * TIME_UNITS[unit or "s"] / size):
+            return other
+    return ""
+
+
 def _rate_from_times(timestamps: np.ndarray, stride: int = 100) -> float:
     """Sampling rate from a time axis: ``stride / median(t[k + stride] - t[k])``.
 
@@ -455,7 +612,10 @@ def _rate_from_times(timestamps: np.ndarray, stride: int = 100) -> float:
     the median still ignores the few strides that span a gap.
     """
     stride = max(1, min(stride, len(timestamps) - 1))
-    rate = stride / float(np.median(timestamps[stride:] - timestamps[:-stride]))
+    span = float(np.median(timestamps[stride:] - timestamps[:-stride]))
+    if not span > 0:
+        return math.inf  # most strides repeat a time: no rate
+    rate = stride / span
     # Times written in decimal carry rounding noise (124.99999999999933 Hz); a rate
     # within a millionth of a whole number of hertz is that number.
     nearest = round(rate)

@@ -23,10 +23,10 @@ import pytest
 from estimators.config import DEFAULT_PROFILE, get_profile
 from streamer.channels import select
 from streamer.runner import Runner
-from streamer.sinks.estimate_log import EstimateLog, read_log, rows_text
+from streamer.sinks.estimate_log import EstimateLog, drop_cell, read_log, rows_text
 from streamer.sources.files import read_recording
 from streamer.sources.replay import RecordingSource
-from tests.robustness.faults import pulse_signal, pulse_wave
+from tests.robustness.faults import pulse_signal, pulse_wave, within_ec13
 
 REPO_ROOT = Path(__file__).resolve().parents[2]
 FS = 100.0
@@ -62,7 +62,7 @@ def assert_valid_prefix_log(done: subprocess.CompletedProcess, cwd: Path,
     assert "Traceback" not in done.stderr
     assert warning in done.stderr, done.stderr
     table = read_log(cwd / "out.csv")
-    rows = [r.rsplit(",", 1)[0] for r in rows_text(cwd / "out.csv")]
+    rows = [drop_cell(r) for r in rows_text(cwd / "out.csv")]
     assert len(table) == len(rows) > 0
     assert len(rows) < len(full_rows)
     assert rows == full_rows[:len(rows)]
@@ -83,7 +83,7 @@ def full_rows(tmp_path: Path, name: str) -> list[str]:
     path = tmp_path / "intact.csv"
     log = EstimateLog(path, "replay", name, {s.name: s.kind for s in selected}, {})
     Runner(source, selected, get_profile(DEFAULT_PROFILE), log=log).run()
-    rows = [r.rsplit(",", 1)[0] for r in rows_text(path)]
+    rows = [drop_cell(r) for r in rows_text(path)]
     assert len(rows) > 50
     return rows
 
@@ -273,3 +273,137 @@ def test_one_hour_at_500_hz_with_8_channels_replays_in_bounded_memory(tmp_path):
     hr = table.select("hr", "PPG")
     assert hr.columns["emitted_s"][-1] > 3590
     assert np.nanmedian(np.abs(hr.columns["rate_per_min"] - 66.0)) < 2.0
+
+
+# -- time columns ------------------------------------------------------------------------
+
+
+def assert_error_is(done: subprocess.CompletedProcess, expected: str) -> None:
+    """Exit code 2 and exactly one line on stderr: ``expected``."""
+    assert done.returncode == 2, done.stderr
+    assert done.stderr == expected + "\n"
+    assert done.stdout == ""
+
+
+def ms_csv(path: Path, header: str = "time") -> Path:
+    """The 72 bpm pulse at 100 Hz with its times in integer milliseconds."""
+    x, t = pulse()
+    path.write_text(f"{header},PPG\n" + "".join(f"{round(a * 1000)},{b:.6f}\n"
+                                                for a, b in zip(t, x)))
+    return path
+
+
+def check_rates_and_seconds(log: Path, causal: bool = True) -> None:
+    """Every heart rate within the EC13 tolerance of 72 bpm and the times in seconds:
+    within the 30 s recording and, live, half the 8 s window behind the newest sample."""
+    table = read_log(log).select("hr", "PPG")
+    cols = table.columns
+    assert len(table) > 50 and within_ec13(cols["rate_per_min"], 72.0).all()
+    assert 0.0 <= cols["time_s"].min() and cols["emitted_s"].max() <= DURATION_S
+    if causal:
+        assert cols["emitted_s"].min() >= 8.0 - 0.05
+        np.testing.assert_allclose(cols["delay_s"], 3.98, atol=0.05)
+
+
+def test_time_column_in_ms_without_a_unit_is_one_clear_refusal(tmp_path):
+    ms_csv(tmp_path / "ms.csv")
+    assert_error_is(replay(tmp_path, "ms.csv"),
+                    "ridgewatch: error: ms.csv: time column 'time' has no unit, and read as "
+                    "seconds it gives 0.1 Hz, outside 4-100000 Hz; if its times are in ms, "
+                    "pass --time-unit ms or name the column time_ms")
+    assert_error_is(replay(tmp_path, "ms.csv", "--fs", "100"),
+                    "ridgewatch: error: ms.csv: --fs 100 Hz contradicts time column 'time', "
+                    "which gives 0.1 Hz read as seconds; if its times are in ms, pass "
+                    "--time-unit ms")
+    assert not (tmp_path / "out.csv").exists()
+
+
+@pytest.mark.parametrize("header, extra", [
+    ("time", ["--time-unit", "ms"]),
+    ("time", ["--time-unit", "ms", "--fs", "100"]),
+    ("time_ms", []),
+    ("Time [ms]", []),
+    ("Zeit", ["--time-column", "zeit", "--time-unit", "ms"]),
+])
+def test_time_column_in_ms_gives_right_rates_and_times_in_seconds(tmp_path, header, extra):
+    ms_csv(tmp_path / "ms.csv", header)
+    done = replay(tmp_path, "ms.csv", *extra)
+    assert done.returncode == 0, done.stderr
+    check_rates_and_seconds(tmp_path / "out.csv")
+
+
+def test_offline_reads_time_units_too(tmp_path):
+    ms_csv(tmp_path / "ms.csv", "timestamp_ms")
+    done = ridgewatch(tmp_path, "offline", "ms.csv", "--log", "out.csv", "-q")
+    assert done.returncode == 0, done.stderr
+    check_rates_and_seconds(tmp_path / "out.csv", causal=False)
+
+
+def test_fs_that_contradicts_the_time_column_is_one_error_line(tmp_path):
+    """Before: a warning, then 144 bpm for 72 (the samples counted at twice their rate)."""
+    x, t = pulse()
+    (tmp_path / "rec.csv").write_text(csv_text(x, t))
+    assert_error_is(replay(tmp_path, "rec.csv", "--fs", "200"),
+                    "ridgewatch: error: rec.csv: --fs 200 Hz contradicts time column 'time', "
+                    "which gives 100 Hz read as seconds; drop --fs, or fix the time column")
+    assert replay(tmp_path, "rec.csv", "--fs", "100.5").returncode == 0  # within 1 %
+
+
+@pytest.mark.parametrize("times, expected", [
+    (lambda t: np.full_like(t, 12.5), "time column 'time' does not increase (every row holds "
+                                      "12.5); fix the time column, or drop it and pass --fs HZ"),
+    (lambda t: np.floor(t / 10) * 10,
+     "time column 'time' does not increase (most rows repeat the time before them); fix the "
+     "time column, or drop it and pass --fs HZ"),
+])
+def test_time_column_that_does_not_increase_is_one_error_line(tmp_path, times, expected):
+    x, t = pulse()
+    (tmp_path / "rec.csv").write_text(csv_text(x, times(t)))
+    assert_error_is(replay(tmp_path, "rec.csv"), f"ridgewatch: error: rec.csv: {expected}")
+
+
+# -- files that are not text ----------------------------------------------------------------
+
+
+def test_random_bytes_are_one_error_line(tmp_path):
+    rng = np.random.default_rng(5)
+    raw = bytearray(rng.integers(0, 256, 4096, dtype=np.uint8).tobytes())
+    raw[:20] = b"time,PPG\n0.0,1.0\n0.01"  # looks like a CSV at first
+    raw[20] = 0x07
+    (tmp_path / "rec.csv").write_bytes(bytes(raw))
+    assert_error_is(replay(tmp_path, "rec.csv"),
+                    "ridgewatch: error: rec.csv: byte 20 (line 3) is the control character "
+                    "0x07, which a CSV file never holds; the file is binary or damaged: check "
+                    "that it is the right file")
+
+
+def test_nul_bytes_deep_in_a_csv_are_one_error_line(tmp_path):
+    """The hole a crashed writer may leave: NUL bytes after the first 64 KiB."""
+    x, t, _, _ = pulse_signal(4 * DURATION_S, FS, 72.0, seed=8)
+    text = csv_text(x, t).encode()
+    at = text.index(b"\n", 100_000) + 1
+    line = text.count(b"\n", 0, at) + 1
+    (tmp_path / "rec.csv").write_bytes(text[:at] + b"\0" * 512 + text[at + 512:])
+    assert_error_is(replay(tmp_path, "rec.csv"),
+                    f"ridgewatch: error: rec.csv: byte {at} (line {line}) is a NUL byte, which "
+                    "a CSV file never holds; the file is binary or damaged: check that it is "
+                    "the right file")
+
+
+def test_utf16_csv_is_one_error_line(tmp_path):
+    x, t = pulse()
+    (tmp_path / "rec.csv").write_bytes(csv_text(x, t).encode("utf-16"))
+    assert_error_is(replay(tmp_path, "rec.csv"),
+                    "ridgewatch: error: rec.csv: the file is UTF-16 text; save it as UTF-8 (or "
+                    "ASCII) CSV")
+
+
+@pytest.mark.parametrize("line_end", ["\r", "\r\n"])
+def test_cr_line_ends_read_like_newlines(tmp_path, line_end):
+    x, t = pulse()
+    (tmp_path / "rec.csv").write_text(csv_text(x, t))
+    rows = full_rows(tmp_path, "rec.csv")
+    (tmp_path / "cr.csv").write_bytes(csv_text(x, t).replace("\n", line_end).encode())
+    done = replay(tmp_path, "cr.csv")
+    assert done.returncode == 0, done.stderr
+    assert [drop_cell(r) for r in rows_text(tmp_path / "out.csv")] == rows

@@ -19,6 +19,7 @@ import os
 import subprocess
 import sys
 import uuid
+from datetime import datetime, timedelta
 from pathlib import Path
 
 import numpy as np
@@ -26,7 +27,7 @@ import pytest
 
 from estimators.config import DEFAULT_PROFILE, PROFILES
 from streamer import __version__, cli
-from streamer.sinks.estimate_log import COLUMNS, read_log, rows_text
+from streamer.sinks.estimate_log import COLUMNS, drop_cell, read_log, rows_text
 from streamer.sources.files import read_recording
 
 REPO_ROOT = Path(__file__).resolve().parents[2]
@@ -58,8 +59,8 @@ def start_cli(*args, cwd) -> subprocess.Popen:
 
 
 def rows_without_compute(path) -> list[str]:
-    """Data rows as text minus the last cell (compute_ms, the only run-dependent one)."""
-    return [row.rsplit(",", 1)[0] for row in rows_text(path)]
+    """Data rows as text minus the compute_ms cell (the only run-dependent one)."""
+    return [drop_cell(row) for row in rows_text(path)]
 
 
 def check_log_format(path, mode: str, source: str, channels: dict):
@@ -68,14 +69,17 @@ def check_log_format(path, mode: str, source: str, channels: dict):
     assert lines[0] == "# ridgewatch estimate log"
     assert lines[1] == f"# version: {__version__}"
     assert lines[2] == f"# mode: {mode}"
-    assert lines[3] == f"# source: {source}"
-    assert lines[4].startswith("# channels: ")
-    assert json.loads(lines[4][len("# channels: "):]) == channels
-    assert lines[5].startswith("# config: ")
-    config = json.loads(lines[5][len("# config: "):])
+    assert lines[3].startswith("# started: ")
+    started = datetime.fromisoformat(lines[3][len("# started: "):])
+    assert started.utcoffset() == timedelta(0)  # UTC, ISO 8601
+    assert lines[4] == f"# source: {source}"
+    assert lines[5].startswith("# channels: ")
+    assert json.loads(lines[5][len("# channels: "):]) == channels
+    assert lines[6].startswith("# config: ")
+    config = json.loads(lines[6][len("# config: "):])
     assert set(config["profile"]) >= {"name", "hr", "rr"}
-    assert lines[6] == ",".join(COLUMNS)
-    body = [line for line in lines[7:] if not line.startswith("#")]
+    assert lines[7] == ",".join(COLUMNS)
+    body = [line for line in lines[8:] if not line.startswith("#")]
     assert body, f"{path} has no rows"
     assert all(len(line.split(",")) == len(COLUMNS) for line in body)
 

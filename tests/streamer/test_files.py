@@ -93,13 +93,40 @@ def test_csv_without_time_column_or_fs_is_refused(tmp_path):
         read_recording(path)
 
 
-@pytest.mark.parametrize("name", ["time", "t", "Timestamp", "TIME [s]", "time_s"])
-def test_csv_time_column_names_are_recognised(tmp_path, name):
-    path = write_text(tmp_path / "r.csv", f"x,{name}\n5,0.0\n6,0.5\n7,1.0\n")
+@pytest.mark.parametrize("name, size_s", [
+    ("time", 1.0), ("t", 1.0), ("Timestamp", 1.0), ("TIME [s]", 1.0), ("time_s", 1.0),
+    ("t (s)", 1.0), ("time_ms", 1e-3), ("Time(ms)", 1e-3), ("timestamp_us", 1e-6),
+    ("time [\u00b5s]", 1e-6), ("time_ns", 1e-9), ("Time-msec", 1e-3)])
+def test_csv_time_column_names_are_recognised(tmp_path, name, size_s):
+    """The column is found by its name without the unit, and its unit (in brackets or
+    after a separator) scales the times to seconds."""
+    times = np.array([0.0, 0.01, 0.02]) / size_s
+    path = write_text(tmp_path / "r.csv", f"x,{name}\n" + "".join(
+        f"{5 + k},{float(t)!r}\n" for k, t in enumerate(times)))
     rec = read_recording(path)
     assert rec.info.channel_names == ["x"]
-    np.testing.assert_array_equal(rec.timestamps, [0.0, 0.5, 1.0])
-    assert rec.info.fs == 2.0
+    np.testing.assert_allclose(rec.timestamps, [0.0, 0.01, 0.02], rtol=1e-12, atol=0)
+    assert rec.info.fs == pytest.approx(100.0, rel=1e-9)
+
+
+def test_csv_time_unit_option_and_time_column_option(tmp_path, caplog):
+    path = write_text(tmp_path / "r.csv", "x,Elapsed,t [s]\n1,0,0\n2,4,4\n3,8,8\n")
+    rec = read_recording(path, time_column="elapsed", time_unit="ms")
+    assert rec.info.channel_names == ["x", "t [s]"]
+    np.testing.assert_allclose(rec.timestamps, [0.0, 0.004, 0.008], rtol=1e-12, atol=0)
+    assert rec.info.fs == pytest.approx(250.0)
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(path, time_unit="ms")  # the column named in seconds
+    np.testing.assert_allclose(rec.timestamps, [0.0, 0.004, 0.008], rtol=1e-12, atol=0)
+    assert "time column 't [s]' says s; reading it in ms as --time-unit says" in caplog.text
+    with pytest.raises(InputError, match=r"r\.csv: --time-column 'when': no such column; "
+                                         r"columns are: x, Elapsed, t \[s\]$"):
+        read_recording(path, time_column="when")
+    with pytest.raises(InputError, match=r"n\.csv: --time-unit ms given, but no time column "
+                                         r"found \(looked for a column named time, t, timestamp "
+                                         r"or starting with 'time'\); name it with "
+                                         r"--time-column NAME$"):
+        read_recording(write_text(tmp_path / "n.csv", "x\n1\n2\n"), fs=100, time_unit="ms")
 
 
 def test_csv_time_column_in_ms_is_converted(tmp_path):
@@ -114,13 +141,50 @@ def test_csv_time_column_with_unknown_unit_is_refused(tmp_path):
         read_recording(path)
 
 
-def test_csv_fs_with_time_column_keeps_file_times(tmp_path, caplog):
-    path = write_text(tmp_path / "r.csv", "t,x\n0,1\n0.5,2\n1.0,3\n")
-    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
-        rec = read_recording(path, fs=3.0)
-    np.testing.assert_array_equal(rec.timestamps, [0.0, 0.5, 1.0])
-    assert rec.info.fs == 3.0
-    assert "differs from the rate of the time column" in caplog.text
+def test_csv_fs_within_1_percent_of_the_time_column_keeps_file_times(tmp_path):
+    path = write_text(tmp_path / "r.csv", "t,x\n0,1\n0.01,2\n0.02,3\n")
+    rec = read_recording(path, fs=100.9)
+    np.testing.assert_array_equal(rec.timestamps, [0.0, 0.01, 0.02])
+    assert rec.info.fs == 100.9
+
+
+def test_csv_fs_that_contradicts_the_time_column_is_refused(tmp_path):
+    path = write_text(tmp_path / "r.csv", "t,x\n0,1\n0.01,2\n0.02,3\n")
+    with pytest.raises(InputError, match=r"^.*r\.csv: --fs 102 Hz contradicts time column 't', "
+                                         r"which gives 100 Hz read as seconds; drop --fs, or "
+                                         r"fix the time column$"):
+        read_recording(path, fs=102.0)
+    ms = write_text(tmp_path / "ms.csv", "t,x\n0,1\n10,2\n20,3\n")
+    with pytest.raises(InputError, match=r"^.*ms\.csv: --fs 100 Hz contradicts time column 't', "
+                                         r"which gives 0\.1 Hz read as seconds; if its times "
+                                         r"are in ms, pass --time-unit ms$"):
+        read_recording(ms, fs=100.0)
+    np.testing.assert_allclose(read_recording(ms, fs=100.0, time_unit="ms").timestamps,
+                               [0.0, 0.01, 0.02], rtol=1e-12, atol=0)
+
+
+@pytest.mark.parametrize("name, times, message", [
+    ("t", [0, 8, 16], r"time column 't' has no unit, and read as seconds it gives 0\.125 Hz, "
+                      r"outside 4-100000 Hz; if its times are in ms, pass --time-unit ms or "
+                      r"name the column time_ms$"),
+    ("t", [0, 1, 2], r"time column 't' has no unit, and read as seconds it gives 1 Hz, outside "
+                     r"4-100000 Hz; if its times are in ms, pass --time-unit ms or name the "
+                     r"column time_ms$"),
+    ("time_us", [0, 1, 2], r"time column 'time_us' in us gives 1e\+06 Hz, outside 1-100000 Hz; "
+                           r"if its times are in ms, pass --time-unit ms$"),
+    ("t", [5, 5, 5], r"time column 't' does not increase \(every row holds 5\.0\); fix the time "
+                     r"column, or drop it and pass --fs HZ$"),
+])
+def test_csv_time_columns_that_give_no_usable_rate_are_refused(tmp_path, name, times, message):
+    text = f"{name},x\n" + "".join(f"{t},1\n" for t in times)
+    with pytest.raises(InputError, match=r"^.*r\.csv: " + message):
+        read_recording(write_text(tmp_path / "r.csv", text))
+
+
+def test_csv_slow_time_column_in_stated_seconds_is_read(tmp_path):
+    """A 2 Hz record is plausible when the column says it is in seconds."""
+    rec = read_recording(write_text(tmp_path / "r.csv", "time_s,x\n0,1\n0.5,2\n1.0,3\n"))
+    assert rec.info.fs == 2.0
 
 
 def test_csv_non_numeric_cell_names_line_and_column(tmp_path):
@@ -141,7 +205,7 @@ def test_csv_empty_cells_read_as_nan_and_other_cells_exactly(tmp_path, rng):
 
 
 def test_csv_trailing_delimiter_column_is_ignored(tmp_path):
-    rec = read_recording(write_text(tmp_path / "r.csv", "time,a,\n0,1,\n0.5,,\n1.0,3,\n"))
+    rec = read_recording(write_text(tmp_path / "r.csv", "time,a,\n0,1,\n0.05,,\n0.1,3,\n"))
     assert rec.info.channel_names == ["a"]
     np.testing.assert_array_equal(rec.samples[:, 0], [1.0, np.nan, 3.0])
 
@@ -159,11 +223,11 @@ def test_csv_without_header_is_refused(tmp_path):
 
 
 def test_csv_truncated_last_line_is_dropped_with_a_warning(tmp_path, caplog):
-    path = write_text(tmp_path / "r.csv", "t,a,b\n0,1,2\n0.5,3,4\n1.0,5")
+    path = write_text(tmp_path / "r.csv", "t,a,b\n0,1,2\n0.05,3,4\n0.1,5")
     with caplog.at_level(logging.WARNING, logger="ridgewatch"):
         rec = read_recording(path)
     np.testing.assert_array_equal(rec.samples, [[1, 2], [3, 4]])
-    np.testing.assert_array_equal(rec.timestamps, [0.0, 0.5])
+    np.testing.assert_array_equal(rec.timestamps, [0.0, 0.05])
     assert "r.csv: line 4 has 2 of 3 cells (truncated last line); dropped it" in caplog.text
 
 

@@ -74,9 +74,17 @@ band-pass chain and the same hop schedule, so they describe the same windows.
 3. **Harmonic support** (:func:`harmonic_support`). At rest the PPG's second harmonic
    can outgrow its fundamental (SPC 2015 record 03: 1.0 against 0.8), and the tracker
    then locks on twice the rate. The tracked spectrum is the two-term harmonic sum
-   ``H(f) = C(f) + lambda C(2 f)`` (subharmonic summation: Hermes, "Measurement of pitch
-   by subharmonic summation", J. Acoust. Soc. Am. 83(1):257-264, 1988), which favours
-   the fundamental of a pulse whose harmonic is present.
+   ``H(f) = C(f) + lambda min(C(f), C(2 f))`` (subharmonic summation: Hermes,
+   "Measurement of pitch by subharmonic summation", J. Acoust. Soc. Am.
+   83(1):257-264, 1988), which favours the fundamental of a pulse whose harmonic is
+   present. The harmonic supports a fundamental only up to that fundamental's own
+   level: with the plain sum ``C(f) + lambda C(2 f)``, half the heart rate wins as soon as
+   anything there reaches ``1 - lambda`` of the pulse (during running, the arm swing
+   sits at about half the rate), and whether record 10 of SPC 2015 locked at half the
+   rate for minutes depended on the canceller's memory and on ``lambda`` (held-out AAE
+   29 and 65 bpm at grid points next to the shipped one). With the cap the fundamental
+   candidate must show a peak of its own, and every grid point keeps every record
+   below 4 bpm (``python -m bench.exercise_table``).
 
 Why not de-shape here. The de-shape filter (:mod:`estimators.deshape`) on the raw
 running PPG emphasises the motion's own fundamental (14-22 bpm mean AAE, measured in the
@@ -254,8 +262,8 @@ def gain_step(state: MotionState, residual_magnitude: np.ndarray, reference: np.
 
 
 def harmonic_support(magnitude: np.ndarray, params: MotionParams) -> np.ndarray:
-    """Step 3: ``H(f) = C(f) + lambda C(2 f)`` on the band's bins, peak-normalised:
-    (P, F) -> (P, band bins).
+    """Step 3: ``H(f) = C(f) + lambda min(C(f), C(2 f))`` on the band's bins,
+    peak-normalised: (P, F) -> (P, band bins).
 
     Examples
     --------
@@ -273,7 +281,8 @@ def harmonic_support(magnitude: np.ndarray, params: MotionParams) -> np.ndarray:
     if params.harmonic_weight > 0:
         double = 2 * bins
         inside = double < magnitude.shape[1]
-        out[:, inside] += params.harmonic_weight * magnitude[:, double[inside]]
+        out[:, inside] += params.harmonic_weight * np.minimum(
+            magnitude[:, bins[inside]], magnitude[:, double[inside]])
     return _band_normalised(out, slice(0, out.shape[1]))
 
 

@@ -1,5 +1,5 @@
 """The exercise profile on real running records: IEEE Signal Processing Cup 2015 training
-records 01-06 (Zhang, Pi & Liu, "TROIKA: a general framework for heart rate monitoring
+records 01-12 (Zhang, Pi & Liu, "TROIKA: a general framework for heart rate monitoring
 using wrist-type photoplethysmographic signals during intensive physical exercise", IEEE
 TBME 62(2):522-531, 2015; ``../shared/data/ieee_spc2015/SOURCE.md``).
 
@@ -11,20 +11,11 @@ window is exactly window ``k``; the rate scored is the one shown then (a withhel
 estimate leaves the last shown rate on screen). AAE = mean absolute error per record.
 The ECG row is never given to the monitor.
 
-Figures measured when the tests were written (one parameter set, profile
-``exercise-wrist``; ``python -m bench.exercise_table`` prints the full table):
-
-==============  =====  =====  =====  =====  =====  =====  =====
-AAE (bpm)        01     02     03     04     05     06    mean
-==============  =====  =====  =====  =====  =====  =====  =====
-PPG1 alone      51.92  45.06  26.38   2.49   0.71   3.54  21.68
-PPG1+PPG2       31.51  44.36  25.50   9.42   0.80  32.04  23.94
-with acc         1.74   1.72   0.80   1.41   1.03   1.99   1.45
-==============  =====  =====  =====  =====  =====  =====  =====
-
-Published points (values from memory, as given to us): TROIKA 2.34 bpm over the 12
-training records (Zhang et al. 2015), about 1.97 bpm online (Temko, IEEE TBME 2017).
-The project target is a mean AAE of 1.5 bpm or less over records 01-06.
+The shipped parameters were chosen on these records (``python -m bench.exercise_table``
+prints the leave-one-record-out figures, which are the evidence); the assertions here
+are guards: the bar the project was set for recordings it does not have (issue 13:
+mean AAE <= 2.3 bpm, no record worse than 5 bpm), no lasting wrong lock, and confident
+estimates that are right.
 """
 
 from __future__ import annotations
@@ -34,20 +25,20 @@ import pytest
 from scipy import io
 
 from estimators.config import get_profile
+from estimators.metrics import within_tolerance
 from estimators.monitor import FUSED, RateMonitor
 
-pytestmark = pytest.mark.data
+pytestmark = [pytest.mark.data, pytest.mark.slow]
 
 FS = 125.0
 WINDOW, SHIFT = 1000, 250
-RECORDS = [f"DATA_{i:02d}_TYPE{'01' if i == 1 else '02'}" for i in range(1, 7)]
-TARGET_AAE = 1.5
-"""Project target for the mean AAE over records 01-06 (the issue; FINDINGS.md)."""
+RECORDS = [f"DATA_{i:02d}_TYPE{'01' if i == 1 else '02'}" for i in range(1, 13)]
+UNSEEN_MEAN_AAE, UNSEEN_WORST_AAE = 2.3, 5.0
+"""Issue 13's bar for recordings the project does not have."""
 EXERCISE = get_profile("exercise-wrist")
 ROWS = {"ppg1": 1, "ppg2": 2, "accx": 3, "accy": 4, "accz": 5}  # row 0 is the ECG
 KINDS = {"ppg1": "ppg", "ppg2": "ppg", "accx": "acc", "accy": "acc", "accz": "acc"}
 CONFIGS = {
-    "ppg1 alone": (("ppg1",), "ppg1"),
     "ppg1+ppg2": (("ppg1", "ppg2"), FUSED),
     "with acc": (("ppg1", "ppg2", "accx", "accy", "accz"), FUSED),
 }
@@ -71,9 +62,8 @@ def scored(sig: np.ndarray, bpm0: np.ndarray, channels, source) -> dict:
         if not np.isfinite(shown[k]):
             earlier = rate[:at_end[k]][np.isfinite(rate[:at_end[k]])]
             shown[k] = earlier[-1] if len(earlier) else np.nan
-    error = np.abs(shown - bpm0[:n])
-    return {"error": error, "fresh": np.isfinite(rate[at_end]),
-            "confidence": confidence[at_end]}
+    return {"error": np.abs(shown - bpm0[:n]), "shown": shown, "truth": bpm0[:n],
+            "fresh": np.isfinite(rate[at_end]), "confidence": confidence[at_end]}
 
 
 @pytest.fixture(scope="module")
@@ -96,32 +86,46 @@ def aae(results, config) -> np.ndarray:
     return np.array([np.nanmean(results[name][config]["error"]) for name in RECORDS])
 
 
-def test_mean_aae_over_records_01_to_06_meets_the_target(results):
+def test_every_record_is_tracked(results):
     per_record = aae(results, "with acc")
     print("AAE with acc per record:", np.round(per_record, 2), "mean", per_record.mean())
-    assert per_record.mean() <= TARGET_AAE
-    # Every record is tracked: no record is rescued by the others.
-    assert per_record.max() <= 2.5
+    assert per_record.mean() <= UNSEEN_MEAN_AAE
+    assert per_record.max() <= UNSEEN_WORST_AAE
+
+
+def test_no_lasting_wrong_lock(results):
+    """Record 10 is the one where the tracker used to lock at half the rate for minutes
+    (issue 13): on every record, no stretch longer than 10 s is more than 20 bpm off."""
+    for name in RECORDS:
+        off = results[name]["with acc"]["error"] > 20.0
+        longest = run = 0
+        for flag in off.tolist():
+            run = run + 1 if flag else 0
+            longest = max(longest, run)
+        # Window ends are 2 s apart: a run of n windows spans (n - 1) * 2 s.
+        assert (longest - 1) * SHIFT / FS <= 10.0, (name, longest)
 
 
 def test_accelerometer_aided_fused_beats_ppg_only(results):
     full = aae(results, "with acc")
-    for config in ("ppg1 alone", "ppg1+ppg2"):
-        ppg_only = aae(results, config)
-        print(config, np.round(ppg_only, 2))
-        # Several times better on the mean ...
-        assert full.mean() < 0.2 * ppg_only.mean()
-        # ... and on each record better, unless both are already within the target (record
-        # 05, whose PPG is clean enough alone: 0.71 bpm against 1.03 with acc).
-        for name, a, b in zip(RECORDS, full, ppg_only):
-            assert a < b or max(a, b) <= TARGET_AAE, name
+    ppg_only = aae(results, "ppg1+ppg2")
+    print("ppg1+ppg2", np.round(ppg_only, 2))
+    assert full.mean() < 0.2 * ppg_only.mean()
+    # On each record better, unless both are already good (records 05, 07 and 09, whose
+    # PPG is clean enough alone: 0.6-0.9 bpm against 0.8-1.3 with the accelerometer).
+    for name, a, b in zip(RECORDS, full, ppg_only):
+        assert a < b or max(a, b) <= 1.5, name
 
 
-def test_estimates_are_shown_and_confidence_means_something(results):
+def test_confident_estimates_are_within_tolerance(results):
+    """Issue 13: confident estimates (>= 0.8) on the running records are within the
+    heart-rate tolerance (+-10 % or +-5 bpm, whichever is greater; ANSI/AAMI EC13, from
+    memory) at >= 95 %, and most estimates are confident."""
+    confidence = np.concatenate([results[n]["with acc"]["confidence"] for n in RECORDS])
+    shown = np.concatenate([results[n]["with acc"]["shown"] for n in RECORDS])
+    truth = np.concatenate([results[n]["with acc"]["truth"] for n in RECORDS])
     fresh = np.concatenate([results[n]["with acc"]["fresh"] for n in RECORDS])
     assert fresh.mean() >= 0.95  # withheld at fewer than 5 % of window ends
-    error = np.concatenate([results[n]["with acc"]["error"] for n in RECORDS])
-    confidence = np.concatenate([results[n]["with acc"]["confidence"] for n in RECORDS])
-    good, bad = error < 3.0, error > 10.0
-    assert bad.sum() >= 5
-    assert confidence[bad].mean() < confidence[good].mean()
+    confident = confidence >= 0.8
+    assert confident.mean() >= 0.5
+    assert within_tolerance(shown[confident], truth[confident]).mean() >= 0.95

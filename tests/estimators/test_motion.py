@@ -210,12 +210,27 @@ def test_harmonic_support_formula_and_the_stronger_second_harmonic():
     h = motion.harmonic_support(mag, p)
     assert bins[np.argmax(h[0])] == fundamental
     # The formula, bin by bin, normalised to a peak of 1.
-    direct = mag[0, bins] + 0.75 * np.where(2 * bins < p.n_bins,
-                                            mag[0, np.minimum(2 * bins, p.n_bins - 1)], 0.0)
+    double = np.where(2 * bins < p.n_bins, mag[0, np.minimum(2 * bins, p.n_bins - 1)], 0.0)
+    direct = mag[0, bins] + 0.75 * np.minimum(mag[0, bins], double)
     np.testing.assert_allclose(h[0], direct / direct.max())
     # Without the harmonic term the doubled rate wins.
     plain = motion.harmonic_support(mag, params(harmonic_weight=0.0))
     assert bins[np.argmax(plain[0])] == 2 * fundamental
+
+
+def test_harmonic_support_needs_a_peak_at_the_fundamental():
+    """Running: the pulse at f, motion residue (the arm swing) at f / 2 with 40 % of the
+    pulse's level. The plain harmonic sum would make f / 2 the peak (0.4 + 0.75 > 1);
+    the harmonic only supports a fundamental up to its own level, so f stays the peak."""
+    p = params(harmonic_weight=0.75)
+    bins = p.band_bins
+    pulse = bins[60]
+    assert pulse % 2 == 0 and pulse // 2 in bins
+    mag = np.zeros((1, p.n_bins))
+    mag[0, pulse] = 1.0
+    mag[0, pulse // 2] = 0.4
+    h = motion.harmonic_support(mag, p)
+    assert bins[np.argmax(h[0])] == pulse
 
 
 def test_motion_lines_mark_strong_peaks_only():

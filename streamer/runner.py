@@ -4,8 +4,9 @@ The :class:`Runner` pulls items from a source, feeds chunks to the engine
 (:class:`estimators.monitor.RateMonitor`), writes every estimate to the log (flushed per
 line) and the LSL outlet, and hands copies to listeners (the display) without ever
 waiting for them. A stop request (Ctrl-C, SIGTERM, a closed window, ``--duration``)
-ends the loop at the next item; the log is closed in a ``finally`` block so it is
-complete up to the last hop processed.
+closes the source, so the loop ends at the next item or, when the source is waiting
+for data (a lost stream), as soon as the source notices; the log is closed in a
+``finally`` block so it is complete up to the last hop processed.
 """
 
 from __future__ import annotations
@@ -115,7 +116,8 @@ class Runner:
     profile : engine profile.
     log : an :class:`~streamer.sinks.estimate_log.EstimateLog` or None.
     outlet : an estimate outlet with ``push(estimates)`` and ``close()``, or None.
-    duration_s : stop after this many wall-clock seconds (None: run to the end).
+    duration_s : stop after this many wall-clock seconds (None: run to the end), even
+        while the source yields nothing (a lost stream).
     listeners : callables receiving an :class:`Update`; they must not block.
     clock : wall clock (injectable for tests).
     """
@@ -201,6 +203,14 @@ class Runner:
     def run(self) -> RunStats:
         """Process items until the source ends, a stop is requested or time is up."""
         started = self.clock()
+        timer = None
+        if self.duration_s is not None:
+            # The check after each item below ends the run on the (injectable) clock; this
+            # timer ends it on time when the source yields nothing at all, as a lost live
+            # stream does while it waits for a comeback.
+            timer = threading.Timer(self.duration_s, self.stop, args=(self._time_up(),))
+            timer.daemon = True
+            timer.start()
         try:
             for item in self.source.chunks():
                 if self.stop_event.is_set():
@@ -213,12 +223,17 @@ class Runner:
                         self.stop_reason = self.stop_reason or "end of recording"
                         break
                 if self.duration_s is not None and self.clock() - started >= self.duration_s:
-                    self.stop_reason = self.stop_reason or f"--duration {self.duration_s:g} s reached"
+                    self.stop_reason = self.stop_reason or self._time_up()
                     break
         finally:
+            if timer is not None:
+                timer.cancel()
             self.stats.stopped_by = self.stop_reason or "source ended"
             self.close()
         return self.stats
+
+    def _time_up(self) -> str:
+        return f"--duration {self.duration_s:g} s reached"
 
     def close(self) -> None:
         for sink in (self.log, self.outlet):

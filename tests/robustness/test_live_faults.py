@@ -101,6 +101,121 @@ def header_lines(log: Path) -> list[str]:
             f"channels: PPG=ppg; profile wrist; log {log}"]
 
 
+def test_duration_holds_while_the_stream_is_lost(tmp_path):
+    """The sender goes away for good after 3 s: the run still ends at --duration with a
+    complete log and exit code 0, and stderr holds ridgewatch's own lines only (liblsl
+    used to add 'Stream transmission broke off' there)."""
+    name = unique("rw-gone")
+    publisher = ppg_publisher(name)
+    log = tmp_path / "live.csv"
+    proc = start_live("--name", name, "--timeout", "60", "--display", "none",
+                      "--duration", "6", "--log", log, cwd=tmp_path)
+    try:
+        assert publisher.wait_for_consumers(HANG_S)
+        n = int(3 * FS)
+        push(publisher, trial_ppg(3.0), pylsl.local_clock() + np.arange(n) / FS)
+    finally:
+        publisher.close()
+    err = finish(proc)
+    lines = err.splitlines()
+    assert proc.returncode == 0, err
+    assert lines[:2] == header_lines(log)
+    assert lines[2] == f"ridgewatch: stream '{name}' lost; waiting for it to come back"
+    assert lines[3].startswith("done (--duration 6 s reached): 3.0 s of signal, ")
+    assert lines[3].endswith(f"; log complete: {log}")
+    assert len(lines) == 4, err
+    text = log.read_text()
+    assert text.endswith(f" lost: stream '{name}' lost; waiting for it to come back\n")
+    assert read_log(log).header["source"] == name
+
+
+def test_bursty_sender_is_not_lost(tmp_path):
+    """A sender that delivers 8 s of samples at a time, with 3 s between deliveries
+    (faster than real time so the test stays short; only the pauses matter), is not
+    lost: the engine never restarts, so every hop of the 40 s is estimated, breathing
+    included, exactly as the engine estimates the same samples in one go."""
+    name = unique("rw-burst")
+    publisher = ppg_publisher(name)
+    log = tmp_path / "live.csv"
+    x = trial_ppg(40.0)
+    proc = start_live("--name", name, "--timeout", "60", "--display", "none",
+                      "--log", log, cwd=tmp_path)
+    try:
+        assert publisher.wait_for_consumers(HANG_S)
+        t = pylsl.local_clock() + np.arange(len(x)) / FS
+        burst = int(8 * FS)
+        for a in range(0, len(x), burst):
+            if a:
+                time.sleep(3.0)
+            publisher.push_chunk(Chunk(x[a:a + burst], t[a:a + burst]))
+        time.sleep(1.0)
+        publisher.close()  # the end: now the stream is lost, which ends the test
+        lost = f" lost: stream '{name}' lost; waiting for it to come back"
+        wait_for(lambda: log_says(log, lost), "the lost line at the end")
+        proc.send_signal(signal.SIGTERM)
+    finally:
+        publisher.close()
+    err = finish(proc)
+    assert proc.returncode == 0, err
+    assert [line.split(" ", 3)[3] for line in event_lines(log)] == [lost.lstrip()]
+    table = read_log(log)
+    want = RateMonitor([("PPG", "ppg")], FS, PROFILE).update(x, t)
+    assert {(e.quantity, e.source) for e in want} == {("hr", "PPG"), ("rr", "PPG")}
+    for pair in (("hr", "PPG"), ("rr", "PPG")):
+        rows = table.select(*pair).columns
+        mine = [e for e in want if (e.quantity, e.source) == pair]
+        assert len(rows["rate_per_min"]) == len(mine)
+        # The log keeps 3 decimals of rates and 4 of times: half a unit in the last
+        # place is its round-off.
+        np.testing.assert_allclose(rows["rate_per_min"], [e.rate_per_min for e in mine],
+                                   atol=5e-4, equal_nan=True)
+        # The inlet adds its clock-offset estimate (microseconds on one machine).
+        np.testing.assert_allclose(rows["emitted_s"], [e.emitted_s for e in mine], atol=1e-3)
+    breathing = table.select("rr", "PPG").columns["rate_per_min"]
+    assert np.isfinite(breathing).sum() >= 20
+
+
+FROZEN_SENDER = """
+import os, signal, sys, time
+import numpy as np, pylsl
+pylsl.set_config_content("[log]\\nlevel = -3\\n")
+name, fs = sys.argv[1], 125.0
+info = pylsl.StreamInfo(name, "PPG", 1, fs, pylsl.cf_double64, name + "-sid")
+outlet = pylsl.StreamOutlet(info)
+outlet.wait_for_consumers(120.0)
+t0 = pylsl.local_clock()
+for k in range(0, int(3 * fs), 5):
+    phase = 1.2 * (t0 + (k + np.arange(5)) / fs)
+    outlet.push_chunk(np.sin(2 * np.pi * phase)[:, None].tolist(), (t0 + (k + np.arange(5)) / fs).tolist())
+    time.sleep(5 / fs)
+os.kill(os.getpid(), signal.SIGSTOP)
+"""
+
+
+def test_frozen_sender_is_lost(tmp_path):
+    """A sender that freezes (its process stopped, as a machine that drops off the
+    network) keeps its connection open, so liblsl reports nothing; it stops answering
+    on the network, so it is lost, and --duration still ends the run."""
+    name = unique("rw-frozen")
+    sender = subprocess.Popen([sys.executable, "-c", FROZEN_SENDER, name])
+    log = tmp_path / "live.csv"
+    try:
+        proc = start_live("--name", name, "--timeout", "60", "--display", "none",
+                          "--duration", "9", "--log", log, cwd=tmp_path)
+        err = finish(proc)
+    finally:
+        sender.kill()  # SIGKILL ends a stopped process too
+        sender.wait(HANG_S)
+    lines = err.splitlines()
+    assert proc.returncode == 0, err
+    # The sender describes no channels: its one channel is named by position and
+    # takes the stream's type.
+    assert lines[:2] == [header_lines(log)[0], f"channels: ch0=ppg; profile wrist; log {log}"]
+    assert lines[2] == f"ridgewatch: stream '{name}' lost; waiting for it to come back"
+    assert lines[3].startswith("done (--duration 9 s reached): 3.0 s of signal, ")
+    assert len(lines) == 4, err
+
+
 def test_liblsl_lines_stay_off_a_one_line_error(tmp_path):
     """With a user's lsl_api.cfg that says nothing about logging (here: its own LSL
     session), liblsl used to print 'Configuration loaded from lsl_api.cfg' before the

@@ -25,6 +25,7 @@ from streamer.sources.base import ChannelInfo, Chunk, SourceEvent, SourceInfo
 from streamer.sources.lsl_publish import SamplePublisher, stream_type_for
 from streamer.sources.lsl_source import (
     LslSource,
+    SilenceCheck,
     TimingCheck,
     build_predicate,
     channels_from_info,
@@ -364,13 +365,16 @@ def test_lost_then_resumed_with_same_source_id():
     np.testing.assert_array_equal(stacked(after)[0], synthetic(0, half, offset=0.25)[0])
 
 
+@pytest.mark.parametrize("pause_s, kinds", [(1.2, ["gap"]), (2.5, ["irregular", "gap"])])
 @pytest.mark.lsl
-def test_silent_stream_is_lost_then_resumed():
+def test_silent_stream_still_on_the_network_is_not_lost(pause_s, kinds):
+    """A sender that stops sending but keeps its outlet is not lost: after the silence
+    limit plus ``presence_s`` (0.3 + 1.5 s) one event says it is silent; the hole in its
+    timestamps is a gap, and nothing is restarted."""
     name = unique("rw-silent")
     publisher = SamplePublisher(make_info(name))
-    source = LslSource(name=name, extra_wait_s=0.2, lost_after_s=0.5)
+    source = LslSource(name=name, extra_wait_s=0.2, lost_after_s=0.3, presence_s=1.5)
     part = int(0.4 * FS)
-    pause_s = 1.2
 
     def run():
         publish_paced(publisher, 0, part)
@@ -384,11 +388,38 @@ def test_silent_stream_is_lost_then_resumed():
     source.close()
     publisher.close()
 
-    assert [e.kind for e in events(items)] == ["lost", "resumed"]
-    resumed = events(items, "resumed")[0]
-    # The resumed event reports the hole in stream time; no separate gap event.
-    assert resumed.detail["missing_s"] == pytest.approx(pause_s, abs=1e-3)
+    assert [e.kind for e in events(items)] == kinds
+    if "irregular" in kinds:
+        stalled = events(items, "irregular")[0]
+        assert stalled.message == (f"stream '{name}' has sent no samples for 1.8 s but is "
+                                   f"still on the network; waiting for more")
+        assert stalled.detail["silent_s"] > 1.8
+    gap = events(items, "gap")[0]
+    assert gap.detail["missing_s"] == pytest.approx(pause_s, abs=1e-3)
     np.testing.assert_array_equal(stacked(items)[0], synthetic(0, 2 * part)[0])
+
+
+def test_silence_check_learns_the_rhythm_of_a_bursty_sender():
+    check = SilenceCheck(2.0, presence_s=3.0)
+    # A pause after which the timestamps skip is a hole: it teaches nothing.
+    check.delivered(10.0, continues=False)
+    assert check.limit_s == 2.0
+    assert check.verdict(1.9, present=False) is None
+    assert check.verdict(2.1, present=False) == "lost"
+    assert check.verdict(4.9, present=True) is None
+    assert check.verdict(5.1, present=True) == "stalled"
+    # Ten seconds of samples delivered every ten seconds: twice that is the limit.
+    check.delivered(10.0, continues=True)
+    check.delivered(0.01, continues=True)
+    assert check.limit_s == 20.0
+    assert check.verdict(19.0, present=False) is None
+    assert check.verdict(21.0, present=False) == "lost"
+    assert check.verdict(22.0, present=True) is None
+    assert check.verdict(23.5, present=True) == "stalled"
+    with pytest.raises(ParameterError, match="lost_after_s=0 must be > 0"):
+        SilenceCheck(0)
+    with pytest.raises(ParameterError, match="presence_s=-1 must be > 0"):
+        SilenceCheck(1.0, presence_s=-1)
 
 
 @pytest.mark.lsl

@@ -302,9 +302,11 @@ def _run(args, source, mode: str, input_id: str) -> int:
     if args.publish or getattr(args, "publish_samples", False):
         _quiet_liblsl()
     if args.publish:
-        from streamer.sinks.outlet import EstimateOutlet
-        runner.outlet = EstimateOutlet(runner.monitor.streams, profile.hr.hop_s,
-                                       input_id=input_id, use_stream_time=(mode == "live"))
+        from streamer.sinks.outlet import EstimateOutlet, hops_by_stream
+        runner.outlet = EstimateOutlet(runner.monitor.streams, hops_by_stream(runner.monitor),
+                                       name=f"ridgewatch {source.info.name}",
+                                       input_id=f"{input_id}|{profile.name}",
+                                       use_stream_time=(mode == "live"))
     publisher = None
     if getattr(args, "publish_samples", False):
         from streamer.sources.base import ChannelInfo, SourceInfo
@@ -321,7 +323,9 @@ def _run(args, source, mode: str, input_id: str) -> int:
     if not args.quiet:
         print(f"ridgewatch {__version__}: {CAUTION}", file=sys.stderr)
         print("channels: " + ", ".join(f"{s.name}={s.kind}" for s in selected)
-              + f"; profile {profile.name}" + (f"; log {log_path}" if log_path else ""),
+              + f"; profile {profile.name}" + (f"; log {log_path}" if log_path else "")
+              + ("; publishing LSL streams " + ", ".join(
+                  f"'{n}'" for n in runner.outlet.names.values()) if runner.outlet else ""),
               file=sys.stderr)
     try:
         if display == "qt":

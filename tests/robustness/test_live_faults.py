@@ -216,6 +216,126 @@ def test_frozen_sender_is_lost(tmp_path):
     assert len(lines) == 4, err
 
 
+class EstimateCollector(threading.Thread):
+    """Subscribes to every estimate stream whose name starts with ``prefix`` and keeps
+    everything each one sends."""
+
+    def __init__(self, prefix: str):
+        super().__init__(daemon=True)
+        self.prefix = prefix
+        self.streams: dict = {}
+        self.stop = threading.Event()
+
+    def names(self) -> set:
+        """Names of the streams subscribed to and not lost."""
+        return {s["name"] for s in list(self.streams.values()) if not s["lost"]}
+
+    def run(self):
+        inlets = {}
+        quiet_since = None
+        while True:
+            if not self.stop.is_set():
+                for info in pylsl.resolve_byprop("type", STREAM_TYPE, minimum=0, timeout=0.2):
+                    if info.name().startswith(self.prefix) and info.uid() not in inlets:
+                        inlet = pylsl.StreamInlet(info, max_buflen=60)
+                        try:
+                            inlet.open_stream(timeout=10.0)
+                            full = inlet.info(timeout=10.0)
+                        except (pylsl.util.LostError, pylsl.util.TimeoutError):
+                            continue  # gone already (a run that took the next number)
+                        inlets[info.uid()] = inlet
+                        self.streams[info.uid()] = {
+                            "name": info.name(), "source_id": info.source_id(),
+                            "srate": info.nominal_srate(), "lost": False,
+                            "labels": full.get_channel_labels(), "x": [], "t": []}
+            got = 0
+            for uid, inlet in inlets.items():
+                if self.streams[uid]["lost"]:
+                    continue
+                try:
+                    x, t = inlet.pull_chunk(timeout=0.0)
+                except pylsl.util.LostError:
+                    self.streams[uid]["lost"] = True
+                    continue
+                self.streams[uid]["x"] += x
+                self.streams[uid]["t"] += t
+                got += len(t)
+            if self.stop.is_set():
+                # Stopped: keep draining until nothing more arrives for a while.
+                quiet_since = None if got else quiet_since or time.monotonic()
+                if quiet_since is not None and time.monotonic() - quiet_since > 1.0:
+                    return
+            time.sleep(0.02)
+
+
+def test_publish_sends_one_sample_per_log_row_per_stream(tmp_path):
+    """Two ``live --publish`` runs at once on one input: each publishes one stream per
+    estimate stream of its log, at the nominal rate 1 / hop, with exactly the log's
+    rows (NaN only where the log has no rate); the two runs' names and source ids
+    differ."""
+    name = unique("rw-pub")
+    publisher = ppg_publisher(name)
+    collector = EstimateCollector(f"ridgewatch {name} ")
+    collector.start()
+    logs = [tmp_path / "a.csv", tmp_path / "b.csv"]
+    procs = [start_live("--name", name, "--timeout", "60", "--display", "none", "--publish",
+                        "--log", log, cwd=tmp_path) for log in logs]
+    x = trial_ppg(40.0)
+    try:
+        # Both runs publish two streams (heart and breathing rate) once they have
+        # subscribed to the input; the collector subscribes to all four before the
+        # first sample is sent, so it misses nothing.
+        wait_for(lambda: len(collector.names()) == 4, "four estimate streams")
+        push(publisher, x, pylsl.local_clock() + np.arange(len(x)) / FS, speed=4.0)
+        time.sleep(1.0)
+        publisher.close()
+        lost = f" lost: stream '{name}' lost; waiting for it to come back"
+        wait_for(lambda: all(log_says(log, lost) for log in logs), "the lost lines")
+        for proc in procs:
+            proc.send_signal(signal.SIGTERM)
+    finally:
+        publisher.close()
+        errs = [finish(proc) for proc in procs]
+        collector.stop.set()
+        collector.join(HANG_S)
+    assert [proc.returncode for proc in procs] == [0, 0], errs
+
+    instance = {}
+    for log, err in zip(logs, errs):
+        line = err.splitlines()[1]
+        for base in (f"ridgewatch {name}", f"ridgewatch {name} (2)"):
+            if line == (f"{header_lines(log)[1]}; publishing LSL streams "
+                        f"'{base} hr.PPG', '{base} rr.PPG'"):
+                instance[log] = base
+    assert sorted(instance.values()) == [f"ridgewatch {name}", f"ridgewatch {name} (2)"], errs
+    # A run that found its ids taken dropped its first streams before sending anything.
+    streams = {s["name"]: s for s in collector.streams.values() if s["t"]}
+    assert len(streams) == len({s["source_id"] for s in streams.values()}) == 4
+
+    for log, base in instance.items():
+        table = read_log(log)
+        assert set(table.pairs()) == {("hr", "PPG"), ("rr", "PPG")}
+        for quantity, source in table.pairs():
+            stream = streams[f"{base} {quantity}.{source}"]
+            # The declared rate is 1 / hop (the wrist profile's 0.25 s for both).
+            assert stream["srate"] == 1.0 / PROFILE.hr.hop_s == 1.0 / PROFILE.rr_pulse.hop_s
+            assert stream["labels"] == channel_labels([(quantity, source)])
+            got = np.array(stream["x"], dtype=np.float64).reshape(-1, len(FIELDS))
+            cols = table.select(quantity, source).columns
+            assert len(got) == len(cols["rate_per_min"]) > 0
+            # The log keeps 4 decimals of times and fractions, 3 of rates: half a unit
+            # in the last place is its round-off.
+            np.testing.assert_allclose(stream["t"], cols["emitted_s"], atol=5e-5)
+            np.testing.assert_allclose(got[:, 0], cols["rate_per_min"], atol=5e-4,
+                                       equal_nan=True)
+            np.testing.assert_allclose(got[:, 1], cols["confidence"], atol=5e-5)
+            np.testing.assert_allclose(got[:, 2], cols["quality"], atol=5e-5)
+            np.testing.assert_array_equal(np.isnan(got[:, 3]), np.isnan(cols["rate_per_min"]))
+            shown = ~np.isnan(got[:, 3])
+            np.testing.assert_allclose(got[shown, 3], cols["delay_s"][shown], atol=1.5e-4)
+            assert not np.isnan(got[:, 1:3]).any()
+
+
 def test_liblsl_lines_stay_off_a_one_line_error(tmp_path):
     """With a user's lsl_api.cfg that says nothing about logging (here: its own LSL
     session), liblsl used to print 'Configuration loaded from lsl_api.cfg' before the

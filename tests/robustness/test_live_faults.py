@@ -71,13 +71,19 @@ def start_live(*args, cwd) -> subprocess.Popen:
 
 
 def finish(proc: subprocess.Popen) -> str:
-    """The subprocess's stderr once it has ended (killed after ``HANG_S``)."""
+    """The subprocess's stderr once it has ended; killed when it has not ended after
+    ``HANG_S`` (its return code then says so)."""
     try:
         return proc.communicate(timeout=HANG_S)[1]
-    finally:
-        if proc.poll() is None:
-            proc.kill()
-            proc.communicate()
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        return proc.communicate()[1]
+
+
+def stop(proc: subprocess.Popen) -> None:
+    """SIGTERM, as a user stops a run without --duration (a no-op once it has ended)."""
+    if proc.poll() is None:
+        proc.send_signal(signal.SIGTERM)
 
 
 def wait_for(condition, what: str) -> None:
@@ -152,9 +158,9 @@ def test_bursty_sender_is_not_lost(tmp_path):
         publisher.close()  # the end: now the stream is lost, which ends the test
         lost = f" lost: stream '{name}' lost; waiting for it to come back"
         wait_for(lambda: log_says(log, lost), "the lost line at the end")
-        proc.send_signal(signal.SIGTERM)
     finally:
         publisher.close()
+        stop(proc)
     err = finish(proc)
     assert proc.returncode == 0, err
     assert [line.split(" ", 3)[3] for line in event_lines(log)] == [lost.lstrip()]
@@ -291,10 +297,10 @@ def test_publish_sends_one_sample_per_log_row_per_stream(tmp_path):
         publisher.close()
         lost = f" lost: stream '{name}' lost; waiting for it to come back"
         wait_for(lambda: all(log_says(log, lost) for log in logs), "the lost lines")
-        for proc in procs:
-            proc.send_signal(signal.SIGTERM)
     finally:
         publisher.close()
+        for proc in procs:
+            stop(proc)
         errs = [finish(proc) for proc in procs]
         collector.stop.set()
         collector.join(HANG_S)

@@ -114,7 +114,7 @@ def measure_latency(duration_s: float, profile: str = "wrist") -> dict:
     samples_name, estimates_id = f"bench-latency-samples-{tag}", f"bench-latency-est-{tag}"
     outlet = EstimateOutlet([("hr", "PPG")], prof.hr.hop_s, name=estimates_id,
                             source_id=estimates_id, use_stream_time=True)
-    inlet = _open_inlet(estimates_id)
+    inlet = _open_inlet(outlet.source_ids[("hr", "PPG")])
     code = f"import bench.latency as L; L.publish({samples_name!r}, {duration_s!r})"
     publisher = subprocess.Popen([sys.executable, "-c", code], cwd=REPO_ROOT, env=worker_env(),
                                  stdin=subprocess.PIPE, stdout=subprocess.PIPE,

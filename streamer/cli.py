@@ -204,25 +204,63 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _quiet_liblsl() -> None:
-    """Keep liblsl's INFO lines ("Loaded default config", ...) off stderr, so that an
-    error stays one line. Warnings and errors still show.
+LIBLSL_LOG_LEVEL = -3
+"""liblsl's console verbosity under ridgewatch: -3 keeps only fatal messages (loguru's
+scale, -3 fatal to 9 debug; liblsl ``api_config.cpp``). Its errors ("Stream
+transmission broke off ...") are about things ridgewatch reports itself in one line of
+its own, so they would only split that line's story in two."""
 
-    Skipped when the user has an LSL configuration file, because configuration content
-    set here would take precedence over that file (pylsl ``set_config_content`` docs).
-    The places liblsl looks (``LSLAPICFG``, ``./lsl_api.cfg``, ``~/lsl_api/lsl_api.cfg``,
-    ``/etc/lsl_api/lsl_api.cfg``) are from memory of the liblsl documentation.
-    """
+
+def _liblsl_config_file() -> Path | None:
+    """The configuration file liblsl would read: the first readable one of
+    ``$LSLAPICFG``, ``./lsl_api.cfg``, ``~/lsl_api/lsl_api.cfg``,
+    ``/etc/lsl_api/lsl_api.cfg`` (the order of liblsl's ``api_config.cpp``)."""
     candidates = [os.environ.get("LSLAPICFG"), "lsl_api.cfg",
                   str(Path.home() / "lsl_api" / "lsl_api.cfg"), "/etc/lsl_api/lsl_api.cfg"]
-    if any(c and Path(c).is_file() for c in candidates):
-        return
+    for candidate in candidates:
+        if candidate and os.access(candidate, os.R_OK) and Path(candidate).is_file():
+            return Path(candidate)
+    return None
+
+
+def _ini_keys(text: str) -> set[str]:
+    """``section.key`` names in an INI text, read the way liblsl reads its file (``;``
+    starts a comment line; ``[section]`` lines; ``key = value`` lines)."""
+    keys, section = set(), ""
+    for line in text.splitlines():
+        if not line.strip() or line.startswith(";"):
+            continue
+        if line.startswith("["):
+            section = line[1:line.find("]")].strip() + "." if "]" in line else section
+        elif "=" in line:
+            keys.add(section + line.split("=", 1)[0].strip())
+    return keys
+
+
+def _quiet_liblsl() -> None:
+    """Keep liblsl's console lines off stderr (see :data:`LIBLSL_LOG_LEVEL`), so that
+    what the user reads is ridgewatch's own lines, each error on one line.
+
+    Must run before the first pylsl call that reaches liblsl. Configuration content
+    given to liblsl replaces its configuration file (pylsl ``set_config_content``), so
+    the user's file, if any, is passed on with a ``[log]`` section added. A file that
+    already sets ``log.level`` or ``log.file`` is left alone: its owner chose what
+    liblsl shows (liblsl refuses a repeated key, so adding ours would void the file).
+    """
+    path = _liblsl_config_file()
+    text = ""
+    if path is not None:
+        try:
+            text = path.read_text(encoding="utf-8", errors="replace")
+        except OSError:
+            return
+        if {"log.level", "log.file"} & _ini_keys(text):
+            return
     try:
         import pylsl
-        # loguru verbosity: -1 = WARNING; liblsl's default is 0 = INFO (from memory).
-        pylsl.set_config_content("[log]\nlevel = -1\n")
+        pylsl.set_config_content(f"{text}\n[log]\nlevel = {LIBLSL_LOG_LEVEL}\n")
     except (ImportError, NotImplementedError, AttributeError):
-        pass  # an older liblsl: its INFO lines show, nothing else changes
+        pass  # an older liblsl: its lines show, nothing else changes
 
 
 def _screen_available() -> bool:
@@ -327,9 +365,11 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
     if args.publish or getattr(args, "publish_samples", False):
         _quiet_liblsl()
     if args.publish:
-        from streamer.sinks.outlet import EstimateOutlet
-        runner.outlet = EstimateOutlet(runner.monitor.streams, profile.hr.hop_s,
-                                       input_id=input_id, use_stream_time=(mode == "live"))
+        from streamer.sinks.outlet import EstimateOutlet, hops_by_stream
+        runner.outlet = EstimateOutlet(runner.monitor.streams, hops_by_stream(runner.monitor),
+                                       name=f"ridgewatch {source.info.name}",
+                                       input_id=f"{input_id}|{profile.name}",
+                                       use_stream_time=(mode == "live"))
     publisher = None
     if getattr(args, "publish_samples", False):
         from streamer.sources.base import ChannelInfo, SourceInfo
@@ -346,7 +386,9 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
     if not args.quiet:
         print(f"ridgewatch {__version__}: {CAUTION}", file=sys.stderr)
         print("channels: " + ", ".join(f"{s.name}={s.kind}" for s in selected)
-              + f"; profile {profile.name}" + (f"; log {log_path}" if log_path else ""),
+              + f"; profile {profile.name}" + (f"; log {log_path}" if log_path else "")
+              + ("; publishing LSL streams " + ", ".join(
+                  f"'{n}'" for n in runner.outlet.names.values()) if runner.outlet else ""),
               file=sys.stderr)
     try:
         if display == "qt":

@@ -6,9 +6,10 @@ line) and the LSL outlet, and hands copies to listeners (the display) without ev
 waiting for them. When the engine restarts at a gap in the timestamps
 (:func:`estimators.monitor.find_gaps`; any source, file replay included), a ``"gap"``
 event goes into the log between the rows before and after it, unless the source
-reported that hole itself. A stop request (Ctrl-C, SIGTERM, a closed window, ``--duration``)
-ends the loop at the next item; the log is closed in a ``finally`` block so it is
-complete up to the last hop processed.
+reported that hole itself. A stop request (Ctrl-C, SIGTERM, a closed window,
+``--duration``) closes the source, so the loop ends at the next item or, when the source
+is waiting for data (a lost stream), as soon as the source notices; the log is closed in
+a ``finally`` block so it is complete up to the last hop processed.
 """
 
 from __future__ import annotations
@@ -118,7 +119,8 @@ class Runner:
     profile : engine profile.
     log : an :class:`~streamer.sinks.estimate_log.EstimateLog` or None.
     outlet : an estimate outlet with ``push(estimates)`` and ``close()``, or None.
-    duration_s : stop after this many wall-clock seconds (None: run to the end).
+    duration_s : stop after this many wall-clock seconds (None: run to the end), even
+        while the source yields nothing (a lost stream).
     listeners : callables receiving an :class:`Update`; they must not block.
     clock : wall clock (injectable for tests).
     """
@@ -234,6 +236,14 @@ class Runner:
     def run(self) -> RunStats:
         """Process items until the source ends, a stop is requested or time is up."""
         started = self.clock()
+        timer = None
+        if self.duration_s is not None:
+            # The check after each item below ends the run on the (injectable) clock; this
+            # timer ends it on time when the source yields nothing at all, as a lost live
+            # stream does while it waits for a comeback.
+            timer = threading.Timer(self.duration_s, self.stop, args=(self._time_up(),))
+            timer.daemon = True
+            timer.start()
         try:
             for item in self.source.chunks():
                 if self.stop_event.is_set():
@@ -246,12 +256,17 @@ class Runner:
                         self.stop_reason = self.stop_reason or "end of recording"
                         break
                 if self.duration_s is not None and self.clock() - started >= self.duration_s:
-                    self.stop_reason = self.stop_reason or f"--duration {self.duration_s:g} s reached"
+                    self.stop_reason = self.stop_reason or self._time_up()
                     break
         finally:
+            if timer is not None:
+                timer.cancel()
             self.stats.stopped_by = self.stop_reason or "source ended"
             self.close()
         return self.stats
+
+    def _time_up(self) -> str:
+        return f"--duration {self.duration_s:g} s reached"
 
     def close(self) -> None:
         for sink in (self.log, self.outlet):

@@ -1,36 +1,57 @@
-"""Estimates as an LSL stream, for other LSL tools to record or react to.
+"""Estimates as LSL streams, for other LSL tools to record or react to.
 
-:class:`EstimateOutlet` publishes one sample per hop. Channels come in groups of four,
-one group per (quantity, source) pair, in the order given::
+:class:`EstimateOutlet` publishes one LSL stream per estimate stream of the engine (one
+per (quantity, source) pair, e.g. ``hr.PLETH`` and ``rr.PLETH``), each with four
+channels::
 
     hr.PLETH.rate_per_min   unit 1/min
     hr.PLETH.confidence     unit 1 (a fraction in [0, 1])
     hr.PLETH.quality        unit 1 (a fraction in [0, 1])
     hr.PLETH.delay_s        unit s
-    rr.fused.rate_per_min   ...
 
-A pair with no estimate in a hop sends NaN in all four channels; an estimate without a
-rate, or one the display rule withholds (:mod:`estimators.display_rule`: a heart rate
-more likely outside the tolerance than inside), sends NaN as rate and delay (confidence
-and quality still say why there is none). A greyed estimate is sent as it is: its
+Every row of the estimate log is one sample of its stream, and nothing else is sent: the
+consumer receives exactly as many samples per stream as the log has rows for it, and
+the declared nominal rate is ``1 / hop_s`` of that stream. An estimate without a rate,
+or one the display rule withholds (:mod:`estimators.display_rule`: a heart rate more
+likely outside the tolerance than inside), sends NaN as rate and delay (confidence and
+quality still say why there is none). A greyed estimate is sent as it is: its
 confidence tells the receiver how far to trust it.
 Values are double64: a few samples per second cost nothing, and rates and stream times
 keep full precision.
 
+One stream per pair, rather than one stream with a group of channels per pair, because
+the pairs do not share their hop times: each decimates to its own analysis rate, and the
+breathing rate from a pulse reports several hops at once when a beat completes them, so
+a shared sample would have to pad with NaN or merge hops.
+
+Names and source ids
+--------------------
+A stream is named ``"<name> <quantity>.<source>"``. Its ``source_id`` is derived from
+what the estimates are computed from (``input_id``), the pair and its hop, so that a
+restarted run on the same input gets the same ids and LSL recorders pick the streams up
+again. Two runs at the same time on the same input (one with a window, one logging, say)
+must not share ids: a recorder could not tell them apart. So the outlet looks on the
+network first: when another instance already publishes the id, it takes the next
+instance number ``n`` (name ``"<name> (n) ..."``, id suffix ``-n``). Two instances that
+start at the same moment both see the other after creating their streams; the younger
+one (by ``created_at``, then ``uid``) moves on.
+
 Timestamps
 ----------
-With ``use_stream_time=True`` (live input) each sample is stamped with the hop's
+With ``use_stream_time=True`` (live input) each sample is stamped with its estimate's
 ``emitted_s``: for LSL input that is already on the local LSL clock (see
 :mod:`streamer.sources.lsl_source`), so the estimates line up with the input stream in
 any LSL recording. With ``use_stream_time=False`` (replay: times are on the file's own
-axis, unrelated to the LSL clock) the newest hop of each push is stamped with
-:func:`pylsl.local_clock` at that moment and earlier hops of the same push keep their
-spacing in ``emitted_s``.
+axis, unrelated to the LSL clock) the newest estimate of each push is stamped with
+:func:`pylsl.local_clock` at that moment and the others keep their spacing in
+``emitted_s``. Several breathing estimates may share one ``emitted_s`` (see above);
+their window centres are ``timestamp - delay_s``.
 """
 
 from __future__ import annotations
 
-from typing import Iterable, Sequence
+import math
+from typing import Iterable, Mapping, Sequence
 
 import numpy as np
 import pylsl
@@ -45,9 +66,18 @@ FIELDS = ("rate_per_min", "confidence", "quality", "delay_s")
 
 UNITS = {"rate_per_min": "1/min", "confidence": "1", "quality": "1", "delay_s": "s"}
 
+STREAM_TYPE = "RateEstimates"
+
+CLAIM_WAIT_S = 0.5
+"""How long to listen for another instance with the same ids. The same wait as the
+live source's check for a second matching stream; on a local network LSL streams answer
+within milliseconds (measured on loopback: a few ms)."""
+
+_MAX_INSTANCES = 99
+
 
 def channel_labels(pairs: Sequence[tuple[str, str]]) -> list[str]:
-    """Channel labels for ``pairs`` in outlet order.
+    """Channel labels for ``pairs`` in order (four per pair).
 
     Examples
     --------
@@ -57,30 +87,62 @@ def channel_labels(pairs: Sequence[tuple[str, str]]) -> list[str]:
     return [f"{q}.{s}.{f}" for q, s in pairs for f in FIELDS]
 
 
+def hops_by_stream(monitor) -> dict[tuple[str, str], float]:
+    """The hop (s) of every estimate stream of a
+    :class:`~estimators.monitor.RateMonitor`, in its order: heart rate from the
+    profile's ``hr`` settings, breathing from a respiration channel from ``rr``, and
+    breathing from a pulse channel from ``rr_pulse``."""
+    profile = monitor.profile
+    kinds = dict(monitor.channels)
+    hops = {}
+    for quantity, source in monitor.streams:
+        if quantity == "hr":
+            settings = profile.hr
+        elif kinds.get(source) == "resp":
+            settings = profile.rr
+        else:
+            settings = profile.rr_pulse
+        hops[(quantity, source)] = settings.hop_s
+    return hops
+
+
+def _older(a: pylsl.StreamInfo, b: pylsl.StreamInfo) -> bool:
+    return (a.created_at(), a.uid()) < (b.created_at(), b.uid())
+
+
 class EstimateOutlet:
-    """An LSL outlet for estimates.
+    """LSL outlets for estimates, one per (quantity, source) pair.
 
     Parameters
     ----------
     quantities_sources : (quantity, source) pairs, e.g. ``[("hr", "PLETH"),
-        ("rr", "fused")]``; one group of :data:`FIELDS` channels each.
-    hop_s : the engine's hop in seconds; the nominal rate is ``1 / hop_s``.
-    name : stream name.
-    source_id : stream source id; by default derived from ``input_id`` and the pairs,
-        so restarting on the same input gives the same id and LSL recorders reconnect.
+        ("rr", "PLETH")]``; one stream each.
+    hop_s : the engine's hop in seconds, one for all pairs or one per pair (a mapping,
+        see :func:`hops_by_stream`); a stream's nominal rate is ``1 / hop_s``.
+    name : the streams' common name; each stream adds `` <quantity>.<source>``.
+    source_id : the streams' common id, each adding ``.<quantity>.<source>``; taken as
+        given (no look on the network). By default derived from ``input_id``, the
+        pairs and hops, plus an instance number when another run publishes the same.
     input_id : what the estimates are computed from (e.g. the input stream's
-        source_id or the file path); only used to derive ``source_id``.
+        source_id or the file path, and the profile); only used to derive the ids.
     use_stream_time : see the module notes on timestamps.
+    claim_wait_s : how long to listen for another instance with the same ids.
+
+    Attributes
+    ----------
+    instance : 1, or the instance number taken because others publish the same ids.
+    names, source_ids : pair -> stream name, pair -> stream source_id.
     """
 
     def __init__(
         self,
         quantities_sources: Iterable[tuple[str, str]],
-        hop_s: float,
+        hop_s: float | Mapping[tuple[str, str], float],
         name: str = "ridgewatch-estimates",
         source_id: str | None = None,
         input_id: str = "",
         use_stream_time: bool = True,
+        claim_wait_s: float = CLAIM_WAIT_S,
     ):
         pairs = [(str(q), str(s)) for q, s in quantities_sources]
         if not pairs:
@@ -90,20 +152,44 @@ class EstimateOutlet:
         for quantity, _ in pairs:
             if quantity not in QUANTITIES:
                 raise ParameterError(f"quantity={quantity!r} must be one of {QUANTITIES}")
-        if not hop_s > 0:
-            raise ParameterError(f"{hop_s=} must be > 0")
+        hops = dict(hop_s) if isinstance(hop_s, Mapping) else {p: hop_s for p in pairs}
+        for pair in pairs:
+            hop = hops.get(pair, math.nan)
+            if not hop > 0:
+                raise ParameterError(f"hop_s={hop!r} for {pair} must be > 0")
+        if not claim_wait_s >= 0:
+            raise ParameterError(f"{claim_wait_s=} must be >= 0")
         self.pairs = pairs
-        self.labels = channel_labels(pairs)
-        self._column = {pair: k * len(FIELDS) for k, pair in enumerate(pairs)}
-        self.source_id = source_id or derived_source_id(
-            "estimates", input_id, *(f"{q}.{s}" for q, s in pairs)
+        self.hops = {pair: float(hops[pair]) for pair in pairs}
+        self._use_stream_time = use_stream_time
+        self._outlets: dict[tuple[str, str], pylsl.StreamOutlet] = {}
+        if source_id:
+            self._open(name, source_id)
+            self.instance = 1
+            return
+        base_id = derived_source_id(
+            "estimates", input_id, *(f"{q}.{s}@{self.hops[(q, s)]:g}" for q, s in pairs)
         )
-        info = pylsl.StreamInfo(
-            name, "RateEstimates", len(self.labels), 1.0 / hop_s, pylsl.cf_double64,
-            self.source_id,
-        )
-        channels = info.desc().append_child("channels")
-        for (quantity, source) in pairs:
+        for n in range(1, _MAX_INSTANCES + 1):
+            suffix = "" if n == 1 else f"-{n}"
+            self._open(name if n == 1 else f"{name} ({n})", base_id + suffix)
+            if self._claimed(base_id + suffix, claim_wait_s):
+                self.instance = n
+                return
+            self._close_outlets()
+        raise RuntimeError(f"{_MAX_INSTANCES} instances already publish estimates of "
+                           f"{input_id!r}")
+
+    def _open(self, name: str, instance_id: str) -> None:
+        self.names = {(q, s): f"{name} {q}.{s}" for q, s in self.pairs}
+        self.source_ids = {(q, s): f"{instance_id}.{q}.{s}" for q, s in self.pairs}
+        for pair in self.pairs:
+            quantity, source = pair
+            info = pylsl.StreamInfo(
+                self.names[pair], STREAM_TYPE, len(FIELDS), 1.0 / self.hops[pair],
+                pylsl.cf_double64, self.source_ids[pair],
+            )
+            channels = info.desc().append_child("channels")
             for field in FIELDS:
                 node = channels.append_child("channel")
                 node.append_child_value("label", f"{quantity}.{source}.{field}")
@@ -112,57 +198,68 @@ class EstimateOutlet:
                 node.append_child_value("quantity", quantity)
                 node.append_child_value("source", source)
                 node.append_child_value("field", field)
-        info.desc().append_child_value("manufacturer", "ridgewatch")
-        self._use_stream_time = use_stream_time
-        self._outlet: pylsl.StreamOutlet | None = pylsl.StreamOutlet(info)
+            info.desc().append_child_value("manufacturer", "ridgewatch")
+            self._outlets[pair] = pylsl.StreamOutlet(info)
 
-    def rows(self, estimates: Sequence[Estimate]) -> tuple[np.ndarray, np.ndarray]:
-        """Samples ``(hops, channels)`` and their ``emitted_s`` ``(hops,)``.
+    def _claimed(self, instance_id: str, wait_s: float) -> bool:
+        """Whether no older instance publishes under ``instance_id`` (looked up for up
+        to ``wait_s``; our own streams are among those found). ``instance_id`` holds
+        only hex digits and dashes, so it needs no escaping in the query."""
+        if wait_s == 0:
+            return True
+        ours = {outlet.get_info().uid(): outlet for outlet in self._outlets.values()}
+        first = self._outlets[self.pairs[0]].get_info()
+        found = pylsl.resolve_bypred(f"starts-with(source_id, '{instance_id}.')",
+                                     minimum=len(ours) + 1, timeout=wait_s)
+        return not any(info.uid() not in ours and _older(info, first) for info in found)
 
-        One row per distinct ``emitted_s``, in order of first appearance.
+    def rows(self, estimates: Sequence[Estimate]) -> dict[tuple[str, str], tuple]:
+        """Per pair with estimates: samples ``(rows, 4)`` and their ``emitted_s``
+        ``(rows,)``, one row per estimate, in the given order.
 
         Raises
         ------
         ParameterError
             When an estimate's (quantity, source) is not one of the outlet's pairs.
         """
-        row_of: dict[float, int] = {}
-        for estimate in estimates:
-            row_of.setdefault(estimate.emitted_s, len(row_of))
-        samples = np.full((len(row_of), len(self.labels)), np.nan)
+        grouped: dict[tuple[str, str], list[Estimate]] = {}
         for estimate in estimates:
             pair = (estimate.quantity, estimate.source)
-            if pair not in self._column:
+            if pair not in self.hops:
                 raise ParameterError(
                     f"estimate for {pair} is not among the outlet's pairs {self.pairs}"
                 )
-            c = self._column[pair]
-            has_rate = estimate.display != WITHHOLD
-            samples[row_of[estimate.emitted_s], c : c + len(FIELDS)] = (
-                estimate.rate_per_min if has_rate else np.nan,
-                estimate.confidence,
-                estimate.quality,
-                estimate.delay_s if has_rate else np.nan,
-            )
-        return samples, np.fromiter(row_of, dtype=np.float64, count=len(row_of))
+            grouped.setdefault(pair, []).append(estimate)
+        out = {}
+        for pair, group in grouped.items():
+            samples = np.array(
+                [(e.rate_per_min if e.display != WITHHOLD else np.nan, e.confidence,
+                  e.quality, e.delay_s if e.has_rate and e.display != WITHHOLD else np.nan)
+                 for e in group], dtype=np.float64)
+            out[pair] = (samples, np.array([e.emitted_s for e in group], dtype=np.float64))
+        return out
 
     def push(self, estimates: Sequence[Estimate]) -> None:
-        """Publish the estimates of one or more hops, one sample per hop."""
-        if self._outlet is None:
+        """Publish estimates: each becomes one sample of its pair's stream."""
+        if not self._outlets:
             raise RuntimeError("push after close")
         if not estimates:
             return
-        samples, emitted_s = self.rows(estimates)
-        if self._use_stream_time:
-            stamps = emitted_s.tolist()
-        else:
-            # Keep the spacing between hops; the newest is stamped "now".
-            stamps = (pylsl.local_clock() + (emitted_s - emitted_s[-1])).tolist()
-        self._outlet.push_chunk(samples, stamps)
+        rows = self.rows(estimates)
+        if not self._use_stream_time:
+            # Keep the spacing between estimates; the newest of the push is stamped "now".
+            newest = max(e.emitted_s for e in estimates)
+            shift = pylsl.local_clock() - newest
+        for pair, (samples, emitted_s) in rows.items():
+            stamps = emitted_s if self._use_stream_time else emitted_s + shift
+            self._outlets[pair].push_chunk(samples, stamps.tolist())
+
+    def _close_outlets(self) -> None:
+        self._outlets = {}
 
     def close(self) -> None:
-        """Destroy the outlet."""
-        self._outlet = None
+        """Destroy the outlets; inlets see the streams as lost."""
+        self._close_outlets()
 
     def __enter__(self) -> "EstimateOutlet":
         return self

@@ -29,14 +29,28 @@ Timing checks
 
 Stream loss
 -----------
-If the inlet reports the stream lost, or no sample arrives for ``lost_after_s``, one
-``"lost"`` event is yielded and :meth:`LslSource.chunks` keeps running while it looks
-for the stream again (same ``source_id``; by the user's name/type when the stream has
-none). When samples flow again a ``"resumed"`` event comes first, carrying
-``detail["missing_s"]``; the time axis may jump there (forwards, or even backwards when
-a restarted sender keeps its own time axis), so consumers should restart their
-per-stream state on ``"resumed"``. A stream that comes back with a different channel
-count or rate is not read: a second ``"lost"`` event says why.
+Silence alone does not make a stream lost: senders that buffer (a phone app pushing
+ten seconds at a time, a radio link that catches up) pause for seconds while nothing is
+wrong. :class:`SilenceCheck` decides what a silence means:
+
+- the inlet reports the connection broken (liblsl's ``lost_error``: the outlet was
+  destroyed, or its process or machine closed the connection): *lost* at once;
+- no sample for longer than the *silence limit*, ``max(lost_after_s, PAUSE_FACTOR x``
+  the longest pause the sender has made between deliveries that continued its
+  timestamps), and the stream no longer answers liblsl's resolver (a machine that
+  vanished without closing its connections, a frozen sender): *lost*;
+- no sample for longer than the silence limit plus ``presence_s`` while the stream
+  still answers: one ``"irregular"`` event says so (*stalled*; ``detail["silent_s"]``),
+  and nothing is restarted. A hole in the timestamps when samples flow again is a
+  ``"gap"`` like any other.
+
+A lost stream gives one ``"lost"`` event, and :meth:`LslSource.chunks` keeps running
+while it looks for the stream again (same ``source_id``; by the user's name/type when
+the stream has none). When samples flow again a ``"resumed"`` event comes first,
+carrying ``detail["missing_s"]``; the time axis may jump there (forwards, or even
+backwards when a restarted sender keeps its own time axis), so consumers should restart
+their per-stream state on ``"resumed"``. A stream that comes back with a different
+channel count or rate is not read: a second ``"lost"`` event says why.
 """
 
 from __future__ import annotations
@@ -77,6 +91,16 @@ GAP_PERIODS = 2.5
 """A step of more than this many sample periods (plus the tolerance) is a gap: 1.5 or
 more samples are missing, which a one-sample hiccup of a regular sender never causes."""
 
+PAUSE_FACTOR = 2.0
+"""A silence this many times the longest pause the sender has made is out of its rhythm
+(our own choice: pauses of a buffering sender vary, rarely by a factor of two)."""
+
+PRESENCE_S = 3.0
+"""A stream that has not answered liblsl's continuous resolver for this long is gone
+from the network. The resolver asks every 0.5 s (``ContinuousResolveInterval``, liblsl
+``api_config.cpp``), so that is six unanswered queries in a row, not one lost packet."""
+
+_LOOK_EVERY_S = 0.25  # how often a silence is judged (resolver results, comeback)
 _MAX_LISTED = 10
 _NUMERIC_FORMATS = {
     pylsl.cf_float32: "float32",
@@ -236,6 +260,11 @@ class TimingCheck:
         self._regular_to_end_episode = math.ceil(self.fs)  # one second of samples
         self.reset()
 
+    def continues(self, first_s: float) -> bool:
+        """Whether a sample stamped ``first_s`` follows the newest one kept without a
+        gap (False before the first sample)."""
+        return 0.0 < first_s - self.last_s <= self.max_step_s
+
     def reset(self) -> None:
         """Forget the previous sample, e.g. after the stream was lost and came back."""
         self.last_s = -math.inf
@@ -303,6 +332,65 @@ class TimingCheck:
         return items
 
 
+class SilenceCheck:
+    """Decides what a silence of a live stream means: nothing, *stalled* or *lost*.
+
+    Pure bookkeeping (no LSL, no clocks), so it can be tested on its own; see the
+    module notes for the rules.
+
+    Parameters
+    ----------
+    lost_after_s : the shortest silence limit, in wall-clock seconds.
+    presence_s : how long a stream must go unanswered on the network to count as gone;
+        a silence is only called *stalled* this much after the limit, so that a stream
+        that vanished is reported lost rather than stalled first.
+    """
+
+    def __init__(self, lost_after_s: float, presence_s: float = PRESENCE_S):
+        if not lost_after_s > 0:
+            raise ParameterError(f"{lost_after_s=} must be > 0")
+        if not presence_s > 0:
+            raise ParameterError(f"{presence_s=} must be > 0")
+        self.lost_after_s = float(lost_after_s)
+        self.presence_s = float(presence_s)
+        self.longest_pause_s = 0.0
+
+    @property
+    def limit_s(self) -> float:
+        """Silence after which the stream's presence on the network decides."""
+        return max(self.lost_after_s, PAUSE_FACTOR * self.longest_pause_s)
+
+    def delivered(self, pause_s: float, continues: bool) -> None:
+        """Samples arrived ``pause_s`` after the previous ones. A pause after which the
+        timestamps carry on where they stopped is the sender's rhythm; one after which
+        they skip is a hole, and teaches nothing."""
+        if continues:
+            self.longest_pause_s = max(self.longest_pause_s, float(pause_s))
+
+    def verdict(self, silent_s: float, present: bool) -> str | None:
+        """``"lost"``, ``"stalled"`` or None for a silence of ``silent_s`` seconds;
+        ``present``: the stream still answers on the network.
+
+        Examples
+        --------
+        >>> check = SilenceCheck(2.0, presence_s=3.0)
+        >>> check.verdict(2.5, present=False), check.verdict(2.5, present=True)
+        ('lost', None)
+        >>> check.verdict(5.5, present=True)
+        'stalled'
+        >>> check.delivered(10.0, continues=True)
+        >>> check.limit_s, check.verdict(5.5, present=False)
+        (20.0, None)
+        """
+        if silent_s <= self.limit_s:
+            return None
+        if not present:
+            return "lost"
+        if silent_s > self.limit_s + self.presence_s:
+            return "stalled"
+        return None
+
+
 class LslSource:
     """A live LSL stream as a :class:`~streamer.sources.base.Source`.
 
@@ -315,7 +403,9 @@ class LslSource:
         any stream matches (and must then be the only one on the network).
     timeout_s : how long to look for a matching stream.
     channel_kinds : channel name -> signal kind, overriding the stream's metadata.
-    lost_after_s : wall-clock seconds without a sample before the stream counts as lost.
+    lost_after_s : the shortest silence (wall-clock seconds without a sample) after
+        which the stream may count as lost; see :class:`SilenceCheck`.
+    presence_s : see :class:`SilenceCheck`.
     gap_tolerance_s : see :class:`TimingCheck`.
     poll_s : sleep between empty, non-blocking pulls; bounds how fast :meth:`close`
         takes effect.
@@ -343,6 +433,7 @@ class LslSource:
         timeout_s: float = 5.0,
         channel_kinds: Mapping[str, str] | None = None,
         lost_after_s: float = 2.0,
+        presence_s: float = PRESENCE_S,
         gap_tolerance_s: float = 0.05,
         poll_s: float = 0.005,
         extra_wait_s: float = 0.5,
@@ -350,6 +441,7 @@ class LslSource:
         for label, value in (
             ("timeout_s", timeout_s),
             ("lost_after_s", lost_after_s),
+            ("presence_s", presence_s),
             ("poll_s", poll_s),
         ):
             if not value > 0:
@@ -357,7 +449,7 @@ class LslSource:
         if not extra_wait_s >= 0:
             raise ParameterError(f"{extra_wait_s=} must be >= 0")
         self._predicate = build_predicate(name, type, source_id)
-        self._lost_after_s = float(lost_after_s)
+        self._silence = SilenceCheck(lost_after_s, presence_s)
         self._poll_s = float(poll_s)
         self._stop = threading.Event()
         self._lock = threading.Lock()
@@ -439,6 +531,10 @@ class LslSource:
         # delivered (see /work/shared/FINDINGS.md).
         inlet.open_stream(timeout=timeout_s)
         inlet.time_correction(timeout=timeout_s)
+        # Every pull asks the inlet for the full description, waiting for it without a
+        # time limit until it has it; fetched here, a sender that freezes later cannot
+        # hang a pull (measured: a stopped sender process did).
+        inlet.info(timeout=timeout_s)
         self._inlet = inlet
         self._uid = resolved.uid()
 
@@ -451,16 +547,23 @@ class LslSource:
     def chunks(self) -> Iterator[Item]:
         """Yield chunks and events until :meth:`close` is called.
 
-        Pulls without blocking and sleeps ``poll_s`` when nothing is queued; while the
-        stream is lost it keeps looking for it and yields nothing.
+        Pulls without blocking and sleeps ``poll_s`` when nothing is queued; a silence
+        is judged by :class:`SilenceCheck` against what liblsl's continuous resolver
+        sees; while the stream is lost it keeps looking for it and yields nothing.
         """
         with self._lock:
             if self._stop.is_set():
                 return
             self._running = True
-        lost = False
+        state = "flowing"  # or "stalled" (silent, still on the network) or "lost"
         last_data = time.monotonic()
-        resolver: pylsl.ContinuousResolver | None = None
+        # One resolver for the whole run: whether the stream still answers, and
+        # whether it came back after a loss. It needs ``presence_s`` of listening before
+        # "not seen" means "gone".
+        resolver = pylsl.ContinuousResolver(
+            pred=self._comeback_predicate, forget_after=self._silence.presence_s
+        )
+        listening_since = time.monotonic()
         next_look = 0.0
         rejected: set[str] = set()
         try:
@@ -472,32 +575,44 @@ class LslSource:
                             timeout=0.0, max_samples=4096, as_numpy=True
                         )
                     except LostError:
+                        rejected.add(self._uid)  # an outlet instance never comes back
                         self._drop_inlet()
                         timestamps = np.empty(0)
-                        if not lost:
-                            lost = True
+                        if state != "lost":
+                            state = "lost"
                             yield self._lost_event()
                 if len(timestamps):
-                    last_data = time.monotonic()
-                    if lost:
-                        lost = False
-                        resolver = None
+                    now = time.monotonic()
+                    if state == "lost":
                         yield self._resumed_event(float(timestamps[0]))
                         self._timing.reset()
+                    else:
+                        # Nothing precedes a first sample, so nothing can be missing.
+                        first = not math.isfinite(self._timing.last_s)
+                        continues = first or self._timing.continues(float(timestamps[0]))
+                        self._silence.delivered(now - last_data, continues)
+                    state, last_data = "flowing", now
                     yield from self._timing.check(samples, timestamps)
                     continue  # more may be queued: pull again before sleeping
-                if not lost and time.monotonic() - last_data > self._lost_after_s:
-                    lost = True
-                    yield self._lost_event()
-                if lost and time.monotonic() >= next_look:
-                    next_look = time.monotonic() + 0.25
-                    if resolver is None:
-                        resolver = pylsl.ContinuousResolver(
-                            pred=self._comeback_predicate, forget_after=1.0
-                        )
-                    event = self._try_comeback(resolver, rejected)
-                    if event is not None:
-                        yield event
+                now = time.monotonic()
+                silent_s = now - last_data
+                if now >= next_look and (state == "lost" or silent_s > self._silence.limit_s):
+                    next_look = now + _LOOK_EVERY_S
+                    seen = resolver.results()
+                    if state != "lost":
+                        trusted = now - listening_since >= self._silence.presence_s
+                        present = not trusted or any(i.uid() == self._uid for i in seen)
+                        verdict = self._silence.verdict(silent_s, present)
+                        if verdict == "lost":
+                            state = "lost"
+                            yield self._lost_event()
+                        elif verdict == "stalled" and state == "flowing":
+                            state = "stalled"
+                            yield self._stalled_event(silent_s)
+                    if state == "lost":
+                        event = self._try_comeback(seen, rejected)
+                        if event is not None:
+                            yield event
                 self._stop.wait(self._poll_s)
         finally:
             with self._lock:
@@ -511,6 +626,17 @@ class LslSource:
             self._timing.last_s if math.isfinite(self._timing.last_s) else math.nan,
         )
 
+    def _stalled_event(self, silent_s: float) -> SourceEvent:
+        threshold_s = self._silence.limit_s + self._silence.presence_s
+        last_s = self._timing.last_s
+        return SourceEvent(
+            "irregular",
+            f"stream '{self.info.name}' has sent no samples for {threshold_s:.3g} s but is "
+            f"still on the network; waiting for more",
+            last_s if math.isfinite(last_s) else math.nan,
+            {"silent_s": silent_s},
+        )
+
     def _resumed_event(self, first_s: float) -> SourceEvent:
         last_s = self._timing.last_s
         missing_s = first_s - last_s - 1.0 / self.info.fs if math.isfinite(last_s) else math.nan
@@ -522,13 +648,15 @@ class LslSource:
         )
 
     def _try_comeback(
-        self, resolver: pylsl.ContinuousResolver, rejected: set[str]
+        self, seen: list[pylsl.StreamInfo], rejected: set[str]
     ) -> SourceEvent | None:
-        """Open an inlet on a stream instance that came back, if one did.
+        """Open an inlet on a stream instance that came back, if one is among ``seen``
+        (the resolver's results). Instances in ``rejected`` are skipped; dead ones and
+        ones with another layout join them.
 
         Returns a ``"lost"`` event when an instance came back with another layout.
         """
-        for candidate in resolver.results():
+        for candidate in seen:
             uid = candidate.uid()
             if uid in rejected or (self._inlet is not None and uid == self._uid):
                 continue
@@ -550,8 +678,11 @@ class LslSource:
             previous = self._inlet
             try:
                 self._open(candidate, timeout_s=1.0)
-            except (LostError, LslTimeoutError):
-                continue  # a dead instance the resolver has not forgotten yet
+            except LostError:
+                rejected.add(uid)  # a dead instance the resolver has not forgotten yet
+                continue
+            except LslTimeoutError:
+                continue  # too slow to answer this time; asked again at the next look
             if previous is not None:
                 previous.close_stream()
             return None

@@ -31,7 +31,7 @@ from streamer.simulation import pulse_train
 from streamer.sinks.estimate_log import EstimateLog
 from streamer.sinks.outlet import FIELDS, EstimateOutlet, channel_labels
 from streamer.sources.base import ChannelInfo, Chunk, SourceInfo
-from streamer.sources.lsl_publish import SamplePublisher, derived_source_id
+from streamer.sources.lsl_publish import SamplePublisher
 from streamer.sources.lsl_source import LslSource
 from tests.streamer.test_cli import HANG_S, check_log_format, start_cli
 
@@ -146,17 +146,18 @@ def live_session(tmp_path_factory):
     cli_log = folder / "cli.csv"
     proc = start_cli("live", "--name", name, "--timeout", "20", "--display", "none",
                      "--duration", RUN_S, "--log", cli_log, "--publish", cwd=folder)
-    # The command line's outlet carries every stream its engine emits (here heart rate
-    # and breathing rate from the PPG), and its source_id is derived from them.
+    # The command line publishes one stream per stream its engine emits (here heart
+    # rate and breathing rate from the PPG), named after its input.
     streams = RateMonitor([("PLETH", "ppg")], FS, PROFILE).streams
-    cli_estimates = Collector("source_id", derived_source_id(
-        "estimates", source_id, *(f"{q}.{s}" for q, s in streams)))
+    assert ("hr", "PLETH") in streams
+    cli_estimates = Collector("name", f"ridgewatch {name} hr.PLETH")
     cli_estimates.start()
 
     # (b) the Python API, in this process
     api_log = folder / "api.csv"
     api = {}
-    api_estimates = Collector("name", unique("rw-e2e-estimates"))
+    api_name = unique("rw-e2e-estimates")
+    api_estimates = Collector("name", f"{api_name} hr.PLETH")
     api_estimates.start()
 
     def run_api():
@@ -166,10 +167,8 @@ def live_session(tmp_path_factory):
             log = EstimateLog(api_log, "live", name, {s.name: s.kind for s in selected},
                               {"profile": PROFILE.to_dict(), "fs": source.info.fs})
             runner = Runner(source, selected, PROFILE, log=log, duration_s=RUN_S)
-            # Its own source_id: the default one, derived from the input stream and
-            # the pairs, is the command line's.
             runner.outlet = EstimateOutlet(runner.monitor.streams, PROFILE.hr.hop_s,
-                                           name=api_estimates.value,
+                                           name=api_name,
                                            source_id=unique("rw-e2e-api-estimates"))
             api_estimates.opened.wait(20.0)
             api["stats"] = runner.run()
@@ -211,14 +210,10 @@ def check_estimates(log_path, collector, offset_s, name, all_published: bool):
     # sample, so at least a few seconds of hops follow.
     assert n >= 8
 
-    # Published: one sample per hop, stamped with emitted_s (live input: the local LSL
-    # clock), carrying what the log says.
-    # One group of FIELDS per output of the engine; here all from PLETH.
-    assert {label.split(".")[1] for label in collector.labels} == {"PLETH"}
-    first = collector.labels.index("hr.PLETH.rate_per_min")
-    assert collector.labels[first:first + len(FIELDS)] == channel_labels([("hr", "PLETH")])
-    got = np.array(collector.samples, dtype=np.float64).reshape(-1, len(collector.labels))
-    got = got[:, first:first + len(FIELDS)]
+    # Published: the heart-rate stream has one sample per row of the log, stamped with
+    # emitted_s (live input: the local LSL clock), carrying what the log says.
+    assert collector.labels == channel_labels([("hr", "PLETH")])
+    got = np.array(collector.samples, dtype=np.float64).reshape(-1, len(FIELDS))
     stamps = np.array(collector.stamps)
     if all_published:
         assert len(got) == n

@@ -25,6 +25,7 @@ from streamer.sources.base import ChannelInfo, Chunk, SourceEvent, SourceInfo
 from streamer.sources.lsl_publish import SamplePublisher, stream_type_for
 from streamer.sources.lsl_source import (
     LslSource,
+    SilenceCheck,
     TimingCheck,
     build_predicate,
     channels_from_info,
@@ -364,13 +365,16 @@ def test_lost_then_resumed_with_same_source_id():
     np.testing.assert_array_equal(stacked(after)[0], synthetic(0, half, offset=0.25)[0])
 
 
+@pytest.mark.parametrize("pause_s, kinds", [(1.2, ["gap"]), (2.5, ["irregular", "gap"])])
 @pytest.mark.lsl
-def test_silent_stream_is_lost_then_resumed():
+def test_silent_stream_still_on_the_network_is_not_lost(pause_s, kinds):
+    """A sender that stops sending but keeps its outlet is not lost: after the silence
+    limit plus ``presence_s`` (0.3 + 1.5 s) one event says it is silent; the hole in its
+    timestamps is a gap, and nothing is restarted."""
     name = unique("rw-silent")
     publisher = SamplePublisher(make_info(name))
-    source = LslSource(name=name, extra_wait_s=0.2, lost_after_s=0.5)
+    source = LslSource(name=name, extra_wait_s=0.2, lost_after_s=0.3, presence_s=1.5)
     part = int(0.4 * FS)
-    pause_s = 1.2
 
     def run():
         publish_paced(publisher, 0, part)
@@ -384,11 +388,38 @@ def test_silent_stream_is_lost_then_resumed():
     source.close()
     publisher.close()
 
-    assert [e.kind for e in events(items)] == ["lost", "resumed"]
-    resumed = events(items, "resumed")[0]
-    # The resumed event reports the hole in stream time; no separate gap event.
-    assert resumed.detail["missing_s"] == pytest.approx(pause_s, abs=1e-3)
+    assert [e.kind for e in events(items)] == kinds
+    if "irregular" in kinds:
+        stalled = events(items, "irregular")[0]
+        assert stalled.message == (f"stream '{name}' has sent no samples for 1.8 s but is "
+                                   f"still on the network; waiting for more")
+        assert stalled.detail["silent_s"] > 1.8
+    gap = events(items, "gap")[0]
+    assert gap.detail["missing_s"] == pytest.approx(pause_s, abs=1e-3)
     np.testing.assert_array_equal(stacked(items)[0], synthetic(0, 2 * part)[0])
+
+
+def test_silence_check_learns_the_rhythm_of_a_bursty_sender():
+    check = SilenceCheck(2.0, presence_s=3.0)
+    # A pause after which the timestamps skip is a hole: it teaches nothing.
+    check.delivered(10.0, continues=False)
+    assert check.limit_s == 2.0
+    assert check.verdict(1.9, present=False) is None
+    assert check.verdict(2.1, present=False) == "lost"
+    assert check.verdict(4.9, present=True) is None
+    assert check.verdict(5.1, present=True) == "stalled"
+    # Ten seconds of samples delivered every ten seconds: twice that is the limit.
+    check.delivered(10.0, continues=True)
+    check.delivered(0.01, continues=True)
+    assert check.limit_s == 20.0
+    assert check.verdict(19.0, present=False) is None
+    assert check.verdict(21.0, present=False) == "lost"
+    assert check.verdict(22.0, present=True) is None
+    assert check.verdict(23.5, present=True) == "stalled"
+    with pytest.raises(ParameterError, match="lost_after_s=0 must be > 0"):
+        SilenceCheck(0)
+    with pytest.raises(ParameterError, match="presence_s=-1 must be > 0"):
+        SilenceCheck(1.0, presence_s=-1)
 
 
 @pytest.mark.lsl
@@ -409,48 +440,64 @@ def test_close_ends_chunks_while_waiting():
     assert [e.kind for e in events(items)] == ["lost"]
 
 
-@pytest.mark.lsl
-def test_estimate_outlet_publishes_labelled_hops():
-    pairs = [("hr", "PLETH"), ("rr", "fused")]
-    name = unique("rw-est")
-    outlet = EstimateOutlet(pairs, hop_s=0.25, name=name, input_id=name)
-    assert outlet.source_id == EstimateOutlet(pairs, 0.25, input_id=name).source_id
-    found = pylsl.resolve_bypred(f"name='{name}'", 1, 5.0)
+def _open_estimates(source_id: str):
+    found = pylsl.resolve_byprop("source_id", source_id, 1, 5.0)
     assert len(found) == 1
     inlet = pylsl.StreamInlet(found[0])
     inlet.open_stream(timeout=5.0)
-    full = inlet.info(timeout=5.0)
-    assert full.channel_count() == len(pairs) * len(FIELDS) == 8
-    assert full.nominal_srate() == 4.0
-    assert full.get_channel_labels() == channel_labels(pairs)
-    assert full.get_channel_labels()[4] == "rr.fused.rate_per_min"
-    assert full.get_channel_units()[:4] == ["1/min", "1", "1", "s"]
+    return inlet, inlet.info(timeout=5.0)
+
+
+def _receive(inlet, n: int):
+    received_x, received_t = [], []
+    deadline = time.monotonic() + 5.0  # a hang guard only
+    while len(received_t) < n and time.monotonic() < deadline:
+        x, t = inlet.pull_chunk(timeout=0.1)
+        received_x += x
+        received_t += t
+    return np.asarray(received_x), np.asarray(received_t)
+
+
+@pytest.mark.lsl
+def test_estimate_outlet_publishes_one_stream_per_pair():
+    pairs = [("hr", "PLETH"), ("rr", "PLETH")]
+    name = unique("rw-est")
+    hops = {("hr", "PLETH"): 0.25, ("rr", "PLETH"): 0.5}
+    outlet = EstimateOutlet(pairs, hop_s=hops, name=name, input_id=name)
+    assert outlet.instance == 1
+    assert outlet.names == {("hr", "PLETH"): f"{name} hr.PLETH",
+                            ("rr", "PLETH"): f"{name} rr.PLETH"}
+    hr_inlet, hr_info = _open_estimates(outlet.source_ids[("hr", "PLETH")])
+    rr_inlet, rr_info = _open_estimates(outlet.source_ids[("rr", "PLETH")])
+    assert (hr_info.name(), rr_info.name()) == (f"{name} hr.PLETH", f"{name} rr.PLETH")
+    assert hr_info.channel_count() == rr_info.channel_count() == len(FIELDS) == 4
+    assert (hr_info.nominal_srate(), rr_info.nominal_srate()) == (4.0, 2.0)
+    assert hr_info.get_channel_labels() == channel_labels([("hr", "PLETH")])
+    assert rr_info.get_channel_labels()[0] == "rr.PLETH.rate_per_min"
+    assert hr_info.get_channel_units() == ["1/min", "1", "1", "s"]
 
     now = pylsl.local_clock()
     estimates = [
         Estimate("hr", "PLETH", now - 4.0, now, 72.5, 0.9, 0.8),
-        Estimate("rr", "fused", now - 8.0, now, 15.0, 0.7, 0.6),
+        # Breathing from a pulse reports hops when a beat completes them: two at once.
+        Estimate("rr", "PLETH", now - 16.5, now, 15.0, 0.7, 0.6),
+        Estimate("rr", "PLETH", now - 16.0, now, math.nan, 0.1, 0.2),
         Estimate("hr", "PLETH", now - 3.75, now + 0.25, math.nan, 0.1, 0.2),
     ]
     outlet.push(estimates)
-    received_x, received_t = [], []
-    deadline = time.monotonic() + 5.0
-    while len(received_t) < 2 and time.monotonic() < deadline:
-        x, t = inlet.pull_chunk(timeout=0.1, as_numpy=True)
-        received_x += list(x)
-        received_t += list(t)
+    hr_x, hr_t = _receive(hr_inlet, 2)
+    rr_x, rr_t = _receive(rr_inlet, 2)
     outlet.close()
-    assert np.asarray(received_t) == pytest.approx([now, now + 0.25], abs=1e-9)
-    want = np.array(
-        [
-            [72.5, 0.9, 0.8, 4.0, 15.0, 0.7, 0.6, 8.0],
-            [np.nan, 0.1, 0.2, np.nan] + [np.nan] * 4,
-        ]
-    )
-    np.testing.assert_allclose(np.asarray(received_x), want, rtol=0, atol=1e-9)
+    # One sample per estimate, in its own stream, NaN only where there is no rate.
+    assert hr_t == pytest.approx([now, now + 0.25], abs=1e-9)
+    assert rr_t == pytest.approx([now, now], abs=1e-9)
+    np.testing.assert_allclose(hr_x, [[72.5, 0.9, 0.8, 4.0], [np.nan, 0.1, 0.2, np.nan]],
+                               rtol=0, atol=1e-9)
+    np.testing.assert_allclose(rr_x, [[15.0, 0.7, 0.6, 16.5], [np.nan, 0.1, 0.2, np.nan]],
+                               rtol=0, atol=1e-9)
     with pytest.raises(ParameterError, match=r"estimate for \('hr', 'ECG'\) is not among"):
         outlet.rows([Estimate("hr", "ECG", 0.0, 1.0, 60.0, 1.0, 1.0)])
-    with pytest.raises(ParameterError, match="hop_s=0 must be > 0"):
+    with pytest.raises(ParameterError, match=r"hop_s=0 for \('hr', 'PLETH'\) must be > 0"):
         EstimateOutlet(pairs, hop_s=0)
 
 
@@ -463,12 +510,37 @@ def test_estimate_outlet_sends_nan_for_a_withheld_rate_and_keeps_a_greyed_one():
             Estimate("hr", "PLETH", 0.0, 4.0, 150.0, 0.3, 0.9),    # withheld: P < 0.5
             Estimate("hr", "PLETH", 0.25, 4.25, 151.0, 0.6, 0.9),  # greyed
             Estimate("hr", "PLETH", 0.5, 4.5, 152.0, 0.9, 0.9),    # shown
-        ])
+        ])[("hr", "PLETH")]
     finally:
         outlet.close()
     np.testing.assert_array_equal(samples[:, 0], [np.nan, 151.0, 152.0])
     np.testing.assert_array_equal(samples[:, 1], [0.3, 0.6, 0.9])  # confidence says why
     np.testing.assert_array_equal(samples[:, 3], [np.nan, 4.0, 4.0])
+
+
+@pytest.mark.lsl
+def test_estimate_outlet_ids_are_stable_and_unique_per_instance():
+    """Same inputs, same ids, so a recorder picks up a restarted run; but a second run at
+    the same time takes the next instance number instead of sharing the first's ids."""
+    pairs = [("hr", "PLETH"), ("rr", "PLETH")]
+    input_id, name = unique("rw-input"), unique("rw-est")
+    first = EstimateOutlet(pairs, 0.25, name=name, input_id=input_id)
+    second = EstimateOutlet(pairs, 0.25, name=name, input_id=input_id)
+    assert (first.instance, second.instance) == (1, 2)
+    assert second.names[("hr", "PLETH")] == f"{name} (2) hr.PLETH"
+    assert len(set(first.source_ids.values()) | set(second.source_ids.values())) == 4
+    hr_id = first.source_ids[("hr", "PLETH")]
+    assert second.source_ids[("hr", "PLETH")] == hr_id.replace(".hr.", "-2.hr.")
+    first_ids = dict(first.source_ids)
+    first.close()
+    # The first run ended; a new run on the same input gets its ids back.
+    again = EstimateOutlet(pairs, 0.25, name=name, input_id=input_id)
+    assert again.instance == 1 and again.source_ids == first_ids
+    # Other inputs or hops give other ids.
+    other = EstimateOutlet(pairs, 0.5, name=name, input_id=input_id, claim_wait_s=0)
+    assert set(other.source_ids.values()).isdisjoint(first_ids.values())
+    for outlet in (second, again, other):
+        outlet.close()
 
 
 def test_stream_type_follows_channel_kinds():

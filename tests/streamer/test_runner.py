@@ -1,8 +1,9 @@
 """The runner: source -> engine -> log, outlet and listeners; events, stop and duration.
 
 A fake source yields synthetic PPG chunks and status events in a fixed order, so every
-test knows exactly what the runner saw. Nothing here asserts on wall-clock time; the
-``--duration`` test injects its own clock.
+test knows exactly what the runner saw. Nothing here asserts on wall-clock time; one
+``--duration`` test injects its own clock, the other waits half a second of real time
+for a source that yields nothing.
 """
 
 from __future__ import annotations
@@ -207,6 +208,31 @@ def test_duration_stops_the_run_on_the_injected_clock(tmp_path):
     assert stats.stopped_by == "--duration 3 s reached"
     assert source.closed.is_set()
     assert log._file.closed
+
+
+class WaitingSource(FakeSource):
+    """Yields its items, then nothing until closed: a lost live stream waiting for a
+    comeback."""
+
+    def chunks(self):
+        yield from self.items
+        self.closed.wait()
+
+
+def test_duration_ends_the_run_while_the_source_yields_nothing(tmp_path):
+    # Nothing at all arrives, so only a timer can end the run.
+    source = WaitingSource([])
+    log = new_log(tmp_path)
+    watchdog = threading.Timer(60.0, source.close)  # a hang guard only
+    watchdog.start()
+    try:
+        stats = Runner(source, SELECTED, PROFILE, log=log, duration_s=0.5).run()
+    finally:
+        watchdog.cancel()
+    assert stats.stopped_by == "--duration 0.5 s reached"
+    assert source.closed.is_set()
+    assert log._file.closed
+    assert stats.chunks == 0
 
 
 class FakeOutlet:

@@ -73,7 +73,13 @@ ALL = ("ppg1", "ppg2", "accx", "accy", "accz")
 GRID = {
     "motion_gain": (0.5, 1.0, 2.0),
     "harmonic_weight": (0.5, 0.75, 1.0),
-    "motion_memory_s": (15.0, 30.0, 60.0),
+    "harmonic_cap": (1.0, 1.5, 2.0),
+    # At least 30 s: the canceller's chance-coherence correction for three references
+    # needs about eight nearly independent windows (half a window apart) before its
+    # gate can open fully; with 15 s even perfectly coherent motion is only partly
+    # removed (gate 0.83 on the canceller's unit test) and a pulse crossing the
+    # cadence is lost (tests/estimators/test_motion.py).
+    "motion_memory_s": (30.0, 60.0),
 }
 """Values tried per parameter, one parameter at a time around the shipped profile."""
 

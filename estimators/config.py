@@ -75,6 +75,9 @@ class RateSettings:
     motion_smoothing_s : time constant of the gain's running averages, seconds.
     harmonic_weight : weight of the second harmonic in the tracked spectrum
         ``C(f) + w C(2 f)``; 0 tracks ``C`` alone.
+    harmonic_cap : the second harmonic supports a fundamental up to this many times the
+        fundamental's own level (``min(cap C(f), C(2 f))``), so a candidate needs a peak
+        of its own.
     motion_line_ratio : multiples of the accelerometer's median band level at which a bin
         starts to count as a motion line and counts fully.
     motion_confidence_penalty : confidence is multiplied by ``1 - penalty * mark`` where
@@ -111,6 +114,7 @@ class RateSettings:
     motion_gain: float = 1.0
     motion_smoothing_s: float = 1.0
     harmonic_weight: float = 0.75
+    harmonic_cap: float = 1.5
     motion_line_ratio: tuple = (10.0, 40.0)
     motion_confidence_penalty: float = 0.5
     motion_trust: str = "track"
@@ -160,6 +164,7 @@ class RateSettings:
                f"motion_smoothing_s={self.motion_smoothing_s} must be > 0")
         _check(self.harmonic_weight >= 0,
                f"harmonic_weight={self.harmonic_weight} must be >= 0")
+        _check(self.harmonic_cap > 0, f"harmonic_cap={self.harmonic_cap} must be > 0")
         ratio = tuple(self.motion_line_ratio)
         _check(len(ratio) == 2 and 0 < ratio[0] < ratio[1],
                f"motion_line_ratio={self.motion_line_ratio} must be (start, full) with "
@@ -274,10 +279,7 @@ PROFILES = {
                 # records 02 and 06, BPM0 traces); 8 bpm/s per-second spread follows it.
                 max_change_per_min_per_s=8.0,
                 jump_probability=1e-4,
-                # Chosen by leave-one-record-out cross-validation over SPC 2015 records
-                # 01-12 among 15, 30 and 60 s (python -m bench.exercise_table): 15 s in
-                # 7 of 12 folds and on all twelve records.
-                motion_memory_s=15.0,
+
                 # Four overlapping 8 s columns a second are far from independent: a flat
                 # emission keeps one window from overruling the track.
                 emission_power=0.5,

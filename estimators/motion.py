@@ -74,17 +74,20 @@ band-pass chain and the same hop schedule, so they describe the same windows.
 3. **Harmonic support** (:func:`harmonic_support`). At rest the PPG's second harmonic
    can outgrow its fundamental (SPC 2015 record 03: 1.0 against 0.8), and the tracker
    then locks on twice the rate. The tracked spectrum is the two-term harmonic sum
-   ``H(f) = C(f) + lambda min(C(f), C(2 f))`` (subharmonic summation: Hermes,
+   ``H(f) = C(f) + lambda min(kappa C(f), C(2 f))`` (subharmonic summation: Hermes,
    "Measurement of pitch by subharmonic summation", J. Acoust. Soc. Am.
    83(1):257-264, 1988), which favours the fundamental of a pulse whose harmonic is
-   present. The harmonic supports a fundamental only up to that fundamental's own
-   level: with the plain sum ``C(f) + lambda C(2 f)``, half the heart rate wins as soon as
+   present. The harmonic supports a fundamental only up to ``kappa`` times that
+   fundamental's own level: with the plain sum ``C(f) + lambda C(2 f)``, half the heart
+   rate wins as soon as
    anything there reaches ``1 - lambda`` of the pulse (during running, the arm swing
    sits at about half the rate), and whether record 10 of SPC 2015 locked at half the
    rate for minutes depended on the canceller's memory and on ``lambda`` (held-out AAE
    29 and 65 bpm at grid points next to the shipped one). With the cap the fundamental
-   candidate must show a peak of its own, and every grid point keeps every record
-   below 4 bpm (``python -m bench.exercise_table``).
+   candidate must show a peak of its own; ``kappa`` (1, 1.5 or 2) is chosen by
+   cross-validation with the other motion parameters (``python -m bench.exercise_table``;
+   with ``kappa = 1`` a resting pulse whose harmonic outgrows its fundamental, record 03,
+   doubled more often).
 
 Why not de-shape here. The de-shape filter (:mod:`estimators.deshape`) on the raw
 running PPG emphasises the motion's own fundamental (14-22 bpm mean AAE, measured in the
@@ -125,7 +128,8 @@ class MotionParams:
     ``band`` the slice of the tracker grid's bins; ``forget`` lambda per hop;
     ``loading`` delta; ``independent_hops`` hops between nearly uncorrelated windows;
     ``gate`` the coherence gate; ``gain_weight`` alpha; ``gain_smoothing`` the weight of
-    the newest hop in the gain's averages; ``harmonic_weight`` lambda of the harmonic
+    the newest hop in the gain's averages; ``harmonic_weight`` lambda and
+    ``harmonic_cap`` kappa of the harmonic
     sum; ``line_ratio`` where the motion-line mark starts and is full (multiples of the
     accelerometer's median level).
     """
@@ -139,6 +143,7 @@ class MotionParams:
     gain_weight: float
     gain_smoothing: float
     harmonic_weight: float
+    harmonic_cap: float
     line_ratio: tuple
 
     @property
@@ -159,7 +164,7 @@ def motion_params(settings, band: slice, n_fft: int, hop_s: float) -> MotionPara
         independent_hops=max(1.0, 0.5 * settings.window_s / hop_s),
         gate=tuple(settings.motion_coherence_gate),
         gain_weight=settings.motion_gain, gain_smoothing=smoothing,
-        harmonic_weight=settings.harmonic_weight,
+        harmonic_weight=settings.harmonic_weight, harmonic_cap=settings.harmonic_cap,
         line_ratio=tuple(settings.motion_line_ratio))
 
 
@@ -262,7 +267,7 @@ def gain_step(state: MotionState, residual_magnitude: np.ndarray, reference: np.
 
 
 def harmonic_support(magnitude: np.ndarray, params: MotionParams) -> np.ndarray:
-    """Step 3: ``H(f) = C(f) + lambda min(C(f), C(2 f))`` on the band's bins,
+    """Step 3: ``H(f) = C(f) + lambda min(kappa C(f), C(2 f))`` on the band's bins,
     peak-normalised: (P, F) -> (P, band bins).
 
     Examples
@@ -282,7 +287,7 @@ def harmonic_support(magnitude: np.ndarray, params: MotionParams) -> np.ndarray:
         double = 2 * bins
         inside = double < magnitude.shape[1]
         out[:, inside] += params.harmonic_weight * np.minimum(
-            magnitude[:, bins[inside]], magnitude[:, double[inside]])
+            params.harmonic_cap * magnitude[:, bins[inside]], magnitude[:, double[inside]])
     return _band_normalised(out, slice(0, out.shape[1]))
 
 

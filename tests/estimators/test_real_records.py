@@ -23,13 +23,13 @@ the figures are in the comments and printed by each test (run with ``-s``).
 from __future__ import annotations
 
 import dataclasses
-import gzip
 from dataclasses import dataclass
 
 import numpy as np
 import pytest
-from scipy import io, signal
+from scipy import io
 
+from bench.records import BIDMC_FS, detect_r_peaks, load_bidmc, rate_in_windows
 from estimators.config import get_profile
 from estimators.metrics import within_tolerance
 from estimators.monitor import RateMonitor
@@ -98,17 +98,6 @@ def estimate_arrays(estimates):
             np.array([e.rate_per_min for e in estimates]),
             np.array([e.confidence for e in estimates]),
             np.array([e.quality for e in estimates]))
-
-
-def rate_in_windows(beats_s: np.ndarray, start_s: np.ndarray, end_s: np.ndarray) -> np.ndarray:
-    """60 / mean interval of the beats inside each ``[start, end]``; NaN with < 2 beats."""
-    lo = np.searchsorted(beats_s, start_s, side="left")
-    hi = np.searchsorted(beats_s, end_s, side="right")
-    out = np.full(len(start_s), np.nan)
-    for i, (a, b) in enumerate(zip(lo, hi)):
-        if b - a >= 2:
-            out[i] = 60.0 * (b - a - 1) / (beats_s[b - 1] - beats_s[a])
-    return out
 
 
 def run_against_beats(record, x, t, fs, kind, profile, beats_s) -> Run:
@@ -236,44 +225,6 @@ def test_spc2015_running_wrist_ppg_without_motion_handling(spc_whole):
 
 
 # ------------------------------------------------------------------ BIDMC
-
-
-BIDMC_FS = 125.0
-
-
-def detect_r_peaks(ecg: np.ndarray, fs: float) -> np.ndarray:
-    """R-peak sample indices on one ECG lead, offline (our reference, not the engine).
-
-    Zero-phase Butterworth band-pass 8-20 Hz (order 3; the QRS band, common practice);
-    polarity chosen so the larger 99.5th percentile is positive; ``find_peaks`` with a
-    0.25 s refractory distance and a height of 35 % of the 99th percentile; then the
-    smaller of any two peaks closer than 0.6 of the median R-R is dropped (T waves,
-    noise). Ectopic beats stay in.
-    """
-    sos = signal.butter(3, [8.0, 20.0], btype="bandpass", fs=fs, output="sos")
-    y = signal.sosfiltfilt(sos, ecg)
-    if np.percentile(-y, 99.5) > np.percentile(y, 99.5):
-        y = -y
-    peaks, _ = signal.find_peaks(y, distance=int(0.25 * fs), height=0.35 * np.percentile(y, 99))
-    while len(peaks) > 2:
-        rr = np.diff(peaks)
-        close = np.flatnonzero(rr < 0.6 * np.median(rr))
-        if len(close) == 0:
-            break
-        i = close[0]
-        peaks = np.delete(peaks, i if y[peaks[i]] < y[peaks[i + 1]] else i + 1)
-    return peaks
-
-
-def load_bidmc(shared_data, number):
-    folder = shared_data / "bidmc" / "bidmc_csv"
-    with gzip.open(folder / f"bidmc_{number:02d}_Signals.csv.gz", "rt") as f:
-        names = [c.strip() for c in f.readline().split(",")]
-        sig = np.loadtxt(f, delimiter=",")
-    numerics = np.genfromtxt(folder / f"bidmc_{number:02d}_Numerics.csv", delimiter=",",
-                             names=True)
-    return (sig[:, 0], sig[:, names.index("PLETH")], sig[:, names.index("II")],
-            numerics["Time_s"], numerics["HR"])
 
 
 @pytest.fixture(scope="module")

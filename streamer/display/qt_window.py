@@ -40,7 +40,7 @@ import numpy as np
 import pyqtgraph as pg
 from pyqtgraph.Qt import QtCore, QtGui, QtWidgets
 
-from estimators.display_rule import GREY, SHOW, WITHHOLD
+from estimators.display_rule import GREY, GREY_CONFIDENCE, SHOW, SHOW_CONFIDENCE, WITHHOLD
 from streamer.display.buffers import (DisplayBuffers, DisplayLayout, FramePacer, UpdateFeed,
                                       confidence_band, rate_axis_range)
 from streamer.display.state import (QUALITY_WORDS, format_rate, quality_word, quantity_name,
@@ -361,13 +361,12 @@ class MonitorWindow(QtWidgets.QMainWindow):
         """A few lines on what the readouts mean, from the same thresholds they use."""
         words = ", ".join(f"{word} \u2265 {threshold:.2f}" for threshold, word
                           in QUALITY_WORDS if threshold > 0)
-        pairs = dict.fromkeys((o.quantity, o.halfwidth_per_min)
-                              for o in self.layout_info.outputs)
-        halfwidths = ", ".join(f"\u00b1{h:g} {unit_of(q)}" for q, h in pairs)
-        return (f"Quality (0 to 1): {words}, unusable below. A dash: no estimate (the "
-                f"signal is too poor). Confidence: how sure the tracker is that the rate "
-                f"lies within {halfwidths}. Delay: how far the estimate lags the newest "
-                f"sample.")
+        return (f"Quality (0 to 1): {words}, unusable below. A dash: no estimate, or one "
+                f"more likely wrong than right. Heart-rate confidence (PPG): how often such "
+                f"an estimate was within \u00b110 % or \u00b15 bpm on the development "
+                f"recordings; below {SHOW_CONFIDENCE:.0%} the digits are grey, below "
+                f"{GREY_CONFIDENCE:.0%} not shown. Delay: how far the estimate lags the "
+                f"newest sample.")
 
     def _plot_widget(self):
         widget = pg.GraphicsLayoutWidget()

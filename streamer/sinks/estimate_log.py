@@ -504,8 +504,11 @@ def drop_cell(row: str, column: str = "compute_ms") -> str:
 
 
 def rows_text(path) -> list[str]:
-    """The data rows of a log as text lines (for prefix comparisons)."""
+    """The data rows of a log as text lines (for prefix comparisons). A log a run has
+    just created, whose header is not written yet, has none."""
     with io.open(path, encoding="utf-8") as fh:
         lines = [ln for ln in fh.read().split("\n")]
-    start = next(i for i, ln in enumerate(lines) if ln.startswith("emitted_s,"))
+    start = next((i for i, ln in enumerate(lines) if ln.startswith("emitted_s,")), None)
+    if start is None:
+        return []
     return [ln for ln in lines[start + 1:] if ln and not ln.startswith("#")]

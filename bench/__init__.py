@@ -101,6 +101,12 @@ def jsonable(obj: Any) -> Any:
     return obj
 
 
+def write_json(path: Path, payload: Any, indent: int = 2) -> None:
+    """``payload`` as JSON (through :func:`jsonable`) at ``path``, creating its folder."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps(jsonable(payload), indent=indent) + "\n")
+
+
 # ---------------------------------------------------------------------- statistics
 
 

@@ -62,7 +62,7 @@ from pathlib import Path
 
 import numpy as np
 
-from bench import REPO_ROOT, RESULTS_DIR, SHARED_DATA, jsonable, measure
+from bench import REPO_ROOT, RESULTS_DIR, SHARED_DATA, jsonable, measure, write_json
 
 CACHE_DIR = Path(os.environ.get("RIDGEWATCH_CALIBRATION_CACHE",
                                 "/tmp/ridgewatch-calibration-cache"))
@@ -414,8 +414,7 @@ def main(argv: list[str] | None = None) -> int:
         calibration.MAP_PATH.parent.mkdir(parents=True, exist_ok=True)
         calibration.MAP_PATH.write_text(json.dumps(jsonable(shipped.to_dict()), indent=1) + "\n")
         print(f"\nwritten {calibration.MAP_PATH.relative_to(REPO_ROOT)}")
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(jsonable(payload), indent=2) + "\n")
+    write_json(args.out, payload)
     print(f"written {args.out}")
     return 0
 

@@ -79,7 +79,6 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import json
 import sys
 import time
 from dataclasses import dataclass
@@ -87,7 +86,7 @@ from pathlib import Path
 
 import numpy as np
 
-from bench import RESULTS_DIR, SHARED_DATA, jsonable, measure
+from bench import RESULTS_DIR, SHARED_DATA, measure, write_json
 
 BIDMC_RECORDS = tuple(range(1, 27))
 BIDMC_FS = 125.0
@@ -574,8 +573,7 @@ def main(argv: list[str] | None = None) -> int:
                "method": __doc__.strip().split("\n\n")[1].replace("\n", " "),
                "measures": measures(summaries), "summaries": summaries, **result,
                "wall_s": time.time() - started}
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(jsonable(payload), indent=1) + "\n")
+    write_json(args.out, payload, indent=1)
     print(f"\nwritten {args.out} ({time.time() - started:.0f} s)")
     return 0
 

@@ -48,14 +48,13 @@ from __future__ import annotations
 
 import argparse
 import dataclasses
-import json
 import math
 import time
 from pathlib import Path
 
 import numpy as np
 
-from bench import RESULTS_DIR, SHARED_DATA, jsonable, measure
+from bench import RESULTS_DIR, SHARED_DATA, measure, write_json
 from bench.accuracy import held_rate_at, spc_records  # one SPC 2015 scoring for both
 
 FS = 125.0
@@ -270,8 +269,7 @@ def main(argv=None) -> int:
                "published": "TROIKA 2.34, JOSS 1.28, MISPT 1.11 bpm on the 12 training "
                             "records (values from memory)",
                "elapsed_s": time.perf_counter() - started}
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(jsonable(payload), indent=2) + "\n")
+    write_json(args.out, payload)
     print(f"written {args.out}")
     return 0
 

@@ -24,7 +24,9 @@ Format
    log is a valid prefix of the full one.
 
 3. Status lines between rows: ``# event <time_s> <kind>: <message>`` (the message
-   escaped like a header value).
+   escaped like a header value), and marker lines ``# marker <time_s> <source>: <text>``
+   (source and text escaped the same way; a source holding ``: `` is written as a JSON
+   string) for every text marker of the session (:class:`streamer.sources.base.Marker`).
 
 Read it with :func:`read_log`, or with Python's csv module: ``[r for r in
 csv.reader(f) if r and not r[0].startswith("#")]`` gives the header row and the rows.

@@ -70,7 +70,21 @@ class SourceEvent:
     detail: dict = field(default_factory=dict)
 
 
-Item = Union[Chunk, SourceEvent]
+@dataclass(frozen=True)
+class Marker:
+    """A text marker (event label) on the stream clock: an LSL string sample, an XDF
+    marker-stream sample, an EDF+ annotation, or one the user added during the run.
+
+    ``source`` names where it came from (the marker stream's name, ``"annotations"``
+    for EDF+, ``"user"`` for the user's own); ``text`` is passed on unchanged.
+    """
+
+    time_s: float
+    text: str
+    source: str = ""
+
+
+Item = Union[Chunk, SourceEvent, Marker]
 
 
 class Source(Protocol):
@@ -91,13 +105,15 @@ class Recording:
     ``timestamps`` is ``(n,)`` float64 seconds on the file's time axis, ``info`` describes
     the channels. ``events`` holds reference event times (beats or breaths, seconds on
     the same axis) found beside the recording, keyed by a short name (e.g. ``"atr"``);
-    empty when there are none.
+    empty when there are none. ``markers`` holds the file's text markers (XDF marker
+    streams, EDF+ annotations) in time order.
     """
 
     samples: np.ndarray
     timestamps: np.ndarray
     info: SourceInfo
     events: dict = field(default_factory=dict)
+    markers: tuple = ()
 
     @property
     def duration_s(self) -> float:

@@ -117,6 +117,53 @@ def one_line(text: str) -> str:
     return json.dumps(text)
 
 
+def format_marker(marker) -> str:
+    """The log line of a marker. The source is written as a JSON string when it holds
+    ``": "`` (where the text begins), so any source and text read back as themselves.
+
+    >>> from streamer.sources.base import Marker
+    >>> print(format_marker(Marker(12.5, 'stage 2, "fast"', "lab-markers")), end="")
+    # marker 12.5000 lab-markers: "stage 2, \\"fast\\""
+    """
+    source = one_line(marker.source)
+    if ": " in source and not source.startswith('"'):
+        source = json.dumps(str(marker.source))
+    return f"# marker {_fmt(marker.time_s, 4) or 'nan'} {source}: {one_line(marker.text)}\n"
+
+
+def parse_marker(line: str):
+    """The :class:`~streamer.sources.base.Marker` of a log line, or None when the line
+    is not a well-formed marker line.
+
+    >>> parse_marker(format_marker(parse_marker('# marker 3 user: warm-up ends')))
+    Marker(time_s=3.0, text='warm-up ends', source='user')
+    """
+    from streamer.sources.base import Marker
+
+    if not line.startswith("# marker "):
+        return None
+    body = line[len("# marker "):].rstrip("\n")
+    time_text, _, rest = body.partition(" ")
+    if rest.startswith('"'):
+        try:
+            source, end = json.JSONDecoder().raw_decode(rest)
+        except json.JSONDecodeError:
+            return None
+        rest = rest[end:]
+        if not rest.startswith(": "):
+            return None
+        text = rest[2:]
+    else:
+        source, sep, text = rest.partition(": ")
+        if not sep:
+            return None
+    try:
+        time_s = float(time_text)
+    except ValueError:
+        return None
+    return Marker(time_s, _from_one_line(text), _from_one_line(str(source)))
+
+
 def _from_one_line(value: str) -> str:
     if value.startswith('"'):
         try:
@@ -216,6 +263,12 @@ class EstimateLog:
         """A status line in the body (``# event ...``), e.g. a stream lost or resumed;
         readers skip it like any ``#`` line."""
         self._write(f"# event {_fmt(time_s, 4) or 'nan'} {one_line(kind)}: {one_line(message)}\n")
+
+    def write_marker(self, marker) -> None:
+        """A marker line in the body (``# marker <time_s> <source>: <text>``) for a
+        :class:`streamer.sources.base.Marker`; :func:`read_log` gives them back in
+        :attr:`LogTable.markers`."""
+        self._write(format_marker(marker))
 
     def close(self) -> None:
         if self._file.closed:
@@ -349,6 +402,8 @@ class LogTable:
 
     header: dict
     columns: dict = field(default_factory=dict)
+    markers: list = field(default_factory=list)
+    """The log's marker lines as :class:`~streamer.sources.base.Marker`, in file order."""
 
     def __len__(self) -> int:
         return len(self.columns["time_s"])
@@ -359,7 +414,8 @@ class LogTable:
             mask &= self.columns["quantity"] == quantity
         if source is not None:
             mask &= self.columns["source"] == source
-        return LogTable(self.header, {k: v[mask] for k, v in self.columns.items()})
+        return LogTable(self.header, {k: v[mask] for k, v in self.columns.items()},
+                        self.markers)
 
     def pairs(self) -> list[tuple[str, str]]:
         """Distinct (quantity, source) pairs in order of first appearance."""
@@ -415,7 +471,8 @@ def read_log(path) -> LogTable:
         )
     if cut:
         lines.append(None)  # marks the partial line for _records
-    numbered = _records(path, lines, i + 1)
+    notes: list[str] = []
+    numbered = _records(path, lines, i + 1, notes)
     for line_no, r in numbered:
         if len(r) != len(names):
             raise InputError(f"{path}, line {line_no}: {len(r)} cells instead of "
@@ -436,13 +493,16 @@ def read_log(path) -> LogTable:
             ) from None
     if names == COLUMNS_BEFORE_DISPLAY:
         cols["display"] = np.array([""] * len(rows), dtype=str)
-    return LogTable(header, cols)
+    markers = [m for m in map(parse_marker, notes) if m is not None]
+    return LogTable(header, cols, markers)
 
 
-def _records(path: Path, lines: list, start: int) -> list[tuple[int, list[str]]]:
+def _records(path: Path, lines: list, start: int,
+             notes: list | None = None) -> list[tuple[int, list[str]]]:
     """(1-based line number, cells) of the rows from ``lines[start:]``.
 
-    A ``#`` line or a blank line where a row would begin is skipped (an event); inside
+    A ``#`` line or a blank line where a row would begin is skipped (an event or a
+    marker; ``#`` lines are appended to ``notes`` when given); inside
     a quoted cell it is part of the cell. A last element None marks the line before it
     as partial: the row that reaches it was cut short and is dropped, as is a row that
     the file ends inside of (an unclosed quote).
@@ -458,6 +518,8 @@ def _records(path: Path, lines: list, start: int) -> list[tuple[int, list[str]]]
             state["k"] += 1
             if state["at_start"]:
                 if line.startswith("#") or not line.strip():
+                    if notes is not None and line.startswith("#"):
+                        notes.append(line)
                     continue
                 state["first"] = state["k"]
                 state["at_start"] = False

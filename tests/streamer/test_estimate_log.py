@@ -395,3 +395,24 @@ def test_drop_cell_leaves_out_one_column_by_name():
     assert drop_cell(row) == row.replace(",1.2500,", ",")
     assert drop_cell(row, "display") == row.rsplit(",", 1)[0]
     assert drop_cell(row[:20]) == row[:20]  # cut short before the compute time
+
+
+def test_marker_lines_read_back_exactly_between_rows(tmp_path):
+    """Marker texts with commas, quotes, line breaks and non-ASCII characters, and a
+    source holding ': ', read back as themselves; rows around them are unaffected."""
+    from streamer.sinks.estimate_log import EstimateLog, read_log
+    from streamer.sources.base import Marker
+    from estimators.estimate import Estimate
+
+    markers = [Marker(1.25, 'stage 2, "fast"', "lab"), Marker(2.0, "Stufe 3 – 180 W\nneu", "user"),
+               Marker(3.5, "# marker 9 x: y", "odd: source"), Marker(4.0, " padded ", "")]
+    path = tmp_path / "m.csv"
+    with EstimateLog(path, "replay", "x", {"PPG": "ppg"}, {}) as log:
+        for k, marker in enumerate(markers):
+            log.write(Estimate("hr", "PPG", k + 0.5, k + 4.5, 70.0 + k, 0.9, 0.8))
+            log.write_marker(marker)
+        log.write(Estimate("hr", "PPG", 9.0, 13.0, 75.0, 0.9, 0.8))
+    table = read_log(path)
+    assert table.markers == markers
+    assert len(table) == 5
+    assert table.columns["rate_per_min"].tolist() == [70.0, 71.0, 72.0, 73.0, 75.0]

@@ -20,6 +20,10 @@ Data (read from ``../shared/data``, never copied):
     estimate whose window is exactly window ``k`` (it ends at sample ``250 k + 999``)
     against ``BPM0[k]``. Profiles ``exercise-wrist`` (what such a recording should use)
     and ``wrist`` (the default, which users get when they do not choose).
+``spc exercise-wrist no-acc``
+    the same records and profile with the accelerometer missing (its channels NaN, as
+    the engine gets them from a lost or absent accelerometer stream): what the
+    confidence must say when the motion stage has nothing to work with.
 ``bidmc wrist``, ``bidmc fingertip-rest``
     BIDMC records 01-26 (fingertip PPG ``PLETH`` in intensive care; Pimentel et al.,
     IEEE TBME 64(8):1914-1923, 2017): one row every :data:`BIDMC_EVERY` hops (2 s, as
@@ -82,6 +86,7 @@ CHUNK_S = 1.0
 GROUPS = {
     "spc exercise-wrist": ("spc", "exercise-wrist"),
     "spc wrist": ("spc", "wrist"),
+    "spc exercise-wrist no-acc": ("spc", "exercise-wrist/no-acc"),
     "bidmc wrist": ("bidmc", "wrist"),
     "bidmc fingertip-rest": ("bidmc", "fingertip-rest"),
 }
@@ -116,10 +121,11 @@ def source_key() -> str:
 
 
 def heart_profile(name: str):
-    """The profile with breathing from the pulse off (it does not change heart rate)."""
+    """The profile with breathing from the pulse off (it does not change heart rate);
+    ``name`` may carry a variant after ``/`` (:data:`GROUPS`), which is ignored here."""
     from estimators.config import get_profile
 
-    return dataclasses.replace(get_profile(name), breathing_from_pulse=False)
+    return dataclasses.replace(get_profile(name.split("/")[0]), breathing_from_pulse=False)
 
 
 def _run(samples: np.ndarray, t: np.ndarray, fs: float, channels, profile) -> list:
@@ -146,7 +152,9 @@ def extract_spc(shared: Path, name: str, profile: str) -> dict:
     from bench.records import load_spc
 
     sig, bpm = load_spc(shared, name)
-    samples = sig[list(SPC_ROWS)].T
+    samples = sig[list(SPC_ROWS)].T.copy()
+    if profile.endswith("/no-acc"):
+        samples[:, [k for k, (_, kind) in enumerate(SPC_CHANNELS) if kind == "acc"]] = np.nan
     t = np.arange(len(samples)) / SPC_FS
     est = [e for e in _run(samples, t, SPC_FS, SPC_CHANNELS, heart_profile(profile))
            if e.source == "fused"]
@@ -175,7 +183,7 @@ def extract_bidmc(shared: Path, number: int, profile: str) -> dict:
 def record_rows(shared: Path, dataset: str, record, profile: str, use_cache: bool = True
                 ) -> dict:
     """Rows of one (data set, record, profile), from the cache when it is fresh."""
-    path = CACHE_DIR / source_key() / f"{dataset}-{record}-{profile}.npz"
+    path = CACHE_DIR / source_key() / f"{dataset}-{record}-{profile.replace('/', '+')}.npz"
     if use_cache and path.is_file():
         with np.load(path) as data:
             return {k: data[k] for k in data.files}
@@ -280,8 +288,9 @@ def raw_confidence(table: Table) -> np.ndarray:
 
     mass = table.evidence[:, FEATURES.index("posterior_mass")]
     mark = table.evidence[:, FEATURES.index("motion_mark")]
-    penalty = np.array([get_profile(GROUPS[g][1]).hr.motion_confidence_penalty
-                        if get_profile(GROUPS[g][1]).hr.motion else 0.0 for g in table.group])
+    profiles = {g: heart_profile(GROUPS[g][1]) for g in GROUPS}
+    penalty = np.array([profiles[g].hr.motion_confidence_penalty
+                        if profiles[g].hr.motion else 0.0 for g in table.group])
     return mass * (1.0 - penalty * mark)
 
 

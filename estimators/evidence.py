@@ -43,6 +43,14 @@ Measures per hop (``r`` the reported rate, ``h`` the confidence half-width in bi
 ``motion_profile``
     1 when the settings run the motion stage (exercise), else 0: the same spectral
     evidence means something else after motion suppression.
+``reference_integrity``
+    with the motion stage, the lowest integrity (share of accepted samples, as in the
+    quality index) of the motion references' windows at this hop: 0 while the
+    accelerometer is missing (a lost stream, NaN samples, no accelerometer channel at
+    all), 1 when every reference is whole; 1 without the motion stage. Without it a
+    lost accelerometer left the confidence at 0.98 while the running estimates fell to
+    34-65 % within tolerance on five of the twelve SPC 2015 records (measured with the
+    accelerometer set to NaN after 60 s).
 """
 
 from __future__ import annotations
@@ -55,7 +63,7 @@ from estimators import _kernels
 
 FEATURES = ("posterior_mass", "motion_mark", "quality", "integrity", "concentration",
             "rival_ratio", "half_ratio", "double_ratio", "jumpiness", "channel_spread",
-            "motion_profile")
+            "motion_profile", "reference_integrity")
 """Names of the evidence measures, in the order of the evidence vectors."""
 
 JUMPINESS_TIME_CONSTANT_S = 4.0

@@ -140,6 +140,11 @@ class HopBlock:
     motion_lines: np.ndarray | None = None
     """Motion-line marks in [0, 1] on the band's bins (P, F) from the motion stage; they
     lower the confidence of a rate on a line."""
+    reference_integrity: np.ndarray | None = None
+    """Motion stage only (P,): the lowest integrity of the motion references' windows at
+    each hop (0 when a profile with the motion stage has no reference channel). Low
+    when the accelerometer is missing: the estimate then lacks the stage that makes
+    running data trustworthy, and the confidence says so (:mod:`estimators.evidence`)."""
 
     def __len__(self) -> int:
         return len(self.time_s)
@@ -236,9 +241,11 @@ def fuse_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
     if all(b.magnitude is not None for b in blocks):
         magnitude = fuse([b.magnitude for b in blocks])
     lines = [b.motion_lines for b in blocks if b.motion_lines is not None]
+    references = [b.reference_integrity for b in blocks if b.reference_integrity is not None]
     return HopBlock(fuse([b.spectra for b in blocks]), blocks[0].time_s,
                     np.max([b.emitted_s for b in blocks], axis=0), weights.max(axis=0),
-                    magnitude, motion_lines=np.max(lines, axis=0) if lines else None)
+                    magnitude, motion_lines=np.max(lines, axis=0) if lines else None,
+                    reference_integrity=np.min(references, axis=0) if references else None)
 
 
 def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.ndarray,
@@ -291,7 +298,9 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
         measures = np.column_stack([
             posterior_mass, mark, quality, block.integrity, concentration, rival, half,
             double, jumps, evidence_mod.channel_spread(channel_rates, len(quality)),
-            np.full(len(quality), 1.0 if settings.motion else 0.0)])
+            np.full(len(quality), 1.0 if settings.motion else 0.0),
+            np.ones(len(quality)) if block.reference_integrity is None
+            else block.reference_integrity])
         if calibrate:
             confidence = calibration_mod.calibrated_confidence(measures, confidence)
         evidence = [tuple(row) for row in measures.tolist()]
@@ -604,6 +613,8 @@ class RateMonitor:
         acc = np.stack(refs, axis=-1) if refs else None
         hr_keys = [key for key in self.outputs if key[0] == "hr"]
         n_hops = len(blocks[next(iter(self.motion))])
+        reference = (np.min([motion_blocks[name].integrity for name in self.motion_paths],
+                            axis=0) if self.motion_paths else np.zeros(n_hops))
         tracked, hops = {key: [] for key in hr_keys}, {key: [] for key in hr_keys}
         for p in range(n_hops):
             hop = {key: take_hops(blocks[key], slice(p, p + 1)) for key in hr_keys
@@ -613,7 +624,8 @@ class RateMonitor:
                     hop[key].columns, None if acc is None else acc[p:p + 1],
                     self._expected_pulse(key))
                 hop[key] = dataclasses.replace(hop[key], spectra=spectra, magnitude=spectra,
-                                               columns=None, motion_lines=lines)
+                                               columns=None, motion_lines=lines,
+                                               reference_integrity=reference[p:p + 1])
             if ("hr", FUSED) in self.outputs:
                 hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in hr_keys
                                                   if key[1] != FUSED])

@@ -93,3 +93,16 @@ def select(info: SourceInfo, specs: list[str] | None) -> list[Selected]:
             f"(channels: {', '.join(names)}); name them with --channel NAME=KIND, "
             f"e.g. --channel {names[0] if names else 'NAME'}=ppg")
     return chosen
+
+
+def missing_reference_warning(selected: list[Selected], profile) -> str | None:
+    """One line for the user when the profile suppresses motion with an accelerometer
+    but no selected channel is one; None otherwise. The engine still runs, with the
+    confidence of its ``blind`` calibration (:data:`estimators.calibration.FAMILIES`)."""
+    if not profile.hr.motion or any(s.kind == "acc" for s in selected):
+        return None
+    if not any(s.kind == "ppg" for s in selected):
+        return None
+    return (f"profile {profile.name} suppresses motion with an accelerometer, but no "
+            "channel is of kind acc: heart rate runs without it, at a lower confidence; "
+            "add --channel NAME=acc for the accelerometer axes")

@@ -335,7 +335,7 @@ def _engine_error(name: str, exc: ParameterError) -> InputError:
 
 
 def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
-    from streamer.channels import select
+    from streamer.channels import missing_reference_warning, select
     from streamer.runner import Runner, install_signal_handlers
     from streamer.sinks.estimate_log import EstimateLog
 
@@ -383,8 +383,13 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
         publisher = SamplePublisher(published)
         runner.listeners.append(lambda u: u.chunk is not None and publisher.push_chunk(
             _full_chunk(u)))
+    warning = missing_reference_warning(selected, profile)
+    if warning and runner.log is not None:
+        runner.log.write_event("warning", warning)
     if not args.quiet:
         print(f"ridgewatch {__version__}: {CAUTION}", file=sys.stderr)
+        if warning:
+            print(f"ridgewatch: warning: {warning}", file=sys.stderr)
         print("channels: " + ", ".join(f"{s.name}={s.kind}" for s in selected)
               + f"; profile {profile.name}" + (f"; log {log_path}" if log_path else "")
               + ("; publishing LSL streams " + ", ".join(
@@ -554,7 +559,7 @@ def cmd_profiles(args) -> int:
 
 def cmd_offline(args) -> int:
     from estimators.monitor import RateMonitor, offline_estimates
-    from streamer.channels import select
+    from streamer.channels import missing_reference_warning, select
     from streamer.sinks.estimate_log import EstimateLog
     from streamer.sources.files import read_recording, recording_files
 
@@ -575,6 +580,11 @@ def cmd_offline(args) -> int:
                       {s.name: s.kind for s in selected}, config, if_exists=_if_exists(args),
                       inputs=recording_files(args.file))
     with out:
+        warning = missing_reference_warning(selected, profile)
+        if warning:
+            out.write_event("warning", warning)
+            if not args.quiet:
+                print(f"ridgewatch: warning: {warning}", file=sys.stderr)
         start = time.perf_counter()
         estimates = offline_estimates(samples, recording.timestamps, paths,
                                       recording.info.fs, profile)

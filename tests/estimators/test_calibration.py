@@ -82,10 +82,10 @@ def test_a_fitted_map_recovers_known_probabilities(rng):
 # ------------------------------------------------------------------ shipped map
 
 
-def test_the_shipped_map_loads_with_both_families():
+def test_the_shipped_map_loads_with_every_family():
     shipped = calibration.MAP
     assert shipped is not None, f"no map at {calibration.MAP_PATH}"
-    assert set(shipped.models) == {"motion", "still"}
+    assert set(shipped.models) == set(calibration.FAMILIES)
     for model in shipped.models.values():
         assert np.all(np.diff(model.knots_score) > 0)
         assert np.all(np.diff(model.knots_prob) >= 0)  # isotonic: never falls
@@ -98,11 +98,14 @@ def test_shipped_confidence_rises_with_the_score_and_stays_a_probability(rng):
                             rng.uniform(0, 1, 500), np.ones(500), rng.uniform(0, 1, 500),
                             rng.uniform(0, 2, 500), rng.uniform(0, 2, 500),
                             rng.uniform(0, 2, 500), rng.uniform(0, 10, 500),
-                            rng.uniform(0, 40, 500), (rng.uniform(size=500) < 0.5) * 1.0])
+                            rng.uniform(0, 40, 500), (rng.uniform(size=500) < 0.5) * 1.0,
+                            rng.uniform(0, 1, 500)])
     prob = calibration.MAP(rows)
     assert np.all((prob >= calibration.PROB_FLOOR) & (prob <= calibration.PROB_CEIL))
-    motion = calibration.family_of(rows)
-    for family, sel in (("motion", motion), ("still", ~motion)):
+    families = calibration.family_of(rows)
+    assert set(families) == set(calibration.FAMILIES)
+    for family in calibration.FAMILIES:
+        sel = families == family
         score = calibration.MAP.models[family].score(rows[sel])
         assert np.all(np.diff(prob[sel][np.argsort(score)]) >= -1e-12)
 

@@ -419,3 +419,23 @@ def test_default_log_names_are_plain_file_names():
     assert _default_log_path("/data/rec 1.hea").name.startswith("rec_1-")
     assert _default_log_path("lab/ppg:stream").parent.name == "ridgewatch-logs"
     assert _default_log_path("???").name.startswith("stream-")
+
+
+def test_exercise_profile_without_an_accelerometer_says_so(short_csv, tmp_path, capfd):
+    """The exercise profile without an acc channel runs (at the confidence of its
+    blind calibration) and tells the user, on the terminal and in the log."""
+    log = tmp_path / "noacc.csv"
+    code = cli.main(["replay", str(short_csv), "--channel", "PPG=ppg", "--profile",
+                     "exercise-wrist", "--speed", "max", "--display", "none", "--duration",
+                     "5", "--log", str(log)])
+    err = capfd.readouterr().err
+    expected = ("profile exercise-wrist suppresses motion with an accelerometer, but no "
+                "channel is of kind acc: heart rate runs without it, at a lower "
+                "confidence; add --channel NAME=acc for the accelerometer axes")
+    assert code == 0
+    assert f"ridgewatch: warning: {expected}" in err
+    assert f"# event nan warning: {expected}" in log.read_text()
+    code = cli.main(["replay", str(short_csv), "--channel", "PPG=ppg", "--channel",
+                     "ACC_X=acc", "--profile", "exercise-wrist", "--speed", "max",
+                     "--display", "none", "--duration", "5", "--log", str(tmp_path / "a.csv")])
+    assert code == 0 and "warning" not in capfd.readouterr().err

@@ -628,3 +628,25 @@ def test_replay_with_an_outlet_publishes_every_logged_marker(tmp_path):
     assert first[1] - first[0] == pytest.approx(4.0, abs=1e-6)
     same = [stamps[k] for k, m in enumerate(table.markers) if m.time_s == 20.0]
     assert len(same) == 2 and same[0] == same[1]
+
+
+# ---------------------------------------------------------------------- command line
+
+
+@pytest.mark.parametrize("command", ["replay", "offline"])
+def test_replay_and_offline_commands_log_the_recordings_markers(command, tmp_path,
+                                                                monkeypatch):
+    """The readers fill ``Recording.markers``; here a reader stand-in does, so the
+    commands are checked on their own."""
+    from streamer import cli
+    from streamer.sources import files
+
+    rec = recording_with_markers(20.0)
+    monkeypatch.setattr(files, "read_recording", lambda *a, **k: rec)
+    log = tmp_path / f"{command}.csv"
+    extra = ["--speed", "max", "--display", "none"] if command == "replay" else []
+    assert cli.main([command, str(tmp_path / "session.csv"), "--log", str(log), "-q",
+                     *extra]) == 0
+    table = read_log(log)
+    assert table.markers == marker_order(rec.markers)
+    assert_markers_between_rows(body(log), by=1 if command == "replay" else 2)

@@ -393,7 +393,8 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
         print("channels: " + ", ".join(f"{s.name}={s.kind}" for s in selected)
               + f"; profile {profile.name}" + (f"; log {log_path}" if log_path else "")
               + ("; publishing LSL streams " + ", ".join(
-                  f"'{n}'" for n in runner.outlet.names.values()) if runner.outlet else ""),
+                  f"'{n}'" for n in [*runner.outlet.names.values(), runner.outlet.marker_name])
+                  if runner.outlet else ""),
               file=sys.stderr)
     try:
         if display == "qt":
@@ -423,6 +424,7 @@ def _run_threaded(runner, display: str, install_signal_handlers):
     text = TextDisplay() if display == "text" else None
     if text is not None:
         runner.listeners.append(text.listener)
+        text.read_markers(sys.stdin, runner.add_user_marker)
     restore = install_signal_handlers(runner)
     result = {}
     errors = []
@@ -560,7 +562,7 @@ def cmd_profiles(args) -> int:
 def cmd_offline(args) -> int:
     from estimators.monitor import RateMonitor, offline_estimates
     from streamer.channels import missing_reference_warning, select
-    from streamer.sinks.estimate_log import EstimateLog
+    from streamer.sinks.estimate_log import EstimateLog, write_offline_rows
     from streamer.sources.files import read_recording, recording_files
 
     recording = read_recording(args.file, fs=args.fs, time_column=args.time_column,
@@ -590,8 +592,7 @@ def cmd_offline(args) -> int:
                                       recording.info.fs, profile)
         elapsed = time.perf_counter() - start
         per_row = 1e3 * elapsed / max(1, len(estimates))
-        for est in estimates:
-            out.write(est, per_row)
+        write_offline_rows(out, estimates, recording.markers, per_row)
     if not args.quiet:
         print(f"offline: {len(estimates)} estimates over {recording.duration_s:.1f} s "
               f"in {elapsed:.1f} s; log {args.log}", file=sys.stderr)

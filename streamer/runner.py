@@ -3,7 +3,10 @@
 The :class:`Runner` pulls items from a source, feeds chunks to the engine
 (:class:`estimators.monitor.RateMonitor`), writes every estimate to the log (flushed per
 line) and the LSL outlet, and hands copies to listeners (the display) without ever
-waiting for them. When the engine restarts at a gap in the timestamps
+waiting for them. Text markers (:class:`~streamer.sources.base.Marker`) from the source
+and from the user (:meth:`Runner.add_user_marker`) go to the log, the outlet and the
+listeners in stream-time order with the rows (see :class:`MarkerQueue`). When the engine
+restarts at a gap in the timestamps
 (:func:`estimators.monitor.find_gaps`; any source, file replay included), a ``"gap"``
 event goes into the log between the rows before and after it, unless the source
 reported that hole itself. A stop request (Ctrl-C, SIGTERM, a closed window,
@@ -16,6 +19,7 @@ from __future__ import annotations
 
 import logging
 import math
+import queue
 import signal
 import threading
 import time
@@ -28,7 +32,7 @@ from estimators.config import Profile
 from estimators.estimate import Estimate
 from estimators.monitor import Gap, RateMonitor
 from streamer.channels import Selected
-from streamer.sources.base import Chunk, SourceEvent
+from streamer.sources.base import Chunk, Marker, SourceEvent
 
 log = logging.getLogger("ridgewatch")
 
@@ -107,6 +111,62 @@ class Update:
     chunk: Chunk | None
     blocks: dict
     event: SourceEvent | None = None
+    markers: tuple = ()
+    """Markers just written to the log (in stream-time order)."""
+
+
+USER_SOURCE = "user"
+"""The ``source`` of markers the user adds during the run (a key in the window, a line
+typed into the text display)."""
+
+
+class MarkerQueue:
+    """Markers waiting for the rows around them.
+
+    A row's ``emitted_s`` is the time of the newest sample it used, and rows are written
+    as their chunk is processed. A marker at time ``t`` is therefore written after every
+    row with ``emitted_s <= t`` and before the first row with ``emitted_s > t``: it is
+    held (:meth:`add`) until a row later than it is about to be written
+    (:meth:`due` before it) or the samples have passed it (:meth:`due` after a chunk).
+    A marker that arrives later than rows after it (a marker stream running behind the
+    data) is written at once; its time still says where it belongs. A marker without a
+    time (NaN) is never held.
+
+    Examples
+    --------
+    >>> q = MarkerQueue()
+    >>> q.add(Marker(5.0, "b")); q.add(Marker(2.0, "a")); q.add(Marker(9.0, "c"))
+    >>> [m.text for m in q.due(4.0)], [m.text for m in q.due(5.0)], len(q)
+    (['a'], ['b'], 1)
+    >>> [m.text for m in q.due(math.inf)]
+    ['c']
+    """
+
+    def __init__(self):
+        self._held: list[Marker] = []
+
+    def __len__(self) -> int:
+        return len(self._held)
+
+    def add(self, marker: Marker) -> None:
+        """Hold ``marker``; markers come out by time, equal times in arrival order."""
+        at = len(self._held)
+        while at > 0 and not self._held[at - 1].time_s <= marker.time_s:
+            at -= 1  # NaN compares False: a marker without a time goes first
+        self._held.insert(at, marker)
+
+    def due(self, until_s: float, inclusive: bool = True) -> list[Marker]:
+        """Take the held markers with ``time_s <= until_s`` (``< until_s`` when not
+        ``inclusive``) and those without a time, in order."""
+        k = 0
+        for marker in self._held:
+            t = marker.time_s
+            if math.isnan(t) or t < until_s or (inclusive and t == until_s):
+                k += 1
+            else:
+                break
+        taken, self._held = self._held[:k], self._held[k:]
+        return taken
 
 
 class Runner:
@@ -140,6 +200,21 @@ class Runner:
         self.stop_reason = ""
         self.rate_check = RateCheck(source.info.fs, source.info.name)
         self._announced_gap_s = math.nan  # time_s of the source's last "gap" event
+        self.markers = MarkerQueue()
+        self._user_markers: queue.SimpleQueue = queue.SimpleQueue()
+        self._user_count = 0
+        self._source_lost = False
+
+    def add_user_marker(self, text: str = "") -> None:
+        """Add a marker of the user's own (source :data:`USER_SOURCE`). Safe from any
+        thread (the window, a stdin reader): it only puts the text in a queue that the
+        run loop drains before every item, stamping each marker with the stream time of
+        the newest sample processed so far (so it falls in order with the rows, within
+        one chunk of the call). Empty text becomes ``user marker N`` (N counts this
+        run's user markers from 1). Markers added before the first sample wait for it;
+        while the source yields nothing (a lost stream) they wait for its next item or
+        the end of the run."""
+        self._user_markers.put(str(text))
 
     def stop(self, reason: str = "stop requested") -> None:
         """Ask the loop to end at the next item (safe from any thread or signal handler)."""
@@ -160,9 +235,43 @@ class Runner:
                 log.warning("display listener failed and was removed: %s", exc)
                 self.listeners.remove(listener)
 
+    def _drain_user_markers(self, final: bool = False) -> None:
+        if math.isnan(self.stats.stream_end_s) and not final:
+            return  # no sample yet to stamp them with
+        while True:
+            try:
+                text = self._user_markers.get_nowait()
+            except queue.Empty:
+                return
+            self._user_count += 1
+            self._handle_marker(Marker(self.stats.stream_end_s,
+                                       text or f"user marker {self._user_count}", USER_SOURCE))
+
+    def _handle_marker(self, marker: Marker) -> None:
+        """Hold ``marker`` until the rows before it are written; write it at once when
+        the samples have passed it, the source is lost (the next rows come after the
+        comeback) or it has no time."""
+        self.markers.add(marker)
+        if self._source_lost:
+            self._write_markers(self.markers.due(math.inf))
+        else:
+            self._write_markers(self.markers.due(self.stats.stream_end_s))
+
+    def _write_markers(self, markers: list) -> None:
+        if not markers:
+            return
+        for marker in markers:
+            log.debug("marker %.3f %s: %s", marker.time_s, marker.source, marker.text)
+            if self.log is not None:
+                self.log.write_marker(marker)
+        if self.outlet is not None and hasattr(self.outlet, "push_markers"):
+            self.outlet.push_markers(markers, self.stats.stream_end_s)
+        self._notify(Update([], None, {}, markers=tuple(markers)))
+
     def _handle_chunk(self, chunk: Chunk) -> None:
         if len(chunk) == 0:
             return
+        self._source_lost = False
         samples = chunk.samples[:, self._columns]
         start = time.perf_counter()
         estimates: list[Estimate] = self.monitor.update(samples, chunk.timestamps)
@@ -187,12 +296,25 @@ class Runner:
             written += len(before)
             self._engine_gap(gap)
         self._write_estimates(estimates[written:], compute_ms)
+        self._write_markers(self.markers.due(st.stream_end_s))
         st.estimates += len(estimates)
         if self.listeners:
             view = Chunk(samples, chunk.timestamps)
             self._notify(Update(estimates, view, self.monitor.last_blocks))
 
     def _write_estimates(self, estimates: list, compute_ms: float) -> None:
+        start = 0
+        for k, est in enumerate(estimates):
+            # Markers held for a time before this row go first, with the rows before them.
+            markers = self.markers.due(est.emitted_s, inclusive=False) if len(
+                self.markers) else []
+            if markers:
+                self._write_rows(estimates[start:k], compute_ms)
+                start = k
+                self._write_markers(markers)
+        self._write_rows(estimates[start:], compute_ms)
+
+    def _write_rows(self, estimates: list, compute_ms: float) -> None:
         if self.log is not None:
             for est in estimates:
                 self.log.write(est, compute_ms)
@@ -211,6 +333,7 @@ class Runner:
             f"samples after the gap",
             gap.after_s, {"missing_s": gap.missing_s, "before_s": gap.before_s,
                           "restart": True})
+        self._write_markers(self.markers.due(gap.after_s, inclusive=False))
         if gap.before_s <= self._announced_gap_s <= gap.after_s:
             self._notify(Update([], None, {}, event))
         else:
@@ -226,6 +349,13 @@ class Runner:
             log.info("%s", event.message)
         if self.log is not None and event.kind != "replaying":
             self.log.write_event(event.kind, event.message, event.time_s)
+        if event.kind in ("lost", "end"):
+            # No rows come before the comeback (or ever): held markers, all later than
+            # the last sample, go now, after the event.
+            self._source_lost = event.kind == "lost"
+            self._write_markers(self.markers.due(math.inf))
+        elif event.kind == "resumed":
+            self._source_lost = False
         if event.kind == "resumed":
             # The time axis may jump at a comeback (forwards over the loss, or backwards
             # for a restarted sender): windows must not straddle it, so estimation
@@ -248,8 +378,11 @@ class Runner:
             for item in self.source.chunks():
                 if self.stop_event.is_set():
                     break
+                self._drain_user_markers()
                 if isinstance(item, Chunk):
                     self._handle_chunk(item)
+                elif isinstance(item, Marker):
+                    self._handle_marker(item)
                 else:
                     self._handle_event(item)
                     if item.kind == "end":
@@ -269,6 +402,12 @@ class Runner:
         return f"--duration {self.duration_s:g} s reached"
 
     def close(self) -> None:
+        try:
+            # Markers still held (past the last sample) or typed at the very end.
+            self._drain_user_markers(final=True)
+            self._write_markers(self.markers.due(math.inf))
+        except Exception as exc:
+            log.warning("writing the last markers failed: %s", exc)
         for sink in (self.log, self.outlet):
             if sink is not None:
                 try:

@@ -22,6 +22,11 @@ the raw trace of every channel with its quality value and word; the rate history
 a confidence band; one time-frequency image per output with the tracked ridge on it.
 The caution "research tool, not a medical device" is in the title and the status bar.
 
+Markers (from the source, or the user's own: key :data:`MARKER_KEY`) are drawn as
+labelled vertical lines on the rate history (:class:`MarkerLines`). The key only hands
+a request to the runner (``Runner.add_user_marker``, a queue); the marker is drawn when
+it comes back with the updates, so the window shows what the log holds.
+
 Set the environment variable ``RIDGEWATCH_SCREENSHOT`` to a ``.png`` path to save the
 window, as drawn just before it closes, to that file.
 """
@@ -43,8 +48,8 @@ from pyqtgraph.Qt import QtCore, QtGui, QtWidgets
 from estimators.display_rule import GREY, GREY_CONFIDENCE, SHOW, SHOW_CONFIDENCE, WITHHOLD
 from streamer.display.buffers import (DisplayBuffers, DisplayLayout, FramePacer, UpdateFeed,
                                       confidence_band, rate_axis_range)
-from streamer.display.state import (QUALITY_WORDS, format_rate, quality_word, quantity_name,
-                                    unit_of)
+from streamer.display.state import (QUALITY_WORDS, format_rate, marker_label, quality_word,
+                                    quantity_name, unit_of)
 from streamer.errors import InputError
 
 log = logging.getLogger("ridgewatch")
@@ -85,6 +90,16 @@ GRID = "#2E363F"
 RIDGE = "#FF5CA8"
 WORD_COLOURS = {"good": TEXT, "weak": "#F5C26B", "unusable": "#FF8A80"}
 """The quality word's colour only repeats what the word says."""
+
+MARKER_KEY = "M"
+"""The key that adds a marker of the user's own."""
+MARKER_COLOUR = "#E8EAED"
+MARKER_LABEL_ROWS = (0.95, 0.83, 0.71, 0.59)
+"""Heights (fractions of the plot, from the bottom) for marker labels. A new label takes
+the row whose newest label is oldest, so markers close in time do not print over each
+other (a label reaches left of its line, into the past)."""
+MARKER_LABEL_CHARS = 26
+"""Longest marker label on the plots (the tooltip and the log keep the whole text)."""
 
 STYLE_SHEET = f"""
 QMainWindow, QWidget#central {{ background: {BACKGROUND}; }}
@@ -151,6 +166,68 @@ class BandItem(pg.GraphicsObject):
         painter.setPen(pg.mkPen(None))
         painter.setBrush(self._brush)
         painter.drawPath(self._path)
+
+
+class MarkerLines:
+    """Markers as labelled vertical lines on a set of plots sharing a time axis.
+
+    Each marker gets one dashed line per plot, labelled with its text (one line, cut to
+    :func:`~streamer.display.state.marker_label` width; the whole text and source in
+    the line's tooltip) to the left of the line, where the history is. Lines follow
+    the time axis (seconds before the newest sample) and are removed once they scroll
+    out of ``span_s``.
+    """
+
+    def __init__(self, plots, span_s: float):
+        self.plots = list(plots)
+        self.span_s = span_s
+        self.shown: collections.deque = collections.deque()  # (marker, lines)
+        self.count = 0  # markers taken so far
+        self._row_used_s = [-math.inf] * len(MARKER_LABEL_ROWS)  # newest marker per row
+
+    def add(self, marker) -> None:
+        k = min(range(len(MARKER_LABEL_ROWS)), key=lambda r: self._row_used_s[r])
+        self._row_used_s[k] = marker.time_s
+        row = MARKER_LABEL_ROWS[k]
+        self.count += 1
+        text = marker_label(marker.text, MARKER_LABEL_CHARS)
+        lines = []
+        font = QtGui.QFont()
+        font.setPixelSize(14)
+        for plot in self.plots:
+            line = pg.InfiniteLine(
+                pos=0.0, angle=90, movable=False,
+                pen=pg.mkPen(MARKER_COLOUR, width=1.5, style=QtCore.Qt.PenStyle.DashLine),
+                label=text, labelOpts={
+                    "position": row, "color": TEXT, "fill": pg.mkBrush(PANEL + "C8"),
+                    "anchors": [(1, 1), (1, 0)]})
+            line.label.setFont(font)
+            line.setToolTip(f"{marker.source}: {marker.text}")
+            line.setZValue(15)
+            plot.addItem(line, ignoreBounds=True)
+            lines.append(line)
+        self.shown.append((marker, lines))
+
+    def draw(self, now_s: float) -> None:
+        """Place every line at its time relative to ``now_s``; drop scrolled-out ones."""
+        while self.shown and self.shown[0][0].time_s - now_s < -self.span_s:
+            _, lines = self.shown.popleft()
+            for plot, line in zip(self.plots, lines):
+                plot.removeItem(line)
+        for marker, lines in self.shown:
+            for line in lines:
+                line.setValue(marker.time_s - now_s)
+
+    def take(self, markers, seen: int) -> None:
+        """Add the markers of a :class:`~streamer.display.state.DisplayState` not taken
+        yet: ``markers`` the kept ones (oldest first), ``seen`` how many came in all."""
+        new = min(seen - self.count, len(markers))
+        self.count = seen - new
+        for marker in list(markers)[len(markers) - new:]:
+            if math.isfinite(marker.time_s):
+                self.add(marker)
+            else:
+                self.count += 1
 
 
 class ReadoutCard(QtWidgets.QFrame):
@@ -311,6 +388,7 @@ class MonitorWindow(QtWidgets.QMainWindow):
         plots.addWidget(self._build_rates(), 4)
         plots.addWidget(self._build_images(), 4)
         self._build_status_bar()
+        self._build_markers()
 
         self.pacer = FramePacer(fastest_s=FRAME_INTERVAL_MS / 1e3, share=DRAW_SHARE)
         self.timer = QtCore.QTimer(self)
@@ -350,12 +428,34 @@ class MonitorWindow(QtWidgets.QMainWindow):
             self.cards[info.key] = card
             column.addWidget(card)
         column.addStretch(1)
-        guide = QtWidgets.QLabel(self._reading_guide())
+        guide = QtWidgets.QLabel(self._reading_guide() + " " + self._marker_hint())
         guide.setWordWrap(True)
         guide.setFixedWidth(330)
         guide.setStyleSheet(f"font-size: 14px; color: {DIM};")
         column.addWidget(guide)
         return column
+
+    def _build_markers(self) -> None:
+        """Marker lines on the rate plots and the key that adds a marker of one's own."""
+        self.marker_lines = MarkerLines(self.rate_plots.values(), self.rate_span_s)
+        self.marker_sink = None  # set by run_with_window: Runner.add_user_marker
+        self.user_markers_requested = 0
+        self.marker_shortcut = QtGui.QShortcut(QtGui.QKeySequence(MARKER_KEY), self)
+        self.marker_shortcut.activated.connect(self.add_user_marker)
+
+    def add_user_marker(self) -> None:
+        """Key :data:`MARKER_KEY`: ask the runner for a marker ``user marker N`` at the
+        newest sample. Never waits: the runner takes it from a queue."""
+        if self.marker_sink is None:
+            return
+        self.user_markers_requested += 1
+        self.marker_sink("")
+
+    @staticmethod
+    def _marker_hint() -> str:
+        return (f"Key {MARKER_KEY}: add a marker of your own (\u201cuser marker N\u201d, "
+                f"in the log and, with --publish, on the marker stream). Markers are the "
+                f"dashed lines on the rate history.")
 
     def _reading_guide(self) -> str:
         """A few lines on what the readouts mean, from the same thresholds they use."""
@@ -550,7 +650,7 @@ class MonitorWindow(QtWidgets.QMainWindow):
         b = self.buffers
         return (tuple(r.version for r in b.rates.values()),
                 tuple(i.version for i in b.images.values()), b.state.stream,
-                b.state.notice, b.state.dropped, self._final)
+                b.state.notice, b.state.dropped, self._final, b.state.markers_seen)
 
     def draw(self, force: bool = False) -> None:
         """Redraw from the buffers.
@@ -596,6 +696,8 @@ class MonitorWindow(QtWidgets.QMainWindow):
             keep = rel >= -self.image_span_s
             for line in self.ridge_curves.get(key, ()):
                 line.setData(rel[keep], view.rate_per_min[keep])
+        self.marker_lines.take(state.markers, state.markers_seen)
+        self.marker_lines.draw(now)
         for quantity, plot in self.rate_plots.items():
             shown = [b.rates[k].view().rate_per_min for k in self.rate_curves
                      if k[0] == quantity]
@@ -824,6 +926,7 @@ def run_with_window(runner, profile=None, duration_s: float | None = None,
     if profile is not None and getattr(profile, "name", ""):
         title += f"  \u00b7  profile {profile.name}"
     window = MonitorWindow(layout, feed, stats=getattr(runner, "stats", None), title=title)
+    window.marker_sink = getattr(runner, "add_user_marker", None)
     if keep_open is None:
         keep_open = duration_s is None and app.platformName() != "offscreen"
 

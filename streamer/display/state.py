@@ -6,6 +6,7 @@ words a user sees (quality, stream status, units) are decided in one place.
 
 from __future__ import annotations
 
+import collections
 import math
 from dataclasses import dataclass, field
 
@@ -25,6 +26,21 @@ QUANTITY_NAMES = {"hr": "heart rate", "rr": "breathing rate"}
 CHANNEL_QUANTITY = {"ppg": "hr", "ecg": "hr", "resp": "rr"}
 """Which estimate carries the quality of a channel of each kind (``acc`` has none: it
 is only a motion reference)."""
+
+
+MARKERS_KEPT = 200
+"""Markers a display keeps: far more than a 5-minute rate history shows in a session."""
+
+
+def marker_label(text: str, width: int = 32) -> str:
+    """A marker's text for a display: on one line (line breaks and tabs as spaces),
+    at most ``width`` characters (an ellipsis when cut). The log keeps the text whole.
+
+    >>> marker_label("stage 2\\nstart"), marker_label("x" * 40, 8)
+    ('stage 2 start', 'xxxxxxx…')
+    """
+    one_line = " ".join(str(text).split())
+    return one_line if len(one_line) <= width else one_line[:width - 1] + "…"
 
 
 def quality_word(quality: float) -> str:
@@ -86,6 +102,8 @@ class DisplayState:
     dropped : updates the display skipped because its queue was full.
     newest_time_s : ``emitted_s`` of the newest estimate (NaN before the first).
     newest_sample_s : timestamp of the newest sample seen (NaN before the first).
+    markers : the newest :data:`MARKERS_KEPT` markers (oldest first).
+    markers_seen : how many markers came in all (tells a redraw that one came).
     """
 
     latest: dict = field(default_factory=dict)
@@ -96,9 +114,15 @@ class DisplayState:
     dropped: int = 0
     newest_time_s: float = float("nan")
     newest_sample_s: float = float("nan")
+    markers: collections.deque = field(
+        default_factory=lambda: collections.deque(maxlen=MARKERS_KEPT))
+    markers_seen: int = 0
 
     def apply(self, update) -> None:
-        """Take one runner update (estimates, chunk, event)."""
+        """Take one runner update (estimates, chunk, event, markers)."""
+        for marker in getattr(update, "markers", ()):
+            self.markers.append(marker)
+            self.markers_seen += 1
         for est in update.estimates:
             key = (est.quantity, est.source)
             self.latest[key] = est

@@ -3,18 +3,21 @@
 Works over SSH and in CI logs. On a terminal (a TTY) the block of lines is redrawn in
 place a few times per second; otherwise a plain line is printed per refresh so logs
 stay readable. It only draws: the runner hands it updates through a bounded queue and
-never waits for it.
+never waits for it. Below the rates it lists the last few markers; a line typed on
+stdin (:meth:`TextDisplay.read_markers`) becomes a marker of the user's own.
 """
 
 from __future__ import annotations
 
 import math
+import os
 import queue
 import sys
+import threading
 import time
 
 from estimators.display_rule import GREY, WITHHOLD
-from streamer.display.state import DisplayState, quality_word, unit_of
+from streamer.display.state import DisplayState, marker_label, quality_word, unit_of
 
 CAUTION = "research tool, not a medical device"
 
@@ -50,6 +53,37 @@ def format_line(key, est) -> str:
             f"delay {est.delay_s:4.1f} s{note}")
 
 
+def in_foreground(stream) -> bool:
+    """Whether reading ``stream`` is safe: it is not a terminal, or this process is in
+    the terminal's foreground. A background job (``ridgewatch ... &``) that reads its
+    terminal is stopped by the system (SIGTTIN), so it never tries."""
+    try:
+        fd = stream.fileno()
+    except (AttributeError, OSError, ValueError):
+        return True  # not a file (a test's StringIO): readable
+    try:
+        if not os.isatty(fd):
+            return True
+        return os.tcgetpgrp(fd) == os.getpgrp()
+    except OSError:
+        return False
+
+
+MARKERS_LISTED = 3
+"""How many of the newest markers the text display lists."""
+
+
+def format_marker_line(marker) -> str:
+    """One line for a marker: stream time, source and text (on one line, cut to fit).
+
+    >>> from streamer.sources.base import Marker
+    >>> print(format_marker_line(Marker(75.25, "stage 2 start", "lab")))
+    marker      75.2 s  lab: stage 2 start
+    """
+    return (f"marker   {marker.time_s:7.1f} s  {marker_label(marker.source, 16)}: "
+            f"{marker_label(marker.text, 48)}")
+
+
 class TextDisplay:
     """Drains a queue of runner updates and prints the latest value per quantity/source."""
 
@@ -61,6 +95,47 @@ class TextDisplay:
         self._lines_drawn = 0
         self._last_draw = 0.0
         self._tty = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self.typed: queue.SimpleQueue = queue.SimpleQueue()
+        self.marker_sink = None
+
+    def read_markers(self, lines, sink) -> threading.Thread | None:
+        """Turn every line read from ``lines`` (stdin) into a marker: ``sink(text)`` (the
+        runner's ``add_user_marker``) is called from :meth:`run_until`, so the reading
+        thread only queues. An empty line adds a numbered marker (``user marker N``).
+        Reading stops at the end of input, a read error (stdin closed or not readable)
+        or when the process runs in the background of its terminal
+        (:func:`in_foreground`); the thread is a daemon, so a terminal never keeps the
+        run alive.
+        Returns the thread (None when ``lines`` is None)."""
+        if lines is None:
+            return None
+        self.marker_sink = sink
+
+        def read():
+            try:
+                while in_foreground(lines):
+                    line = lines.readline()
+                    if not line:
+                        return  # end of input
+                    self.typed.put(line.rstrip("\r\n"))
+            except (OSError, ValueError):  # closed, or not readable (e.g. under a test runner)
+                pass
+
+        thread = threading.Thread(target=read, name="ridgewatch-stdin-markers", daemon=True)
+        thread.start()
+        return thread
+
+    def take_typed(self) -> int:
+        """Hand typed lines to the marker sink; returns how many."""
+        n = 0
+        while True:
+            try:
+                text = self.typed.get_nowait()
+            except queue.Empty:
+                return n
+            n += 1
+            if self.marker_sink is not None:
+                self.marker_sink(text.strip())
 
     def listener(self, update) -> None:
         """Runner-side hook: never blocks; drops the update when the queue is full."""
@@ -93,6 +168,7 @@ class TextDisplay:
         self._last_draw = now
         lines = [self.header()]
         lines += [format_line(k, e) for k, e in sorted(self.state.latest.items())]
+        lines += [format_marker_line(m) for m in list(self.state.markers)[-MARKERS_LISTED:]]
         if self._tty and self._lines_drawn:
             self.stream.write(f"\x1b[{self._lines_drawn}F\x1b[J")
         self.stream.write("\n".join(lines) + "\n")
@@ -102,8 +178,13 @@ class TextDisplay:
     def run_until(self, done) -> None:
         """Drain and draw until ``done()`` is true (called from the main thread)."""
         while not done():
+            typed = self.take_typed()
+            if typed and self._tty and self._lines_drawn:
+                # The terminal echoed each typed line below the block: redraw over it.
+                self._lines_drawn += typed
             self.drain()
-            self.draw()
+            self.draw(force=bool(typed))
             time.sleep(0.05)
+        self.take_typed()
         self.drain()
         self.draw(force=True)

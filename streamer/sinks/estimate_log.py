@@ -293,6 +293,24 @@ class EstimateLog:
         self.close()
 
 
+def write_offline_rows(log: EstimateLog, estimates, markers, compute_ms: float) -> None:
+    """The offline twin's rows (in ``time_s`` order) with a recording's markers among
+    them: a marker at ``t`` after every row with ``time_s <= t``, markers without a time
+    last. Offline rows describe their window centre (the twin sees the whole record), so
+    that is what a marker is placed by; live and replay rows are placed by
+    ``emitted_s`` (:class:`streamer.runner.MarkerQueue`)."""
+    timed = sorted((m for m in markers if not math.isnan(m.time_s)), key=lambda m: m.time_s)
+    rest = [m for m in markers if math.isnan(m.time_s)]
+    m = 0
+    for est in estimates:
+        while m < len(timed) and timed[m].time_s < est.time_s:
+            log.write_marker(timed[m])
+            m += 1
+        log.write(est, compute_ms)
+    for marker in timed[m:] + rest:
+        log.write_marker(marker)
+
+
 # ---------------------------------------------------------------------------- opening
 
 try:

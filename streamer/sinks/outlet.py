@@ -24,6 +24,18 @@ the pairs do not share their hop times: each decimates to its own analysis rate,
 breathing rate from a pulse reports several hops at once when a beat completes them, so
 a shared sample would have to pad with NaN or merge hops.
 
+Markers
+-------
+Beside the estimate streams the outlet opens one marker stream, ``"<name> markers"``
+(type ``Markers``, irregular rate, two string channels ``text`` and ``source``): every
+marker the log gets (:class:`~streamer.sources.base.Marker`: from a marker stream or
+file, or the user's own with source ``user``) is one sample, its text unchanged in the
+first channel, stamped with the marker's time like the estimates (stream time live,
+shifted onto the local clock in replay). The source travels in a channel of its own so
+the text stays exactly what was sent, and a recorder that also records the original
+marker stream can tell the copies from the user's own markers. The stream exists from
+the start, so consumers can subscribe before the first marker.
+
 Names and source ids
 --------------------
 A stream is named ``"<name> <quantity>.<source>"``. Its ``source_id`` is derived from
@@ -67,6 +79,11 @@ FIELDS = ("rate_per_min", "confidence", "quality", "delay_s")
 UNITS = {"rate_per_min": "1/min", "confidence": "1", "quality": "1", "delay_s": "s"}
 
 STREAM_TYPE = "RateEstimates"
+
+MARKER_STREAM_TYPE = "Markers"
+"""Type of the marker stream (the usual type of LSL event-marker streams)."""
+MARKER_FIELDS = ("text", "source")
+"""Channels of the marker stream, in this order."""
 
 CLAIM_WAIT_S = 0.5
 """How long to listen for another instance with the same ids. The same wait as the
@@ -132,6 +149,7 @@ class EstimateOutlet:
     ----------
     instance : 1, or the instance number taken because others publish the same ids.
     names, source_ids : pair -> stream name, pair -> stream source_id.
+    marker_name, marker_source_id : the marker stream's name and source_id.
     """
 
     def __init__(
@@ -163,6 +181,8 @@ class EstimateOutlet:
         self.hops = {pair: float(hops[pair]) for pair in pairs}
         self._use_stream_time = use_stream_time
         self._outlets: dict[tuple[str, str], pylsl.StreamOutlet] = {}
+        self._marker_outlet: pylsl.StreamOutlet | None = None
+        self._shift_s = math.nan  # replay: local clock minus stream time at the last push
         if source_id:
             self._open(name, source_id)
             self.instance = 1
@@ -200,6 +220,20 @@ class EstimateOutlet:
                 node.append_child_value("field", field)
             info.desc().append_child_value("manufacturer", "ridgewatch")
             self._outlets[pair] = pylsl.StreamOutlet(info)
+        self._open_markers(name, instance_id)
+
+    def _open_markers(self, name: str, instance_id: str) -> None:
+        self.marker_name = f"{name} markers"
+        self.marker_source_id = f"{instance_id}.markers"
+        info = pylsl.StreamInfo(self.marker_name, MARKER_STREAM_TYPE, len(MARKER_FIELDS),
+                                pylsl.IRREGULAR_RATE, pylsl.cf_string, self.marker_source_id)
+        channels = info.desc().append_child("channels")
+        for field in MARKER_FIELDS:
+            node = channels.append_child("channel")
+            node.append_child_value("label", field)
+            node.append_child_value("type", MARKER_STREAM_TYPE)
+        info.desc().append_child_value("manufacturer", "ridgewatch")
+        self._marker_outlet = pylsl.StreamOutlet(info)
 
     def _claimed(self, instance_id: str, wait_s: float) -> bool:
         """Whether no older instance publishes under ``instance_id`` (looked up for up
@@ -207,7 +241,8 @@ class EstimateOutlet:
         only hex digits and dashes, so it needs no escaping in the query."""
         if wait_s == 0:
             return True
-        ours = {outlet.get_info().uid(): outlet for outlet in self._outlets.values()}
+        ours = {outlet.get_info().uid(): outlet for outlet in
+                [*self._outlets.values(), self._marker_outlet] if outlet is not None}
         first = self._outlets[self.pairs[0]].get_info()
         found = pylsl.resolve_bypred(f"starts-with(source_id, '{instance_id}.')",
                                      minimum=len(ours) + 1, timeout=wait_s)
@@ -250,12 +285,40 @@ class EstimateOutlet:
             # Keep the spacing between estimates; the newest of the push is stamped "now".
             newest = max(e.emitted_s for e in estimates)
             shift = pylsl.local_clock() - newest
+            self._shift_s = shift
         for pair, (samples, emitted_s) in rows.items():
             stamps = emitted_s if self._use_stream_time else emitted_s + shift
             self._outlets[pair].push_chunk(samples, stamps.tolist())
 
+    def push_markers(self, markers, newest_s: float = math.nan) -> None:
+        """Publish markers: each becomes one sample (text, source) of the marker stream.
+
+        Stamped with ``marker.time_s`` on live input. In replay, with the same shift as
+        the estimates: the stream time ``newest_s`` (the newest sample) is "now", so a
+        marker keeps its distance from the samples and estimates around it; before the
+        first sample (``newest_s`` NaN) the shift of the last estimates, and failing
+        that "now"; never later than "now" (a file's marker after its last sample). A
+        marker without a time is stamped "now".
+        """
+        if self._marker_outlet is None:
+            raise RuntimeError("push after close")
+        now = pylsl.local_clock()
+        if not self._use_stream_time and math.isfinite(newest_s):
+            self._shift_s = now - newest_s
+        for marker in markers:
+            time_s = float(marker.time_s)
+            if self._use_stream_time:
+                stamp = time_s
+            else:
+                # Never in the future: a file's marker past its last sample is "now".
+                stamp = min(time_s + self._shift_s, now)
+            if not math.isfinite(stamp):
+                stamp = now
+            self._marker_outlet.push_sample([str(marker.text), str(marker.source)], stamp)
+
     def _close_outlets(self) -> None:
         self._outlets = {}
+        self._marker_outlet = None
 
     def close(self) -> None:
         """Destroy the outlets; inlets see the streams as lost."""

@@ -4,7 +4,9 @@
 yields them like a live stream would. At ``speed`` N it paces the chunks so that stream
 time advances N times as fast as wall time; at ``speed=inf`` it never sleeps. The
 chunk boundaries depend only on the recording and ``chunk_s``, never on the speed, so an
-estimator fed by a replay gives identical results at every speed.
+estimator fed by a replay gives identical results at every speed. The recording's text
+markers come as :class:`~streamer.sources.base.Marker` items at their place in time:
+just before the chunk holding their time, so the same sequence of items at every speed.
 
 The clock and the sleep function are injectable so that tests replay at full speed
 while checking the pacing they would have done.
@@ -20,12 +22,20 @@ from typing import Callable, Iterator
 import numpy as np
 
 from streamer.errors import InputError
-from streamer.sources.base import Chunk, Item, Recording, SourceEvent
+from streamer.sources.base import Chunk, Item, Marker, Recording, SourceEvent
 
 #: Longest single sleep: close() from another thread takes effect within this (wall) time.
 _MAX_SLEEP_S = 0.1
 #: Least wall time between two progress callbacks (at most ~10 per second).
 _PROGRESS_EVERY_S = 0.1
+
+
+def marker_order(markers) -> list[Marker]:
+    """``markers`` sorted by time (a stable sort: equal times keep the file's order),
+    those without a time (NaN) last."""
+    timed = [m for m in markers if not math.isnan(m.time_s)]
+    return sorted(timed, key=lambda m: m.time_s) + [m for m in markers
+                                                    if math.isnan(m.time_s)]
 
 
 class RecordingSource:
@@ -106,7 +116,11 @@ class RecordingSource:
     def chunks(self) -> Iterator[Item]:
         """Yield a ``"replaying"`` event, the chunks in order, then an ``"end"`` event.
 
-        Nothing more is yielded once :meth:`close` has been called.
+        Each of the recording's markers comes just before the first chunk whose last
+        sample is at or after its time (markers before the first sample right after the
+        ``"replaying"`` event, those after the last sample, or without a time, just
+        before ``"end"``), in time order. Nothing more is yielded once :meth:`close` has
+        been called.
         """
         rec = self.recording
         name = rec.info.name
@@ -121,8 +135,17 @@ class RecordingSource:
         wall_start = self._clock()
         last_progress = -math.inf
         period_s = 1.0 / rec.info.fs
+        markers = marker_order(rec.markers)
+        m = 0  # next marker to yield
         for a in range(0, n, self.chunk_samples):
             b = min(a + self.chunk_samples, n)
+            # Before the chunk that holds their time, so they reach the consumer ahead of
+            # the samples after them however fast or slow the replay runs.
+            while m < len(markers) and markers[m].time_s <= timestamps[b - 1]:
+                if self._closed.is_set():
+                    return
+                yield markers[m]
+                m += 1
             if not math.isinf(self.speed):
                 due = wall_start + (timestamps[b - 1] - start_s + period_s) / self.speed
                 if not self._wait_until(due):
@@ -137,6 +160,10 @@ class RecordingSource:
                 if now - last_progress >= _PROGRESS_EVERY_S:
                     last_progress = now
                     self._progress(b / n)
+        for marker in markers[m:]:
+            if self._closed.is_set():
+                return
+            yield marker
         if self._progress is not None:
             self._progress(1.0)
         end_s = float(timestamps[-1]) if n else math.nan

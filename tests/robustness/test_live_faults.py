@@ -311,7 +311,7 @@ def test_publish_sends_one_sample_per_log_row_per_stream(tmp_path):
         line = err.splitlines()[1]
         for base in (f"ridgewatch {name}", f"ridgewatch {name} (2)"):
             if line == (f"{header_lines(log)[1]}; publishing LSL streams "
-                        f"'{base} hr.PPG', '{base} rr.PPG'"):
+                        f"'{base} hr.PPG', '{base} rr.PPG', '{base} markers'"):
                 instance[log] = base
     assert sorted(instance.values()) == [f"ridgewatch {name}", f"ridgewatch {name} (2)"], errs
     # A run that found its ids taken dropped its first streams before sending anything.

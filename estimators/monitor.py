@@ -254,7 +254,8 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
                          concentration: np.ndarray | None = None,
                          smoothing: dict | None = None,
                          channel_rates: np.ndarray | None = None,
-                         calibrate: bool = True) -> list[Estimate]:
+                         calibrate: bool = True,
+                         filter_delay_s: np.ndarray | None = None) -> list[Estimate]:
     """Estimate records from tracker output aligned with ``block`` (same hops).
 
     ``concentration`` is the harmonic concentration score at each rate; computed here
@@ -267,7 +268,12 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     (:mod:`estimators.calibration`); otherwise (ECG: no map is fitted for it yet) the
     tracker's raw confidence. A heart-rate estimate's ``evidence`` holds the raw
     measures (:mod:`estimators.evidence`); a breathing-rate estimate keeps the posterior
-    mass as its confidence."""
+    mass as its confidence.
+
+    ``filter_delay_s`` (F,): the causal filters' group delay at each rate of
+    ``rates_grid``; an estimate then describes its window centre minus that delay at
+    its rate (at the median delay when it has no rate), so ``delay_s`` is honest. None
+    (zero-phase, offline): the window centre."""
     step = rates_grid[1] - rates_grid[0]
     halfwidth = settings.confidence_halfwidth_per_min / step
     posterior_mass = np.asarray(confidence, dtype=np.float64)
@@ -310,8 +316,12 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     lo, hi = settings.band_per_min
     withheld = (quality < settings.min_quality) | ~np.isfinite(rate)
     shown = np.where(withheld, np.nan, np.clip(rate, lo, hi))
+    time_s = block.time_s
+    if filter_delay_s is not None:
+        at = np.where(np.isfinite(rate), rate, np.median(rates_grid))
+        time_s = time_s - np.interp(at, rates_grid, filter_delay_s)
     return [Estimate(quantity, source, t, e, r, c, q, v) for t, e, r, c, q, v in zip(
-        block.time_s.tolist(), emitted_s.tolist(), shown.tolist(),
+        time_s.tolist(), emitted_s.tolist(), shown.tolist(),
         np.asarray(confidence).tolist(), quality.tolist(), evidence)]
 
 
@@ -319,9 +329,10 @@ class _Output:
     """One reported (quantity, source): a tracker plus the lag history of hops."""
 
     def __init__(self, quantity: str, source: str, grid_rates: np.ndarray,
-                 settings: RateSettings):
+                 settings: RateSettings, filter_delay_s: np.ndarray | None = None):
         self.quantity, self.source, self.settings = quantity, source, settings
         self.rates = grid_rates
+        self.filter_delay_s = filter_delay_s  # causal group delay per grid rate (F,)
         step = grid_rates[1] - grid_rates[0]
         params = tracker_mod.make_params(step, settings.hop_s, settings.max_change_per_min_per_s,
                                          settings.jump_probability,
@@ -369,7 +380,8 @@ class _Output:
         return estimates_from_track(self.quantity, self.source, tracked.block, tracked.rate,
                                     tracked.confidence, self.rates, self.settings,
                                     tracked.emitted_s, tracked.concentration,
-                                    self._smoothing, channel_rates, self.calibrate)
+                                    self._smoothing, channel_rates, self.calibrate,
+                                    self.filter_delay_s)
 
     def update(self, block: HopBlock, channel_rates: np.ndarray | None = None
                ) -> list[Estimate]:
@@ -491,13 +503,16 @@ class RateMonitor:
             else:
                 self.motion_paths[name] = ChannelPath(name, kind, hr, fs, chain_kind="acc")
         self.outputs: dict[tuple[str, str], _Output] = {}
+        delays = {key: path.pre.group_delay_s(path.grid.rates_per_min / 60.0)
+                  for key, path in self.paths.items()}
         for (quantity, name), path in self.paths.items():
             self.outputs[(quantity, name)] = _Output(quantity, name, path.grid.rates_per_min,
-                                                     path.settings)
+                                                     path.settings, delays[(quantity, name)])
         hr_paths = [k for k in self.paths if k[0] == "hr"]
         if len(hr_paths) >= 2:
             grid = self.paths[hr_paths[0]].grid.rates_per_min
-            self.outputs[("hr", FUSED)] = _Output("hr", FUSED, grid, hr)
+            self.outputs[("hr", FUSED)] = _Output("hr", FUSED, grid, hr, np.mean(
+                [delays[k] for k in hr_paths], axis=0))
         # The confidence map is fitted on PPG heart rate; ECG (and a fusion with ECG)
         # keeps the tracker's raw confidence until a map is fitted for it.
         for (quantity, name), out in self.outputs.items():
@@ -525,6 +540,15 @@ class RateMonitor:
             for name, kind in self.channels
             if kind in ("ppg", "ecg") and self.profile.breathing_from_pulse
             and fs >= MIN_FS_HZ}  # a 25 Hz wrist PPG still gives its heart rate
+
+    def filter_delay_s(self, quantity: str, source: str, rate_per_min: float) -> float:
+        """The causal filters' group delay at ``rate_per_min`` for the output
+        (``quantity``, ``source``): how much earlier than its window centre a live
+        estimate at that rate is placed (its ``time_s``); at the median rate of the grid
+        when the rate is NaN."""
+        out = self.outputs[(quantity, source)]
+        at = rate_per_min if np.isfinite(rate_per_min) else np.median(out.rates)
+        return float(np.interp(at, out.rates, out.filter_delay_s))
 
     @property
     def streams(self) -> list[tuple[str, str]]:

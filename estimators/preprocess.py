@@ -110,6 +110,37 @@ def design_chain(kind: str, quantity: str, fs: float, fs_analysis: float) -> Fil
     raise ParameterError(f"no pre-processing for kind={kind!r}, quantity={quantity!r}")
 
 
+ENVELOPE_CARRIER_HZ = float(np.sqrt(5.0 * 25.0))
+"""Where the ECG chain's band-pass delay is read: the geometric centre of its 5-25 Hz
+band, where the QRS energy the envelope follows sits (about 11 Hz). The envelope's own
+delay is then that of the first difference and of the low-pass at the beat rate."""
+
+
+def sos_group_delay_s(sos: np.ndarray, freqs_hz: np.ndarray, fs: float) -> np.ndarray:
+    """Group delay in seconds of an SOS cascade at ``freqs_hz``: the sum over its
+    sections of each biquad's (``scipy.signal.group_delay``)."""
+    freqs_hz = np.atleast_1d(np.asarray(freqs_hz, dtype=np.float64))
+    total = np.zeros(len(freqs_hz))
+    for section in np.atleast_2d(sos):
+        _, gd = signal.group_delay((section[:3], section[3:]), w=freqs_hz, fs=fs)
+        total += gd
+    return total / fs
+
+
+def chain_group_delay_s(chain: FilterChain, fs: float, freqs_hz: np.ndarray) -> np.ndarray:
+    """How long ago, in seconds, the causal chain's output at a rhythm of ``freqs_hz``
+    describes: the group delay of the filters at that frequency; for the ECG envelope,
+    the band-pass at :data:`ENVELOPE_CARRIER_HZ`, half a sample for the first
+    difference, and the low-pass at the rhythm. Zero-phase (offline) chains have none."""
+    freqs_hz = np.atleast_1d(np.asarray(freqs_hz, dtype=np.float64))
+    if not chain.envelope:
+        return sos_group_delay_s(chain.pre, freqs_hz, fs)
+    carrier = sos_group_delay_s(chain.pre, np.array([ENVELOPE_CARRIER_HZ]), fs)[0]
+    post = np.zeros(len(freqs_hz)) if chain.post is None else sos_group_delay_s(
+        chain.post, freqs_hz, fs)
+    return carrier + 0.5 / fs + post
+
+
 @dataclass(frozen=True)
 class Limiter:
     """Running robust range of a raw signal (see :func:`estimators._kernels.limit_sample`).
@@ -365,3 +396,7 @@ class Preprocessor:
 
     def reset(self) -> None:
         self.state = initial_state(self.chain, self.limiter)
+
+    def group_delay_s(self, freqs_hz: np.ndarray) -> np.ndarray:
+        """The causal chain's group delay at ``freqs_hz`` (:func:`chain_group_delay_s`)."""
+        return chain_group_delay_s(self.chain, self.fs, freqs_hz)

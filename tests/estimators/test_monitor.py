@@ -114,14 +114,19 @@ def test_chunked_equals_one_call_with_fixed_lag(rng, lag):
     batch = run_chunked_checking_prefix(lambda: RateMonitor([("x", "ppg")], fs, profile),
                                         x[:, None], t, chunk_sizes(rng, len(t)))
     batch = heart(batch)
-    no_lag = heart(RateMonitor([("x", "ppg")], fs, "wrist").update(x[:, None], t))
-    # Lag L: L fewer estimates; each refers to the same window (time_s) as the lag-0
-    # estimate of that hop, emitted L hops later.
+    monitor = RateMonitor([("x", "ppg")], fs, "wrist")
+    no_lag = heart(monitor.update(x[:, None], t))
+
+    def centre(e):  # the window centre: time_s plus the filters' delay at its rate
+        return e.time_s + monitor.filter_delay_s("hr", "x", e.rate_per_min)
+
+    # Lag L: L fewer estimates; each refers to the same window as the lag-0 estimate of
+    # that hop, emitted L hops later.
     assert len(batch) == len(no_lag) - lag
     for a, b, later in zip(batch, no_lag, no_lag[lag:]):
-        assert a.time_s == b.time_s
+        assert centre(a) == pytest.approx(centre(b), abs=1e-9)
         assert a.emitted_s == later.emitted_s
-    delay = np.array([e.delay_s for e in batch])
+    delay = np.array([later.emitted_s - centre(e) for e, later in zip(batch, no_lag[lag:])])
     # hops fall on whole analysis samples (25 Hz), so each lag step is 0.24 or 0.28 s
     np.testing.assert_allclose(delay, 4.0 + lag * 0.25, atol=0.04 + 1e-9)
 
@@ -141,7 +146,8 @@ def test_first_estimate_and_delay_follow_the_window(rng):
     fs = 100.0
     t = 5.0 + np.arange(int(30 * fs)) / fs
     x = signals.rhythm(t, np.full(len(t), 72.0), signals.dicrotic_pulse)
-    est = heart(RateMonitor([("x", "ppg")], fs, "wrist").update(x, t))
+    monitor = RateMonitor([("x", "ppg")], fs, "wrist")
+    est = heart(monitor.update(x, t))
     hr = get_profile("wrist").hr
     fs_analysis = fs / hr.decimation(fs)
     # first column when min_window_s of samples are in; every hop_s after that, on
@@ -149,8 +155,13 @@ def test_first_estimate_and_delay_follow_the_window(rng):
     assert est[0].emitted_s == pytest.approx(t[0] + hr.min_window_s, abs=1 / fs_analysis)
     np.testing.assert_allclose(np.diff([e.emitted_s for e in est]), hr.hop_s,
                                atol=1 / fs_analysis + 1e-9)
-    # symmetric window: the estimate describes its centre, half a window back
-    np.testing.assert_allclose([e.delay_s for e in est], hr.window_s / 2,
+    # symmetric window: the estimate describes its centre, half a window back, and
+    # further back by the causal band-pass's group delay at 72 bpm (scipy's
+    # group_delay of the designed sections; 0.17 s for this 3rd-order 0.5-8 Hz
+    # Butterworth at 100 Hz)
+    delay_72 = monitor.filter_delay_s("hr", "x", 72.0)
+    assert 0.1 < delay_72 < 0.3
+    np.testing.assert_allclose([e.delay_s for e in est], hr.window_s / 2 + delay_72,
                                atol=1 / fs_analysis)
     assert all(e.has_rate for e in est)
 
@@ -245,16 +256,21 @@ def test_offline_is_at_least_as_good_as_live_on_a_ramp(rng):
     rate = signals.ramp_rate(t, 60.0, 120.0)  # 0.5 per minute per second
     x = signals.rhythm(t, rate, signals.dicrotic_pulse, am_depth=0.3, noise_std=0.6,
                        rng=rng)
-    live = heart(RateMonitor([("x", "ppg")], fs, "wrist").update(x[:, None], t))
+    monitor = RateMonitor([("x", "ppg")], fs, "wrist")
+    live = heart(monitor.update(x[:, None], t))
     offline = heart(offline_estimates(x[:, None], t, [("x", "ppg")], fs, "wrist"))
-    assert [e.time_s for e in offline] == [e.time_s for e in live]
     assert all(e.emitted_s == t[-1] for e in offline)
+    # Both use the same windows; offline (zero-phase) describes their centres, live its
+    # causal filters' group delay earlier.
+    centres = np.array([e.time_s for e in offline])
+    np.testing.assert_allclose(
+        centres - [e.time_s for e in live],
+        [monitor.filter_delay_s("hr", "x", e.rate_per_min) for e in live], atol=1e-9)
 
-    # Both describe the same windows (same time_s); the live estimate's emitted_s is
-    # the window's last sample, so its first is 2 time_s - emitted_s.
+    # The live estimate's emitted_s is the window's last sample, so its first is
+    # 2 centre - emitted_s.
     end = np.array([e.emitted_s for e in live])
-    truth = signals.window_mean_rate(t, rate, 2 * np.array([e.time_s for e in live]) - end,
-                                     end)
+    truth = signals.window_mean_rate(t, rate, 2 * centres - end, end)
 
     def errors(est):
         return np.abs(np.array([e.rate_per_min for e in est]) - truth)

@@ -267,6 +267,16 @@ def read_signals(header: WfdbHeader, given: str | Path = "") -> list[np.ndarray]
     n_available = _complete_frames(header, given)
     n_declared = header.n_samples if header.n_samples is not None else n_available
     n_frames = min(n_available, n_declared)
+    try:
+        record = _read_frames(header, n_frames)
+    except Exception as exc:  # wfdb and soundfile raise assorted types
+        # A FLAC stream cut short announces all its samples but cannot decode them all:
+        # read the samples it does decode.
+        n_decodable = _decodable_flac_frames(header)
+        if n_decodable is None or n_decodable >= n_frames:
+            raise _decode_error(header, given, exc) from None
+        n_frames = n_decodable
+        record = None
     if n_frames == 0:
         raise InputError(
             f"{given}: the signal file holds no complete sample (file empty or "
@@ -278,26 +288,67 @@ def read_signals(header: WfdbHeader, given: str | Path = "") -> list[np.ndarray]
             "(truncated file); reading the first %d samples",
             given, n_frames, n_declared, n_frames,
         )
-
-    wfdb = _import_wfdb()
-
-    try:
-        with _quiet():
-            # Physical values straight from wfdb: wfdb 4.3.1 fails to return the digital
-            # samples of format 61 (it cannot convert their big-endian dtype).
-            record = wfdb.rdrecord(str(header.path.with_suffix("")), sampto=n_frames,
-                                   physical=True, smooth_frames=False, return_res=64)
-        physical = [np.asarray(x, dtype=np.float64) for x in record.e_p_signal]
-    except Exception as exc:  # wfdb and soundfile raise assorted types
-        files = ", ".join(sorted({s.file_name for s in header.signals}))
-        raise InputError(
-            f"{given}: cannot decode the signal file(s) {files} ({_reason(exc)}); the "
-            "file is damaged or does not match its header"
-        ) from None
-
+    if record is None:
+        try:
+            record = _read_frames(header, n_frames)
+        except Exception as exc:
+            raise _decode_error(header, given, exc) from None
+    physical = [np.asarray(x, dtype=np.float64) for x in record.e_p_signal]
     if n_frames == n_declared:
         _check_checksums(physical, record, header, given)
     return physical
+
+
+def _read_frames(header: WfdbHeader, n_frames: int):
+    """The first ``n_frames`` frames, physical values, each signal at its own rate.
+
+    Physical values straight from wfdb: wfdb 4.3.1 fails to return the digital samples of
+    format 61 (it cannot convert their big-endian dtype).
+    """
+    if n_frames == 0:
+        return None
+    wfdb = _import_wfdb()
+    with _quiet():
+        return wfdb.rdrecord(str(header.path.with_suffix("")), sampto=n_frames,
+                             physical=True, smooth_frames=False, return_res=64)
+
+
+def _decode_error(header: WfdbHeader, given: str, exc: BaseException) -> InputError:
+    files = ", ".join(sorted({s.file_name for s in header.signals}))
+    return InputError(
+        f"{given}: cannot decode the signal file(s) {files} ({_reason(exc)}); the "
+        "file is damaged or does not match its header"
+    )
+
+
+def _decodable_flac_frames(header: WfdbHeader) -> int | None:
+    """Frames that every FLAC signal file of the record decodes (None without FLAC
+    files): its samples are decoded in blocks until the end or the first block that
+    fails, so a stream cut short gives the samples before the cut, less at most one
+    block (:data:`_FLAC_BLOCK`) and the FLAC frame the cut falls in."""
+    import soundfile
+
+    n_frames = None
+    for sig in header.signals:
+        if sig.fmt not in FLAC_FORMATS:
+            continue
+        n_samples = 0
+        try:
+            with soundfile.SoundFile(str(header.path.parent / sig.file_name)) as stream:
+                while True:
+                    block = stream.read(_FLAC_BLOCK, dtype="int32")
+                    if len(block) == 0:
+                        break
+                    n_samples += len(block)
+        except Exception:  # soundfile raises its own error types at the damage
+            pass
+        frames = n_samples // sig.samples_per_frame
+        n_frames = frames if n_frames is None else min(n_frames, frames)
+    return n_frames
+
+
+#: Samples per read when counting what a damaged FLAC stream decodes.
+_FLAC_BLOCK = 1024
 
 
 def _complete_frames(header: WfdbHeader, given: str) -> int:

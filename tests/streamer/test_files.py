@@ -555,6 +555,26 @@ def test_wfdb_errors(tmp_path):
         read_recording(tmp_path / "m.hea")
 
 
+def test_wfdb_truncated_flac_gives_the_decodable_frames_with_a_warning(tmp_path, rng, caplog):
+    wfdb = wfdb_or_skip()
+    d = rng.integers(-2000, 2000, (20000, 2))
+    wfdb.wrsamp("rec", fs=100, units=["mV", "mV"], sig_name=["a", "b"], d_signal=d,
+                fmt=["516", "516"], adc_gain=[200.0, 200.0], baseline=[0, 0],
+                write_dir=str(tmp_path))
+    dat = tmp_path / "rec.dat"
+    intact = dat.read_bytes()
+    dat.write_bytes(intact[: len(intact) // 2])
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(tmp_path / "rec.hea")
+    n = len(rec.samples)
+    # Random samples hardly compress: half the bytes hold about half the samples; what
+    # is lost besides is at most the cut FLAC frame and one read block (1024 samples).
+    assert 10000 - 4096 - 1024 <= n < 10000
+    np.testing.assert_array_equal(rec.samples, d[:n] / 200.0)
+    assert (f"rec.hea: the signal file holds {n} of the 20000 samples the header declares "
+            f"(truncated file); reading the first {n} samples") in caplog.text
+
+
 def test_wfdb_flac_errors(tmp_path, rng):
     wfdb = wfdb_or_skip()
     d = rng.integers(-2000, 2000, (5000, 1))
@@ -562,15 +582,21 @@ def test_wfdb_flac_errors(tmp_path, rng):
                 adc_gain=[200.0], baseline=[0], write_dir=str(tmp_path))
     dat = tmp_path / "rec.dat"
     intact = dat.read_bytes()
-    dat.write_bytes(intact[: len(intact) // 2])
-    with pytest.raises(InputError, match=r"rec\.hea: cannot decode the signal file\(s\) "
-                                         r"rec\.dat \(\w+: .*\); the file is damaged or does "
-                                         r"not match its header$"):
-        read_recording(tmp_path / "rec.hea")
+    # A header naming two signals in a file of one FLAC channel: wfdb refuses it.
+    write_text(tmp_path / "two.hea", "two 2 100 5000\nrec.dat 516 200 16 0 0 0 0 a\n"
+                                     "rec.dat 516 200 16 0 0 0 0 b\n")
+    with pytest.raises(InputError, match=r"two\.hea: cannot decode the signal file\(s\) "
+                                         r"rec\.dat \(ValueError: wrong number of channels in "
+                                         r".*\); the file is damaged or does not match its "
+                                         r"header$"):
+        read_recording(tmp_path / "two.hea")
     dat.write_bytes(b"RIFF" + intact[4:])
     with pytest.raises(InputError, match=r"rec\.dat: not a readable FLAC stream \(format 516: "
                                          r".*\); the file is damaged or is not the one the "
                                          r"header names$"):
+        read_recording(tmp_path / "rec.hea")
+    dat.write_bytes(intact[:100])  # the stream header and not one whole FLAC frame
+    with pytest.raises(InputError, match=r"rec\.hea: the signal file holds no complete sample"):
         read_recording(tmp_path / "rec.hea")
     dat.write_bytes(b"")
     with pytest.raises(InputError, match=r"rec\.hea: the signal file holds no complete sample"):

@@ -747,6 +747,27 @@ def test_wfdb_multi_frequency_warns_about_resampling(tmp_path, rng, caplog):
             "signals of one rate to avoid it") in caplog.text
 
 
+def test_help_and_csv_replay_do_not_import_wfdb(tmp_path):
+    """wfdb (and the pandas it imports) costs about 0.3 s to import (DEVELOPERS.md): only
+    reading a WFDB record may pay for it."""
+    import subprocess
+    import sys
+
+    write_text(tmp_path / "rec.csv", csv_text(["time", "PPG"], np.array([[0.0, 1.0],
+                                                                          [0.01, 2.0]])))
+    code = ("import sys, contextlib, io\n"
+            "from streamer import cli\n"
+            "from streamer.sources.files import read_recording\n"
+            "with contextlib.redirect_stdout(io.StringIO()), contextlib.suppress(SystemExit):\n"
+            "    cli.main(['--help'])\n"
+            f"read_recording({str(tmp_path / 'rec.csv')!r})\n"
+            "sys.exit(1 if {'wfdb', 'pandas', 'soundfile'} & set(sys.modules) else 0)")
+    root = Path(__file__).resolve().parents[2]
+    done = subprocess.run([sys.executable, "-c", code], cwd=root, capture_output=True,
+                          text=True)
+    assert done.returncode == 0, done.stderr
+
+
 def test_on_fastest_grid_interpolates_slower_signals_over_their_own_times():
     slow = np.array([0.0, 3.0, np.nan, 9.0])  # at 2 Hz: 0, 0.5, 1.0, 1.5 s
     fast = np.arange(8.0)  # at 4 Hz

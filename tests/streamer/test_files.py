@@ -473,6 +473,22 @@ def test_wfdb_invalid_marker_becomes_nan_by_hand(tmp_path):
     np.testing.assert_array_equal(rec.samples[:, 0], [1.0, np.nan, -2.0])
 
 
+def test_wfdb_skewed_signal_is_shifted_back_without_a_checksum_warning(tmp_path, caplog):
+    wfdb_or_skip()
+    # Signal b is skewed by 2 frames: its sample k is stored in frame k + 2. The header
+    # declares 8 frames; wfdb reads no frame beyond them, so b's last 2 samples are
+    # missing (NaN). Checksum of a: 0 + 2 + ... + 14 = 56.
+    (tmp_path / "sk.dat").write_bytes(np.arange(20).astype("<i2").tobytes())
+    write_text(tmp_path / "sk.hea", "sk 2 100 8\nsk.dat 16 200(0)/mV 16 0 0 56 0 a\n"
+                                    "sk.dat 16:2 200(0)/mV 16 0 0 0 0 b\n")
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(tmp_path / "sk.hea")
+    np.testing.assert_array_equal(rec.samples[:, 0], np.arange(0, 16, 2) / 200.0)
+    np.testing.assert_array_equal(rec.samples[:, 1],
+                                  np.array([5, 7, 9, 11, 13, 15, np.nan, np.nan]) / 200.0)
+    assert caplog.text == ""
+
+
 def test_wfdb_truncated_dat_gives_the_complete_frames_with_a_warning(tmp_path, rng, caplog):
     wfdb = wfdb_or_skip()
     d = rng.integers(-2000, 2000, (500, 2))

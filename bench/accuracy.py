@@ -136,25 +136,24 @@ def score_windows(estimates, ends_s: np.ndarray, reference: np.ndarray) -> dict:
 def mitbih_100(data: Path, max_s: float | None = None) -> dict:
     from estimators.metrics import agreement, rate_from_events
     from estimators.config import get_profile
-    from streamer.sources.wfdb_reader import read_annotations, read_header, read_signals
+    from streamer.sources.files import read_recording
 
     folder = data / "physionet_wfdb"
-    header = read_header(folder / "100.hea")
-    samples, _ = read_signals(header, folder, folder / "100.hea")
-    names = [s.description for s in header.signals]
+    record = read_recording(folder / "100.hea")
+    names = record.info.channel_names
+    samples, fs, beats = record.samples, record.info.fs, record.events["atr"]
     ecg = samples[:, names.index("MLII")][:, None]
     if max_s is not None:
-        ecg = ecg[: int(max_s * header.fs)]
-    beats = read_annotations(folder / "100.atr", header.fs).beat_times_s()
+        ecg = ecg[: int(max_s * fs)]
     profile = get_profile("chest-ecg")
-    estimates = [e for e in run_monitor(ecg, header.fs, [("MLII", "ecg")], profile)
+    estimates = [e for e in run_monitor(ecg, fs, [("MLII", "ecg")], profile)
                  if e.quantity == "hr"]
     time_s = np.array([e.time_s for e in estimates])
     rate = np.array([e.rate_per_min for e in estimates])
     reference = rate_from_events(beats, time_s, profile.hr.window_s)
     stats = agreement(rate, reference)
     return {"agreement": stats.as_dict(), "coverage": float(np.isfinite(rate).mean()),
-            "estimates": len(estimates), "duration_s": len(ecg) / header.fs}
+            "estimates": len(estimates), "duration_s": len(ecg) / fs}
 
 
 def run(quick: bool) -> dict:

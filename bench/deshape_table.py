@@ -352,14 +352,13 @@ def bidmc_records(numbers=BIDMC_RECORDS):
 
 def mitbih_100(data: Path = SHARED_DATA):
     """``(MLII samples, fs, beat times s)`` of MIT-BIH record 100 (our WFDB reader)."""
-    from streamer.sources.wfdb_reader import read_annotations, read_header, read_signals
+    from streamer.sources.files import read_recording
 
     folder = data / "physionet_wfdb"
-    header = read_header(folder / "100.hea")
-    samples, _ = read_signals(header, folder, folder / "100.hea")
-    names = [s.description for s in header.signals]
-    beats = read_annotations(folder / "100.atr", header.fs).beat_times_s()
-    return np.ascontiguousarray(samples[:, names.index("MLII")]), header.fs, beats
+    record = read_recording(folder / "100.hea")
+    names = record.info.channel_names
+    samples, fs, beats = record.samples, record.info.fs, record.events["atr"]
+    return np.ascontiguousarray(samples[:, names.index("MLII")]), fs, beats
 
 
 # ----------------------------------------------------------------------- the table

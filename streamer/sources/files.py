@@ -6,7 +6,7 @@
 file                        reader
 =========================== ===========================================================
 ``.csv``, ``.tsv`` (+``.gz``) header row, numeric rows; time column or ``fs=``
-``.hea`` (``.dat``, none)   WFDB record (own reader, :mod:`streamer.sources.wfdb_reader`)
+``.hea`` (``.dat``, none)   WFDB record via wfdb (:mod:`streamer.sources.wfdb_reader`)
 ``.edf``, ``.bdf``          EDF/EDF+/BDF via pyedflib
 ``.xdf``, ``.xdfz``         XDF via pyxdf, one stream
 =========================== ===========================================================
@@ -136,7 +136,11 @@ def read_recording(
     by the grid, with a warning; one that goes backwards is refused.
 
     EDF: only the selected channels are read; selected channels at different rates are
-    resampled to the highest of their rates by linear interpolation, with a warning. XDF: timestamps are the file's, with its clock
+    resampled to the highest of their rates by linear interpolation, with a warning.
+    WFDB: each signal is read at its own rate (samples per frame times the frame rate);
+    selected signals at different rates are put on the grid of the fastest of them by
+    linear interpolation over their own sample times, with a warning (see
+    :func:`streamer.sources.wfdb_reader.on_fastest_grid`). XDF: timestamps are the file's, with its clock
     offsets applied and no dejittering (what a live LSL inlet delivers).
     """
     given = str(path)
@@ -170,7 +174,8 @@ def read_recording(
     if is_csv:
         recording = _read_csv(path, given, fs, time_column, time_unit)
     elif lower.endswith(".hea"):
-        recording = _read_wfdb(path, given, annotators)
+        # Selected before resampling: the grid follows the selected signals only.
+        return _read_wfdb(path, given, annotators, channels)
     elif lower.endswith((".edf", ".bdf")):
         # Selected before reading: the rate follows the selected channels only.
         return _read_edf(path, given, channels)
@@ -625,13 +630,33 @@ def _rate_from_times(timestamps: np.ndarray, stride: int = 100) -> float:
 # ---------------------------------------------------------------------------- WFDB
 
 
-def _read_wfdb(path: Path, given: str, annotators: Sequence[str] | None) -> Recording:
+def _read_wfdb(path: Path, given: str, annotators: Sequence[str] | None,
+               channels: Sequence[str | int] | str | None) -> Recording:
+    """A WFDB record via :mod:`~streamer.sources.wfdb_reader`, only the selected signals.
+
+    Signals keep their own rates while read. The selected ones are then put on the grid
+    of the fastest selected signal (:func:`wfdb_reader.on_fastest_grid`): in a WFDB
+    record the frames align the signals exactly, so sample ``k`` of a signal at
+    ``fs_j`` Hz sits at ``k / fs_j`` s and the slower signals are interpolated linearly
+    over those times (NaN past their last sample), with a warning naming them. Annotation
+    sample numbers count frames unless the file states its own time resolution.
+    """
     header = wfdb_reader.read_header(path)
-    samples, _ = wfdb_reader.read_signals(header, path.parent, given)
-    n = samples.shape[0]
-    timestamps = np.arange(n, dtype=np.float64) / header.fs
-    channels = tuple(ChannelInfo(s.description, None, s.units) for s in header.signals)
-    info = SourceInfo(name=given, fs=header.fs, channels=channels, source_id=_source_id(path))
+    names = [s.description for s in header.signals]
+    picked = _channel_indices(given, names, channels)
+    values = wfdb_reader.read_signals(header, given)
+    rates = header.signal_rates
+    samples, timestamps, fs = wfdb_reader.on_fastest_grid([values[i] for i in picked],
+                                                          [rates[i] for i in picked])
+    slower = [f"{names[i]} ({rates[i]:g} Hz)" for i in picked if rates[i] != fs]
+    if slower:
+        logger.warning(
+            "%s: resampled %s to %g Hz by linear interpolation; select signals of one rate "
+            "to avoid it", given, ", ".join(slower), fs,
+        )
+    channels_info = tuple(ChannelInfo(header.signals[i].description, None,
+                                      header.signals[i].units) for i in picked)
+    info = SourceInfo(name=given, fs=fs, channels=channels_info, source_id=_source_id(path))
 
     record = path.with_suffix("")
     if annotators is None:

@@ -1,43 +1,42 @@
-"""A small reader for WFDB records: header, signal files and MIT-format annotations.
+"""WFDB records through the ``wfdb`` package: header, signal files and annotation files.
 
-Only the parts of the WFDB format that single-segment physiological recordings use are
-read: one header (``<record>.hea``), one or more signal files in which the signals of a
-file are interleaved frame by frame, and annotation files (``<record>.<annotator>``) in
-the MIT format. Everything else is refused with :class:`~streamer.errors.InputError`
-rather than read wrongly.
+The ``wfdb`` package (PhysioNet's own Python reader) decodes the signal files: every
+format it reads, :data:`SUPPORTED_FORMATS`, including the FLAC-compressed formats 508,
+516 and 524 (through ``soundfile``, which ``wfdb`` depends on), records whose signals
+have different samples per frame (multi-frequency records), skewed signals and byte
+offsets. This module adds what a command-line tool needs around it:
 
-Supported signal formats (digital sample ``d``)
+* one :class:`~streamer.errors.InputError` line naming the file and what is wrong, for
+  every problem ``wfdb`` would raise as an assorted exception (or read leniently: a
+  record line that does not parse, a gain ``2x0`` read as 2, a header with fewer signal
+  lines than it declares);
+* a signal file cut short keeps its complete frames, with a warning, as does an
+  annotation file that ends without its end marker;
+* a header checksum that the samples fail is reported as a warning;
+* :func:`on_fastest_grid`: signals at different rates onto one time axis.
 
-====== =========================================================================
-format layout
-====== =========================================================================
-16     16-bit two's complement, little-endian
-61     16-bit two's complement, big-endian
-80     8-bit offset binary (``d = byte - 128``)
-160    16-bit offset binary, little-endian (``d = word - 32768``)
-212    two 12-bit two's complement samples packed in 3 bytes
-24     24-bit two's complement, little-endian
-32     32-bit two's complement, little-endian
-====== =========================================================================
+``wfdb`` is imported inside the functions that need it, so that starting ridgewatch
+(``ridgewatch --help``, a CSV replay, a live stream) does not pay for its import
+(see DEVELOPERS.md, "Dependencies and what they cost").
 
-Physical value = ``(d - baseline) / gain``. The smallest value of each format (e.g.
--2048 for format 212, -32768 for format 16) marks an invalid sample in WFDB (from memory)
-and becomes NaN.
+Physical value = ``(d - baseline) / gain``; the smallest value of a format (e.g. -2048
+for format 212, -32768 for formats 16 and 516) marks an invalid sample and becomes NaN
+(``wfdb``'s convention, the WFDB one from memory). A frequency field of 0 or none means
+250 Hz, a gain of 0 or none 200 (``wfdb`` and WFDB defaults, from memory).
 
-Notes
------
-The format descriptions follow the WFDB header and signal file conventions as written
-in ``/work/shared/data/physionet_wfdb/SOURCE.md`` (format 212 bit layout, MIT
-annotation word layout) and, where that file is silent (formats other than 212, the
-header defaults gain 200 and baseline = ADC zero, the invalid-sample markers, the
-``## time resolution`` note and the beat-code set), from memory.
+The byte-by-byte twin this reader is tested against is ``tests/reference/wfdb_plain.py``.
 """
 
 from __future__ import annotations
 
+import contextlib
 import logging
+import os
 import re
+import tempfile
+import warnings
 from dataclasses import dataclass
+from fractions import Fraction
 from pathlib import Path
 
 import numpy as np
@@ -46,14 +45,23 @@ from streamer.errors import InputError
 
 logger = logging.getLogger("ridgewatch")
 
-SUPPORTED_FORMATS = (16, 61, 80, 160, 212, 24, 32)
+#: The signal formats ``wfdb`` 4.x reads (``wfdb.io._signal.DAT_FMTS``); 508, 516, 524 are
+#: FLAC streams of 8, 16 and 24 bits.
+SUPPORTED_FORMATS = (8, 16, 24, 32, 61, 80, 160, 212, 310, 311, 508, 516, 524)
+FLAC_FORMATS = (508, 516, 524)
 
-#: Bits per sample of each supported format.
-_BITS = {16: 16, 61: 16, 80: 8, 160: 16, 212: 12, 24: 24, 32: 32}
+#: Bits one sample takes in a signal file of each uncompressed format (310 and 311 pack
+#: three samples into 32 bits).
+_STORED_BITS = {8: Fraction(8), 16: Fraction(16), 24: Fraction(24), 32: Fraction(32),
+         61: Fraction(16), 80: Fraction(8), 160: Fraction(16), 212: Fraction(12),
+         310: Fraction(32, 3), 311: Fraction(32, 3)}
 
-#: Header defaults when a field is absent or zero (from memory: WFDB's DEFFREQ, DEFGAIN).
+#: Resolution in bits of the samples of each format (its invalid marker is -2**(bits-1)).
+_BITS_OF_FORMAT = {8: 8, 16: 16, 24: 24, 32: 32, 61: 16, 80: 8, 160: 16, 212: 12,
+                   310: 10, 311: 10, 508: 8, 516: 16, 524: 24}
+
+#: Header default when the frequency field is absent or zero (from memory: WFDB's DEFFREQ).
 DEFAULT_FS = 250.0
-DEFAULT_GAIN = 200.0
 
 #: MIT annotation codes that mark a beat (QRS complex), from memory of the standard
 #: WFDB code table: 1 N normal, 2 L left bundle branch block, 3 R right bundle branch
@@ -66,41 +74,49 @@ DEFAULT_GAIN = 200.0
 #: ``|``, comment 22 ``"``, waves, ...) is not a beat.
 BEAT_CODES = frozenset({1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12, 13, 25, 30, 34, 35, 38, 41})
 
-# MIT annotation pseudo-codes (SOURCE.md): they modify the stream, they are not events.
-_SKIP, _NUM, _SUB, _CHN, _AUX = 59, 60, 61, 62, 63
-_NOTE = 22
+_FORMAT_RE = re.compile(r"^(\d+)(?:x(\d+))?(?::(\d+))?(?:\+(\d+))?$")
+_GAIN_RE = re.compile(r"^[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?(\([-+]?\d+\))?(/.*)?$")
 
 
 @dataclass(frozen=True)
 class WfdbSignal:
-    """One signal line of a WFDB header."""
+    """One signal of a record: its label (``description``), unit, signal file, format,
+    samples per frame, the byte offset of its samples in the signal file and its skew
+    (frames by which its samples are late in the file)."""
 
+    description: str
+    units: str
     file_name: str
     fmt: int
-    byte_offset: int
-    gain: float
-    baseline: int
-    units: str
-    checksum: int | None
-    description: str
+    samples_per_frame: int = 1
+    byte_offset: int = 0
+    skew: int = 0
 
 
 @dataclass(frozen=True)
 class WfdbHeader:
-    """The parsed header of a single-segment record."""
+    """The header of a single-segment record. ``fs`` is the frame rate in Hz; signal
+    ``j`` is sampled at ``fs * signals[j].samples_per_frame`` (:attr:`signal_rates`).
+    ``n_samples`` is the number of frames the header declares (None when it does not)."""
 
+    path: Path
     record_name: str
     fs: float
     n_samples: int | None
     signals: tuple[WfdbSignal, ...]
 
-
-_FORMAT_RE = re.compile(r"^(\d+)(?:x(\d+))?(?::(\d+))?(?:\+(\d+))?$")
-_GAIN_RE = re.compile(r"^([-+0-9.eE]+)(?:\(([-+]?\d+)\))?(?:/(.*))?$")
+    @property
+    def signal_rates(self) -> tuple[float, ...]:
+        return tuple(self.fs * s.samples_per_frame for s in self.signals)
 
 
 def read_header(path: str | Path) -> WfdbHeader:
-    """Parse a ``.hea`` file.
+    """Read a ``.hea`` file.
+
+    The record line and the signal lines' file and format fields are checked here first,
+    because ``wfdb`` reads some malformed headers without complaint (a frequency field
+    ``abc``, fewer signal lines than declared) and others with an unrelated exception;
+    ``wfdb.rdheader`` then reads the rest.
 
     Parameters
     ----------
@@ -114,19 +130,16 @@ def read_header(path: str | Path) -> WfdbHeader:
     Raises
     ------
     InputError
-        When the header cannot be read, is malformed, describes a multi-segment record,
-        or uses a signal format or feature this reader does not support.
+        When the header cannot be read or is malformed, describes a multi-segment record,
+        a signal without a signal file, or a signal format ``wfdb`` does not read.
     """
     path = Path(path)
     try:
         text = path.read_text(encoding="latin-1")
     except OSError as exc:
         raise InputError(f"{path}: cannot read the WFDB header: {exc.strerror}") from None
-    lines = []
-    for line_no, raw in enumerate(text.splitlines(), start=1):
-        stripped = raw.strip()
-        if stripped and not stripped.startswith("#"):
-            lines.append((line_no, stripped))
+    lines = [(line_no, raw.strip()) for line_no, raw in enumerate(text.splitlines(), start=1)
+             if raw.strip() and not raw.strip().startswith("#")]
     if not lines:
         raise InputError(f"{path}: WFDB header has no record line; is this a WFDB .hea file?")
     line_no, record_line = lines[0]
@@ -146,7 +159,7 @@ def read_header(path: str | Path) -> WfdbHeader:
             f"{path}: line {line_no}: cannot parse the record line {record_line!r}; "
             "expected 'name n_signals [fs [n_samples ...]]'"
         ) from None
-    if fs <= 0:
+    if not fs > 0:
         fs = DEFAULT_FS
     if n_sig < 1:
         raise InputError(f"{path}: WFDB header declares no signals; nothing to read")
@@ -155,18 +168,37 @@ def read_header(path: str | Path) -> WfdbHeader:
             f"{path}: WFDB header declares {n_sig} signals but has {len(lines) - 1} signal "
             "lines; the header is incomplete"
         )
-    signals = tuple(_parse_signal_line(path, no, line, i) for i, (no, line) in
-                    enumerate(lines[1:1 + n_sig]))
-    return WfdbHeader(record_name=tokens[0], fs=fs, n_samples=n_samples, signals=signals)
+    for index, (line_no, line) in enumerate(lines[1:1 + n_sig]):
+        _check_signal_line(f"{path}: line {line_no}", line, index)
+
+    wfdb = _import_wfdb()
+
+    try:
+        with _quiet():
+            header = wfdb.rdheader(str(path.with_suffix("")))
+    except Exception as exc:  # wfdb raises assorted types for a malformed header
+        raise InputError(f"{path}: malformed WFDB header ({_reason(exc)}); "
+                         "check the header against the WFDB format") from None
+    signals = tuple(
+        WfdbSignal(
+            description=header.sig_name[i] if header.sig_name[i] else f"ch{i}",
+            units=header.units[i] if header.units[i] else "mV",
+            file_name=header.file_name[i],
+            fmt=int(header.fmt[i]),
+            samples_per_frame=int(header.samps_per_frame[i] or 1),
+            byte_offset=int(header.byte_offset[i] or 0),
+            skew=int(header.skew[i] or 0),
+        )
+        for i in range(n_sig)
+    )
+    return WfdbHeader(path, tokens[0], fs, n_samples, signals)
 
 
-def _parse_signal_line(path: Path, line_no: int, line: str, index: int) -> WfdbSignal:
+def _check_signal_line(where: str, line: str, index: int) -> None:
     tokens = line.split()
-    where = f"{path}: line {line_no}"
     if len(tokens) < 2:
         raise InputError(f"{where}: signal line {line!r} lacks a format field")
-    file_name = tokens[0]
-    if file_name == "~":
+    if tokens[0] == "~":
         raise InputError(f"{where}: signal {index} has no signal file ('~'); nothing to read")
     m = _FORMAT_RE.match(tokens[1])
     if not m:
@@ -177,171 +209,272 @@ def _parse_signal_line(path: Path, line_no: int, line: str, index: int) -> WfdbS
             f"{where}: signal format {fmt} is not supported; supported formats: "
             f"{', '.join(map(str, SUPPORTED_FORMATS))}; convert the record (e.g. to format 16)"
         )
-    if m.group(2) is not None and int(m.group(2)) != 1:
-        raise InputError(
-            f"{where}: {m.group(2)} samples per frame (multi-rate records) are not supported; "
-            "resample the record to one rate"
-        )
-    if m.group(3) is not None and int(m.group(3)) != 0:
-        raise InputError(f"{where}: skewed signals are not supported; remove the skew")
-    byte_offset = int(m.group(4)) if m.group(4) is not None else 0
-
-    gain, baseline, units = DEFAULT_GAIN, None, "mV"
-    if len(tokens) > 2:
-        g = _GAIN_RE.match(tokens[2])
-        if not g:
-            raise InputError(f"{where}: cannot parse the gain field {tokens[2]!r}")
-        gain = float(g.group(1))
-        if g.group(2) is not None:
-            baseline = int(g.group(2))
-        if g.group(3):
-            units = g.group(3)
-    if gain == 0:
-        gain = DEFAULT_GAIN
-    try:
-        adc_zero = int(tokens[4]) if len(tokens) > 4 else 0
-        checksum = int(tokens[6]) if len(tokens) > 6 else None
-    except ValueError:
-        raise InputError(f"{where}: cannot parse the ADC zero or checksum field") from None
-    if baseline is None:
-        baseline = adc_zero
-    description = " ".join(tokens[8:]) if len(tokens) > 8 else f"ch{index}"
-    return WfdbSignal(file_name, fmt, byte_offset, gain, baseline, units, checksum, description)
+    if m.group(2) is not None and int(m.group(2)) < 1:
+        raise InputError(f"{where}: {m.group(2)} samples per frame; must be at least 1")
+    # wfdb drops what its patterns do not match ("2x0" is read as a gain of 2).
+    if len(tokens) > 2 and not _GAIN_RE.match(tokens[2]):
+        raise InputError(f"{where}: cannot parse the gain field {tokens[2]!r}")
+    for position, name in ((3, "ADC resolution"), (4, "ADC zero"), (5, "initial value"),
+                           (6, "checksum"), (7, "block size")):
+        if len(tokens) > position and not re.fullmatch(r"[-+]?\d+", tokens[position]):
+            raise InputError(f"{where}: cannot parse the {name} field {tokens[position]!r}")
 
 
-def _decode(raw: bytes, fmt: int, n_values: int) -> np.ndarray:
-    """Decode ``n_values`` digital samples (int64) from the start of ``raw``."""
-    if fmt == 16:
-        return np.frombuffer(raw, dtype="<i2", count=n_values).astype(np.int64)
-    if fmt == 61:
-        return np.frombuffer(raw, dtype=">i2", count=n_values).astype(np.int64)
-    if fmt == 80:
-        return np.frombuffer(raw, dtype=np.uint8, count=n_values).astype(np.int64) - 128
-    if fmt == 160:
-        return np.frombuffer(raw, dtype="<u2", count=n_values).astype(np.int64) - 32768
-    if fmt == 32:
-        return np.frombuffer(raw, dtype="<i4", count=n_values).astype(np.int64)
-    if fmt == 24:
-        b = np.frombuffer(raw, dtype=np.uint8, count=3 * n_values).astype(np.int64).reshape(-1, 3)
-        d = b[:, 0] | (b[:, 1] << 8) | (b[:, 2] << 16)
-        return np.where(d >= 1 << 23, d - (1 << 24), d)
-    if fmt == 212:
-        n_triplets = (n_values + 1) // 2
-        buf = np.frombuffer(raw, dtype=np.uint8, count=min(len(raw), 3 * n_triplets))
-        if len(buf) < 3 * n_triplets:  # an odd last sample is stored in two bytes
-            buf = np.concatenate([buf, np.zeros(3 * n_triplets - len(buf), np.uint8)])
-        b = buf.astype(np.int64).reshape(-1, 3)
-        out = np.empty(2 * n_triplets, dtype=np.int64)
-        out[0::2] = b[:, 0] | ((b[:, 1] & 0x0F) << 8)
-        out[1::2] = b[:, 2] | ((b[:, 1] & 0xF0) << 4)
-        out[out > 2047] -= 4096
-        return out[:n_values]
-    raise AssertionError(fmt)  # read_header refuses other formats
+@contextlib.contextmanager
+def _quiet():
+    """Silence the deprecation warnings wfdb 4.3 triggers in pandas: not the user's concern."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DeprecationWarning)
+        warnings.simplefilter("ignore", FutureWarning)
+        yield
 
 
-def _bytes_for(fmt: int, n_values: int) -> int:
-    """Bytes that hold ``n_values`` samples of ``fmt`` (format 212 rounds up)."""
-    return (n_values * _BITS[fmt] + 7) // 8
+def _import_wfdb():
+    """The wfdb package, imported on first use (its import costs; see DEVELOPERS.md)."""
+    with _quiet():  # its import alone builds pandas tables in deprecated ways
+        import wfdb
+    return wfdb
 
 
-def read_signals(
-    header: WfdbHeader, directory: str | Path, header_path: str | Path = ""
-) -> tuple[np.ndarray, int]:
-    """Read all signals of a record in physical units.
+def _reason(exc: BaseException) -> str:
+    """An exception as a short clause on one line."""
+    text = " ".join(str(exc).split())
+    return f"{type(exc).__name__}: {text}" if text else type(exc).__name__
+
+
+def read_signals(header: WfdbHeader, given: str | Path = "") -> list[np.ndarray]:
+    """Read every signal of a record in physical units, each at its own rate.
 
     Parameters
     ----------
     header : WfdbHeader
-        From :func:`read_header`.
-    directory : str or Path
-        Where the signal files are (the header's folder).
-    header_path : str or Path, optional
-        Only used in messages.
+        From :func:`read_header`; the signal files are beside its file.
+    given : str or Path, optional
+        The record as the user named it, for messages (default: the header path).
 
     Returns
     -------
-    samples : ndarray, shape (n, n_signals), float64
-        Physical values; NaN where the digital value is the format's invalid marker.
-    n_declared : int
-        The number of samples the header declares (``n`` when it declares none). When a
-        signal file is shorter, ``n < n_declared`` and a warning is logged: the record
-        is cut to the frames that every file holds completely.
+    list of ndarray
+        Signal ``j`` as float64, ``n_frames * samples_per_frame_j`` samples; sample ``k``
+        sits at ``k / header.signal_rates[j]`` seconds. NaN where the digital value is
+        the format's invalid marker. ``n_frames`` is what the header declares, or less
+        when a signal file is cut short: the frames that every file holds completely,
+        with a warning.
 
     Raises
     ------
     InputError
-        When a signal file is missing or holds not a single complete frame.
+        When a signal file is missing, unreadable, holds not a single complete frame, or
+        ``wfdb`` fails on it (a damaged FLAC stream, a header that contradicts the file).
     """
-    directory = Path(directory)
-    # Signals of one file are interleaved in header order; group them by file.
-    groups: dict[str, list[int]] = {}
-    for i, sig in enumerate(header.signals):
-        groups.setdefault(sig.file_name, []).append(i)
+    given = str(given or header.path)
+    n_available = _complete_frames(header, given)
+    n_declared = header.n_samples if header.n_samples is not None else n_available
+    n_frames = min(n_available, n_declared)
+    try:
+        record = _read_frames(header, n_frames)
+    except Exception as exc:  # wfdb and soundfile raise assorted types
+        # A FLAC stream cut short announces all its samples but cannot decode them all:
+        # read the samples it does decode.
+        n_decodable = _decodable_flac_frames(header)
+        if n_decodable is None or n_decodable >= n_frames:
+            raise _decode_error(header, given, exc) from None
+        n_frames = n_decodable
+        record = None
+    if n_frames == 0:
+        raise InputError(
+            f"{given}: the signal file holds no complete sample (file empty or "
+            "truncated); nothing to read"
+        )
+    if n_frames < n_declared:
+        logger.warning(
+            "%s: the signal file holds %d of the %d samples the header declares "
+            "(truncated file); reading the first %d samples",
+            given, n_frames, n_declared, n_frames,
+        )
+    if record is None:
+        try:
+            record = _read_frames(header, n_frames)
+        except Exception as exc:
+            raise _decode_error(header, given, exc) from None
+    physical = [np.asarray(x, dtype=np.float64) for x in record.e_p_signal]
+    if n_frames == n_declared:
+        _check_checksums(physical, record, header, given)
+    return physical
 
-    decoded: dict[str, np.ndarray] = {}
-    n_available = []
-    for file_name, members in groups.items():
-        fmts = {header.signals[i].fmt for i in members}
-        offsets = {header.signals[i].byte_offset for i in members}
+
+def _read_frames(header: WfdbHeader, n_frames: int):
+    """The first ``n_frames`` frames, physical values, each signal at its own rate.
+
+    Physical values straight from wfdb: wfdb 4.3.1 fails to return the digital samples of
+    format 61 (it cannot convert their big-endian dtype).
+    """
+    if n_frames == 0:
+        return None
+    wfdb = _import_wfdb()
+    with _quiet():
+        return wfdb.rdrecord(str(header.path.with_suffix("")), sampto=n_frames,
+                             physical=True, smooth_frames=False, return_res=64)
+
+
+def _decode_error(header: WfdbHeader, given: str, exc: BaseException) -> InputError:
+    files = ", ".join(sorted({s.file_name for s in header.signals}))
+    return InputError(
+        f"{given}: cannot decode the signal file(s) {files} ({_reason(exc)}); the "
+        "file is damaged or does not match its header"
+    )
+
+
+def _decodable_flac_frames(header: WfdbHeader) -> int | None:
+    """Frames that every FLAC signal file of the record decodes (None without FLAC
+    files): its samples are decoded in blocks until the end or the first block that
+    fails, so a stream cut short gives the samples before the cut, less at most one
+    block (:data:`_FLAC_BLOCK`) and the FLAC frame the cut falls in."""
+    import soundfile
+
+    n_frames = None
+    flac_files = {s.file_name: s for s in header.signals if s.fmt in FLAC_FORMATS}
+    for sig in flac_files.values():  # one FLAC file holds signals of one rate
+        n_samples = 0
+        try:
+            with soundfile.SoundFile(str(header.path.parent / sig.file_name)) as stream:
+                while True:
+                    block = stream.read(_FLAC_BLOCK, dtype="int32")
+                    if len(block) == 0:
+                        break
+                    n_samples += len(block)
+        except Exception:  # soundfile raises its own error types at the damage
+            pass
+        frames = n_samples // sig.samples_per_frame
+        n_frames = frames if n_frames is None else min(n_frames, frames)
+    return n_frames
+
+
+#: Samples per read when counting what a damaged FLAC stream decodes.
+_FLAC_BLOCK = 1024
+
+
+def _complete_frames(header: WfdbHeader, given: str) -> int:
+    """Frames that every signal file holds completely (its size, or its FLAC stream
+    information)."""
+    members: dict[str, list[int]] = {}
+    for i, sig in enumerate(header.signals):
+        members.setdefault(sig.file_name, []).append(i)
+    n_frames = []
+    for file_name, indices in members.items():
+        file_path = header.path.parent / file_name
+        fmts = {header.signals[i].fmt for i in indices}
+        offsets = {header.signals[i].byte_offset for i in indices}
         if len(fmts) > 1 or len(offsets) > 1:
             raise InputError(
-                f"{header_path}: signals in {file_name} mix formats or byte offsets; "
-                "not supported"
+                f"{given}: signals in {file_name} mix formats or byte offsets; not supported"
             )
         fmt, offset = fmts.pop(), offsets.pop()
-        file_path = directory / file_name
+        samples_per_frame = sum(header.signals[i].samples_per_frame for i in indices)
         try:
-            raw = file_path.read_bytes()[offset:]
+            with open(file_path, "rb") as fh:
+                size = os.fstat(fh.fileno()).st_size
         except FileNotFoundError:
             raise InputError(
-                f"{header_path}: signal file {file_path} is missing; keep the .dat file "
+                f"{given}: signal file {file_path} is missing; keep the .dat file "
                 "beside the .hea file"
             ) from None
         except OSError as exc:
             raise InputError(f"{file_path}: cannot read: {exc.strerror}") from None
-        k = len(members)
-        n_frames_in_file = (len(raw) * 8) // (_BITS[fmt] * k)
-        n_frames = n_frames_in_file if header.n_samples is None else min(header.n_samples,
-                                                                         n_frames_in_file)
-        decoded[file_name] = _decode(raw, fmt, n_frames * k).reshape(n_frames, k)
-        n_available.append(n_frames)
+        if fmt in FLAC_FORMATS:
+            n_frames.append(_flac_frames(file_path, size, header.signals[indices[0]]))
+        else:
+            bits = max(0, size - offset) * 8
+            n_frames.append(max(0, int(bits // (_STORED_BITS[fmt] * samples_per_frame))))
+    return min(n_frames)
 
-    n = min(n_available)
-    n_declared = header.n_samples if header.n_samples is not None else n
-    if n == 0:
+
+def _flac_frames(file_path: Path, size: int, signal: WfdbSignal) -> int:
+    """Frames in a FLAC signal file, from its stream information block."""
+    if size == 0:
+        return 0
+    import soundfile
+
+    try:
+        n_samples = soundfile.info(str(file_path)).frames
+    except Exception as exc:  # soundfile raises its own error types
         raise InputError(
-            f"{header_path}: the signal file holds no complete sample (file empty or "
-            "truncated); nothing to read"
-        )
-    if n < n_declared:
+            f"{file_path}: not a readable FLAC stream (format {signal.fmt}: {_reason(exc)}); "
+            "the file is damaged or is not the one the header names"
+        ) from None
+    return n_samples // signal.samples_per_frame
+
+
+def _check_checksums(physical: list[np.ndarray], record, header: WfdbHeader,
+                     given: str) -> None:
+    """Warn about each signal whose samples fail the header checksum (the 16-bit two's
+    complement sum of its digital samples, from memory).
+
+    The digital samples are recovered from the physical ones, ``d = g x + b`` rounded
+    (exact: ``|d| < 2**24`` and float64 carries 53 bits), invalid samples as the format's
+    marker value. Skewed signals are not checked: wfdb pads their last ``skew`` samples
+    with the invalid marker.
+    """
+    for j, (sig, expected) in enumerate(zip(header.signals, record.checksum)):
+        if expected is None or sig.skew:
+            continue
+        x = physical[j]
+        d = np.rint(x * record.adc_gain[j] + record.baseline[j])
+        invalid = -(1 << (int(_BITS_OF_FORMAT[sig.fmt]) - 1))
+        d[np.isnan(x)] = invalid
+        total = int(d.astype(np.int64).sum()) & 0xFFFF
+        if total == int(expected) & 0xFFFF:
+            continue
+        signed_total = total - 0x10000 if total >= 0x8000 else total
         logger.warning(
-            "%s: the signal file holds %d of the %d samples the header declares "
-            "(truncated file); reading the first %d samples",
-            header_path, n, n_declared, n,
+            "%s: signal %r fails its header checksum (%d, file gives %d); "
+            "the signal file may be corrupt",
+            given, sig.description, expected, signed_total,
         )
 
-    samples = np.empty((n, len(header.signals)), dtype=np.float64)
-    for file_name, members in groups.items():
-        block = decoded[file_name][:n]
-        for column, i in enumerate(members):
-            sig = header.signals[i]
-            d = block[:, column]
-            if n == n_declared and sig.checksum is not None:
-                # The header checksum is the 16-bit two's complement sum of all samples.
-                total = int(d.sum()) & 0xFFFF
-                expected = sig.checksum & 0xFFFF
-                if total != expected:
-                    signed_total = total - 0x10000 if total >= 0x8000 else total
-                    logger.warning(
-                        "%s: signal %r fails its header checksum (%d, file gives %d); "
-                        "the signal file may be corrupt",
-                        header_path, sig.description, sig.checksum, signed_total,
-                    )
-            physical = (d.astype(np.float64) - sig.baseline) / sig.gain
-            invalid_marker = -(1 << (_BITS[sig.fmt] - 1))
-            physical[d == invalid_marker] = np.nan
-            samples[:, i] = physical
-    return samples, n_declared
+
+def on_fastest_grid(values: list[np.ndarray], rates: list[float]
+                    ) -> tuple[np.ndarray, np.ndarray, float]:
+    """Put signals sampled at different rates on the time grid of the fastest one.
+
+    Parameters
+    ----------
+    values : list of ndarray
+        One 1-d array per signal; sample ``k`` of signal ``j`` sits at ``k / rates[j]``
+        seconds (as in a WFDB record, whose frames align the signals exactly).
+    rates : list of float
+        Each signal's rate in Hz.
+
+    Returns
+    -------
+    samples : ndarray, shape (n, len(values)), float64
+        Column ``j`` is signal ``j`` on the grid ``t_k = k / fs``: its own samples where
+        its rate is ``fs``, otherwise linearly interpolated between its own sample times;
+        NaN past its last sample.
+    timestamps : ndarray, shape (n,)
+        ``k / fs``.
+    fs : float
+        The fastest rate.
+
+    Notes
+    -----
+    Linear interpolation is chosen for its lack of overshoot; it attenuates a component
+    at frequency ``f`` of a signal sampled at ``r`` by at most ``sinc^2(f / r)`` (from
+    memory), 0.985 for a 3 Hz pulse sampled at 62.5 Hz, so the rates the engine estimates
+    are unaffected. A small function of its own so that a general merge of streams of
+    different rates can replace it.
+    """
+    fs = max(rates)
+    n = max(round(len(v) * fs / r) for v, r in zip(values, rates))
+    timestamps = np.arange(n, dtype=np.float64) / fs
+    samples = np.full((n, len(values)), np.nan, dtype=np.float64)
+    for j, (v, r) in enumerate(zip(values, rates)):
+        if r == fs:
+            samples[: len(v), j] = v
+        else:
+            own_times = np.arange(len(v), dtype=np.float64) / r
+            samples[:, j] = np.interp(timestamps, own_times, v, left=np.nan, right=np.nan)
+    return samples, timestamps, fs
 
 
 @dataclass(frozen=True)
@@ -359,86 +492,61 @@ class Annotations:
         return self.samples[is_beat].astype(np.float64) / self.fs
 
 
+_TIME_NOTE = b"## time resolution:"
+
+
 def read_annotations(path: str | Path, fs: float) -> Annotations:
-    """Read an MIT-format annotation file.
+    """Read an MIT-format annotation file with ``wfdb.rdann``.
 
     Parameters
     ----------
     path : str or Path
         The annotation file, e.g. ``100.atr``.
     fs : float
-        The record's sampling rate; used unless the file starts with a
+        The record's frame rate; used unless the file starts with a
         ``## time resolution: F`` note, which sets the resolution of its sample times.
 
     Returns
     -------
     Annotations
-        Every annotation (beats and non-beats) in file order.
+        Every annotation (beats and non-beats) in file order; notes that describe the
+        file itself (the time-resolution note, label definitions) are left out.
 
     Raises
     ------
     InputError
-        When the file cannot be read. A file that ends without the end marker (cut short)
-        keeps the annotations read so far and logs a warning.
-
-    Notes
-    -----
-    Word layout (SOURCE.md of the record 100 data): little-endian 16-bit words; code =
-    ``w >> 10``, time increment = ``w & 0x3FF``; code 59 (SKIP) is followed by a 32-bit
-    increment as two words, high word first; 63 (AUX) carries ``w & 0x3FF`` bytes of text
-    padded to whole words; 60/61/62 (NUM/SUB/CHN) carry a field value and no time
-    advance; the word 0 ends the file.
+        When the file cannot be read or ``wfdb`` cannot decode it. A file that ends
+        without the end marker (cut short) keeps the annotations read so far and logs a
+        warning.
     """
     path = Path(path)
     try:
         raw = path.read_bytes()
     except OSError as exc:
         raise InputError(f"{path}: cannot read the annotation file: {exc.strerror}") from None
-    words = np.frombuffer(raw[: len(raw) // 2 * 2], dtype="<u2").tolist()
-    samples: list[int] = []
-    codes: list[int] = []
-    aux_of_first: bytes | None = None
-    t = 0
-    i = 0
-    n_words = len(words)
-    ended = False
-    while i < n_words:
-        w = words[i]
-        if w == 0:
-            ended = True
-            break
-        code, value = w >> 10, w & 0x3FF
-        if code == _SKIP:
-            if i + 2 >= n_words:
-                break
-            skip = (words[i + 1] << 16) | words[i + 2]
-            if skip >= 1 << 31:
-                skip -= 1 << 32
-            t += skip
-            i += 3
-        elif code in (_NUM, _SUB, _CHN):
-            i += 1
-        elif code == _AUX:
-            n_aux_words = (value + 1) // 2
-            if len(codes) == 1 and aux_of_first is None:
-                aux_of_first = raw[2 * (i + 1): 2 * (i + 1) + value]
-            i += 1 + n_aux_words
-        else:
-            t += value
-            samples.append(t)
-            codes.append(code)
-            i += 1
+    raw = raw[: len(raw) // 2 * 2]
+    ended = raw.endswith(b"\x00\x00") or not raw
+    wfdb = _import_wfdb()
+
+    try:
+        with tempfile.TemporaryDirectory(prefix="ridgewatch-ann-") as folder:
+            if ended:
+                record, extension = str(path.parent / path.stem), path.suffix[1:]
+            else:
+                # wfdb drops the last annotation of a file without its end marker: read
+                # a copy that has one.
+                record, extension = str(Path(folder) / "cut"), "ann"
+                (Path(folder) / "cut.ann").write_bytes(raw + b"\x00\x00")
+            with _quiet():
+                ann = wfdb.rdann(record, extension, return_label_elements=["label_store"])
+    except Exception as exc:  # wfdb raises assorted types for a damaged file
+        raise InputError(f"{path}: cannot decode the annotation file ({_reason(exc)}); "
+                         "the file is damaged or not in the MIT annotation format") from None
     if not ended:
         logger.warning(
             "%s: annotation file ends without its end marker (truncated?); using the %d "
-            "annotations read", path, len(codes),
+            "annotations read", path, len(ann.sample),
         )
-    ann_fs = fs
-    time_note = b"## time resolution:"
-    if codes and codes[0] == _NOTE and aux_of_first and aux_of_first.startswith(time_note):
-        try:
-            ann_fs = float(aux_of_first.split(b":", 1)[1].strip(b" \x00"))
-        except ValueError:
-            pass
-    return Annotations(np.asarray(samples, dtype=np.int64), np.asarray(codes, dtype=np.int64),
-                       ann_fs)
+    ann_fs = float(ann.fs) if _TIME_NOTE in raw[:64] and ann.fs else fs
+    return Annotations(np.asarray(ann.sample, dtype=np.int64),
+                       np.asarray(ann.label_store, dtype=np.int64), ann_fs)

@@ -25,6 +25,7 @@ from streamer.compare import (
 from streamer.errors import InputError
 from streamer.report import DISCLAIMER, format_value, write_batch_summary, write_report
 from streamer.sinks.estimate_log import EstimateLog, read_log
+from tests.reference import wfdb_plain
 
 ROOT = Path(__file__).resolve().parents[2]
 DATA = ROOT / ".." / "shared" / "data"
@@ -394,7 +395,11 @@ def test_record_100_beat_annotations():
     assert whole == pytest.approx(60.0 * (t.size - 1) / (t[-1] - t[0]), rel=1e-12)
     inst = 60.0 / np.diff(t)
     assert round(inst.min()) == 53 and round(inst.max()) == 115
-    # an independent reader (the wfdb package) gives the same beat times
+    # an independent reader (the byte-by-byte twin in tests/reference) gives the same
+    # beat times
+    plain = wfdb_plain.read_annotations(path, 360.0)
+    np.testing.assert_allclose(t, plain.beat_times_s(), rtol=0, atol=1e-12)
+    # and the beat codes are the beat symbols (WFDB symbol table, from memory)
     wfdb = pytest.importorskip("wfdb")
     ann = wfdb.rdann(str(path.with_suffix("")), "atr")
     is_beat = np.array([s in "NLRBAaJSVrFejnE/fQ?" for s in ann.symbol])

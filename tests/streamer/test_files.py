@@ -1,4 +1,5 @@
-"""File readers: CSV, WFDB (own reader, checked against the wfdb package), EDF, XDF."""
+"""File readers: CSV, WFDB (the wfdb package, checked against the plain reader in
+tests/reference/wfdb_plain.py), EDF, XDF."""
 
 from __future__ import annotations
 
@@ -13,6 +14,7 @@ import pytest
 from streamer.errors import InputError
 from streamer.sources import wfdb_reader
 from streamer.sources.files import read_recording
+from tests.reference import wfdb_plain
 
 DATA = Path(__file__).resolve().parents[2] / ".." / "shared" / "data"
 WFDB_DIR = DATA / "physionet_wfdb"
@@ -348,29 +350,51 @@ def test_bidmc_csv_record():
 # ---------------------------------------------------------------------------- WFDB
 
 
+def wfdb_or_skip():
+    return pytest.importorskip("wfdb", reason="the wfdb package is a dependency of ridgewatch; "
+                                              "install the project (pip install -e .)")
+
+
 @pytest.mark.data
-def test_wfdb_record_100_matches_the_wfdb_package():
-    wfdb = pytest.importorskip("wfdb")
+def test_wfdb_record_100_matches_the_plain_reader():
     if not (WFDB_DIR / "100.hea").is_file():
-        pytest.skip(f"shared data not found: {WFDB_DIR}")
+        pytest.skip(f"shared data not found: {WFDB_DIR} (see its SOURCE.md)")
     rec = read_recording(WFDB_DIR / "100.hea")
-    reference = wfdb.rdrecord(str(WFDB_DIR / "100"))
+    header = wfdb_plain.read_header(WFDB_DIR / "100.hea")
+    reference, n_declared = wfdb_plain.read_signals(header, WFDB_DIR)
     # SOURCE.md of physionet_wfdb: 650000 samples, 2 channels MLII, V5, fs 360 Hz.
-    assert rec.samples.shape == (650000, 2)
+    assert rec.samples.shape == (650000, 2) and n_declared == 650000
     assert rec.info.fs == 360.0
     assert rec.info.channel_names == ["MLII", "V5"]
     assert [c.unit for c in rec.info.channels] == ["mV", "mV"]
-    np.testing.assert_array_equal(rec.samples, reference.p_signal)
+    np.testing.assert_array_equal(rec.samples, reference)
     np.testing.assert_array_equal(rec.timestamps, np.arange(650000) / 360.0)
 
     annotations = wfdb_reader.read_annotations(WFDB_DIR / "100.atr", 360.0)
-    ann = wfdb.rdann(str(WFDB_DIR / "100"), "atr")
+    plain = wfdb_plain.read_annotations(WFDB_DIR / "100.atr", 360.0)
     assert len(annotations.samples) == 2274  # SOURCE.md: 2274 annotations
-    np.testing.assert_array_equal(annotations.samples, ann.sample)
-    is_beat = np.array([s != "+" for s in ann.symbol])
+    np.testing.assert_array_equal(annotations.samples, plain.samples)
+    np.testing.assert_array_equal(annotations.codes, plain.codes)
     assert rec.events.keys() == {"atr"}
     assert len(rec.events["atr"]) == 2273  # SOURCE.md: 2273 beats + 1 rhythm label '+'
-    np.testing.assert_array_equal(rec.events["atr"], ann.sample[is_beat] / 360.0)
+    np.testing.assert_array_equal(rec.events["atr"], plain.beat_times_s())
+
+
+@pytest.mark.data
+def test_wfdb_records_of_bidmc_match_the_plain_reader():
+    folder = DATA / "bidmc"
+    headers = sorted(folder.rglob("*.hea"))[:3] if folder.is_dir() else []
+    if not headers:
+        pytest.skip(f"no WFDB records under {folder}: its SOURCE.md says the copy holds the CSV "
+                    "version only (the WFDB files are not in the repository it came from)")
+    for path in headers:
+        rec = read_recording(path)
+        header = wfdb_plain.read_header(path)
+        signals, _ = wfdb_plain.read_signal_list(header, path.parent)
+        rates = [header.fs * s.samples_per_frame for s in header.signals]
+        expected, _, fs = wfdb_reader.on_fastest_grid(signals, rates)
+        assert rec.info.fs == fs
+        np.testing.assert_array_equal(rec.samples, expected)
 
 
 @pytest.mark.data
@@ -394,11 +418,19 @@ def _write_by_hand(directory: Path, fmt: str, d: np.ndarray, gains, baselines) -
     write_text(directory / "rec.hea", "\n".join(lines) + "\n")
 
 
+#: Resolution in bits of each format written below (WFDB signal formats, from memory).
+FORMAT_BITS = {"16": 16, "61": 16, "80": 8, "160": 16, "212": 12, "24": 24, "32": 32,
+               "508": 8, "516": 16, "524": 24}
+
+
 @pytest.mark.parametrize("fmt, n_sig", [("16", 2), ("61", 2), ("80", 3), ("160", 2),
-                                        ("212", 3), ("212", 2), ("24", 1), ("32", 2)])
-def test_wfdb_formats_match_the_wfdb_package(tmp_path, rng, fmt, n_sig):
-    wfdb = pytest.importorskip("wfdb")
-    bits = {"16": 16, "61": 16, "80": 8, "160": 16, "212": 12, "24": 24, "32": 32}[fmt]
+                                        ("212", 3), ("212", 2), ("24", 1), ("32", 2),
+                                        ("508", 2), ("516", 3), ("524", 1)])
+def test_wfdb_formats_match_the_written_samples_and_the_plain_reader(tmp_path, rng, fmt,
+                                                                     n_sig):
+    wfdb = wfdb_or_skip()
+    bits = FORMAT_BITS[fmt]
+    # The smallest value of a format is its invalid marker: written values stay above it.
     low, high = -(1 << (bits - 1)) + 1, (1 << (bits - 1)) - 1
     n = 1001  # odd: the last format-212 frame of an odd signal count ends mid-triplet
     d = rng.integers(low, high + 1, (n, n_sig))
@@ -413,15 +445,27 @@ def test_wfdb_formats_match_the_wfdb_package(tmp_path, rng, fmt, n_sig):
                     sig_name=[f"s{i}" for i in range(n_sig)], d_signal=d, fmt=[fmt] * n_sig,
                     adc_gain=gains, baseline=baselines, write_dir=str(tmp_path))
     rec = read_recording(tmp_path / "rec.hea")
-    reference = wfdb.rdrecord(str(tmp_path / "rec"))
     assert rec.samples.shape == (n, n_sig)
     assert rec.info.fs == 128.0
-    np.testing.assert_array_equal(rec.samples, reference.p_signal)
     np.testing.assert_array_equal(rec.samples, (d - np.array(baselines)) / np.array(gains))
     assert rec.events == {}
+    if int(fmt) in wfdb_plain.SUPPORTED_FORMATS:  # the plain reader decodes no FLAC
+        header = wfdb_plain.read_header(tmp_path / "rec.hea")
+        reference, _ = wfdb_plain.read_signals(header, tmp_path)
+        np.testing.assert_array_equal(rec.samples, reference)
 
 
-def test_wfdb_invalid_marker_becomes_nan(tmp_path):
+@pytest.mark.parametrize("fmt", ["16", "516"])
+def test_wfdb_invalid_marker_becomes_nan(tmp_path, fmt):
+    wfdb = wfdb_or_skip()
+    d = np.array([[200], [-32768], [-400]])
+    wfdb.wrsamp("rec", fs=100, units=["mV"], sig_name=["x"], d_signal=d, fmt=[fmt],
+                adc_gain=[200.0], baseline=[0], write_dir=str(tmp_path))
+    rec = read_recording(tmp_path / "rec.hea")
+    np.testing.assert_array_equal(rec.samples[:, 0], [1.0, np.nan, -2.0])
+
+
+def test_wfdb_invalid_marker_becomes_nan_by_hand(tmp_path):
     header = "rec 1 100 3\nrec.dat 16 200(0)/mV 16 0 0 0 0 x\n"
     write_text(tmp_path / "rec.hea", header)
     (tmp_path / "rec.dat").write_bytes(np.array([200, -32768, -400], "<i2").tobytes())
@@ -429,8 +473,24 @@ def test_wfdb_invalid_marker_becomes_nan(tmp_path):
     np.testing.assert_array_equal(rec.samples[:, 0], [1.0, np.nan, -2.0])
 
 
+def test_wfdb_skewed_signal_is_shifted_back_without_a_checksum_warning(tmp_path, caplog):
+    wfdb_or_skip()
+    # Signal b is skewed by 2 frames: its sample k is stored in frame k + 2. The header
+    # declares 8 frames; wfdb reads no frame beyond them, so b's last 2 samples are
+    # missing (NaN). Checksum of a: 0 + 2 + ... + 14 = 56.
+    (tmp_path / "sk.dat").write_bytes(np.arange(20).astype("<i2").tobytes())
+    write_text(tmp_path / "sk.hea", "sk 2 100 8\nsk.dat 16 200(0)/mV 16 0 0 56 0 a\n"
+                                    "sk.dat 16:2 200(0)/mV 16 0 0 0 0 b\n")
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(tmp_path / "sk.hea")
+    np.testing.assert_array_equal(rec.samples[:, 0], np.arange(0, 16, 2) / 200.0)
+    np.testing.assert_array_equal(rec.samples[:, 1],
+                                  np.array([5, 7, 9, 11, 13, 15, np.nan, np.nan]) / 200.0)
+    assert caplog.text == ""
+
+
 def test_wfdb_truncated_dat_gives_the_complete_frames_with_a_warning(tmp_path, rng, caplog):
-    wfdb = pytest.importorskip("wfdb")
+    wfdb = wfdb_or_skip()
     d = rng.integers(-2000, 2000, (500, 2))
     wfdb.wrsamp("rec", fs=100, units=["mV", "mV"], sig_name=["a", "b"], d_signal=d,
                 fmt=["212", "212"], adc_gain=[200.0, 200.0], baseline=[0, 0],
@@ -444,23 +504,27 @@ def test_wfdb_truncated_dat_gives_the_complete_frames_with_a_warning(tmp_path, r
 
 
 def test_wfdb_checksum_mismatch_is_reported(tmp_path, rng, caplog):
-    wfdb = pytest.importorskip("wfdb")
+    wfdb = wfdb_or_skip()
     d = rng.integers(-2000, 2000, (50, 1))
     wfdb.wrsamp("rec", fs=100, units=["mV"], sig_name=["a"], d_signal=d, fmt=["16"],
                 adc_gain=[200.0], baseline=[0], write_dir=str(tmp_path))
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        read_recording(tmp_path / "rec.hea")
+    assert "checksum" not in caplog.text  # intact file: no warning
     dat = tmp_path / "rec.dat"
     raw = bytearray(dat.read_bytes())
     raw[10] ^= 0x01
     dat.write_bytes(bytes(raw))
     with caplog.at_level(logging.WARNING, logger="ridgewatch"):
         read_recording(tmp_path / "rec.hea")
-    assert "fails its header checksum" in caplog.text
+    assert "signal 'a' fails its header checksum" in caplog.text
 
 
 def test_wfdb_errors(tmp_path):
-    write_text(tmp_path / "a.hea", "a 1 100 10\na.dat 310 200 10 0 0 0 0 x\n")
-    with pytest.raises(InputError, match=r"a\.hea: line 2: signal format 310 is not "
-                                         r"supported; supported formats: 16, 61"):
+    write_text(tmp_path / "a.hea", "a 1 100 10\na.dat 999 200 10 0 0 0 0 x\n")
+    with pytest.raises(InputError, match=r"a\.hea: line 2: signal format 999 is not "
+                                         r"supported; supported formats: 8, 16, 24, 32, 61, "
+                                         r"80, 160, 212, 310, 311, 508, 516, 524; convert"):
         read_recording(tmp_path / "a.hea")
     write_text(tmp_path / "b.hea", "b 1 100 10\nb.dat 16 200 16 0 0 0 0 x\n")
     with pytest.raises(InputError, match=r"b\.hea: signal file .*b\.dat is missing"):
@@ -477,12 +541,86 @@ def test_wfdb_errors(tmp_path):
         read_recording(tmp_path / "e.hea")
     write_text(tmp_path / "f.hea", "f 1 100 10\nf.dat 16 200 16 0 0 0 0 x\n")
     (tmp_path / "f.dat").write_bytes(b"\x01")
-    with pytest.raises(InputError, match=r"holds no complete sample"):
+    with pytest.raises(InputError, match=r"f\.hea: the signal file holds no complete sample"):
         read_recording(tmp_path / "f.hea")
+    # wfdb itself reads these without complaint (measured with wfdb 4.3.1)
+    write_text(tmp_path / "g.hea", "g 1 abc 10\ng.dat 16 200 16 0 0 0 0 x\n")
+    with pytest.raises(InputError, match=r"g\.hea: line 1: cannot parse the record line "
+                                         r"'g 1 abc 10'; expected 'name n_signals"):
+        read_recording(tmp_path / "g.hea")
+    write_text(tmp_path / "h.hea", "h 1 100 10\n~ 16 200 16 0 0 0 0 x\n")
+    with pytest.raises(InputError, match=r"h\.hea: line 2: signal 0 has no signal file"):
+        read_recording(tmp_path / "h.hea")
+    # ... and this one with an IndexError of its own
+    write_text(tmp_path / "i.hea", "this is not a WFDB header\n")
+    with pytest.raises(InputError, match=r"i\.hea: line 1: cannot parse the record line"):
+        read_recording(tmp_path / "i.hea")
+    write_text(tmp_path / "j.hea", "j 1 100 10\nj.dat 16 2x0/mV 16 0 0 0 0 x\n")
+    (tmp_path / "j.dat").write_bytes(b"\x00" * 20)
+    with pytest.raises(InputError, match=r"j\.hea: line 2: cannot parse the gain field '2x0/mV'"):
+        read_recording(tmp_path / "j.hea")  # wfdb 4.3.1 reads it as a gain of 2
+    write_text(tmp_path / "k.hea", "k 1 100 10\nk.dat 16 200 16 0 0 q 0 x\n")
+    with pytest.raises(InputError, match=r"k\.hea: line 2: cannot parse the checksum field 'q'"):
+        read_recording(tmp_path / "k.hea")
+    # What only wfdb finds wrong is passed on in one line.
+    write_text(tmp_path / "m.hea", "m 1 100 10 25:61:00\nm.dat 16 200 16 0 0 0 0 x\n")
+    (tmp_path / "m.dat").write_bytes(b"\x00" * 20)
+    with pytest.raises(InputError, match=r"^\S*m\.hea: malformed WFDB header \(ValueError: time "
+                                         r"data '25:61:00' does not match format '%H:%M:%S'\); "
+                                         r"check the header against the WFDB format$"):
+        read_recording(tmp_path / "m.hea")
 
 
-def test_wfdb_annotations_with_skips_aux_and_non_beats_match_the_wfdb_package(tmp_path, rng):
-    wfdb = pytest.importorskip("wfdb")
+def test_wfdb_truncated_flac_gives_the_decodable_frames_with_a_warning(tmp_path, rng, caplog):
+    wfdb = wfdb_or_skip()
+    d = rng.integers(-2000, 2000, (20000, 2))
+    wfdb.wrsamp("rec", fs=100, units=["mV", "mV"], sig_name=["a", "b"], d_signal=d,
+                fmt=["516", "516"], adc_gain=[200.0, 200.0], baseline=[0, 0],
+                write_dir=str(tmp_path))
+    dat = tmp_path / "rec.dat"
+    intact = dat.read_bytes()
+    dat.write_bytes(intact[: len(intact) // 2])
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        rec = read_recording(tmp_path / "rec.hea")
+    n = len(rec.samples)
+    # Random samples hardly compress: half the bytes hold about half the samples; what
+    # is lost besides is at most the cut FLAC frame and one read block (1024 samples).
+    assert 10000 - 4096 - 1024 <= n < 10000
+    np.testing.assert_array_equal(rec.samples, d[:n] / 200.0)
+    assert (f"rec.hea: the signal file holds {n} of the 20000 samples the header declares "
+            f"(truncated file); reading the first {n} samples") in caplog.text
+
+
+def test_wfdb_flac_errors(tmp_path, rng):
+    wfdb = wfdb_or_skip()
+    d = rng.integers(-2000, 2000, (5000, 1))
+    wfdb.wrsamp("rec", fs=100, units=["mV"], sig_name=["a"], d_signal=d, fmt=["516"],
+                adc_gain=[200.0], baseline=[0], write_dir=str(tmp_path))
+    dat = tmp_path / "rec.dat"
+    intact = dat.read_bytes()
+    # A header naming two signals in a file of one FLAC channel: wfdb refuses it.
+    write_text(tmp_path / "two.hea", "two 2 100 5000\nrec.dat 516 200 16 0 0 0 0 a\n"
+                                     "rec.dat 516 200 16 0 0 0 0 b\n")
+    with pytest.raises(InputError, match=r"two\.hea: cannot decode the signal file\(s\) "
+                                         r"rec\.dat \(ValueError: wrong number of channels in "
+                                         r".*\); the file is damaged or does not match its "
+                                         r"header$"):
+        read_recording(tmp_path / "two.hea")
+    dat.write_bytes(b"RIFF" + intact[4:])
+    with pytest.raises(InputError, match=r"rec\.dat: not a readable FLAC stream \(format 516: "
+                                         r".*\); the file is damaged or is not the one the "
+                                         r"header names$"):
+        read_recording(tmp_path / "rec.hea")
+    dat.write_bytes(intact[:100])  # the stream header and not one whole FLAC frame
+    with pytest.raises(InputError, match=r"rec\.hea: the signal file holds no complete sample"):
+        read_recording(tmp_path / "rec.hea")
+    dat.write_bytes(b"")
+    with pytest.raises(InputError, match=r"rec\.hea: the signal file holds no complete sample"):
+        read_recording(tmp_path / "rec.hea")
+
+
+def test_wfdb_annotations_with_skips_aux_and_non_beats_match_the_plain_reader(tmp_path, rng):
+    wfdb = wfdb_or_skip()
     d = rng.integers(-100, 100, (200000, 1))
     wfdb.wrsamp("rec", fs=250, units=["mV"], sig_name=["ecg"], d_signal=d, fmt=["16"],
                 adc_gain=[200.0], baseline=[0], write_dir=str(tmp_path))
@@ -492,8 +630,10 @@ def test_wfdb_annotations_with_skips_aux_and_non_beats_match_the_wfdb_package(tm
     aux = ["", "(AFIB", "", "", "odd", "", "", "x"]
     wfdb.wrann("rec", "qrs", sample, symbol=symbol, aux_note=aux, write_dir=str(tmp_path))
     ours = wfdb_reader.read_annotations(tmp_path / "rec.qrs", 250.0)
-    theirs = wfdb.rdann(str(tmp_path / "rec"), "qrs")
-    np.testing.assert_array_equal(ours.samples, theirs.sample)
+    plain = wfdb_plain.read_annotations(tmp_path / "rec.qrs", 250.0)
+    np.testing.assert_array_equal(ours.samples, sample)
+    np.testing.assert_array_equal(ours.samples, plain.samples)
+    np.testing.assert_array_equal(ours.codes, plain.codes)
     rec = read_recording(tmp_path / "rec.hea", annotators=["qrs"])
     beats = [s for s, sym in zip(sample, symbol) if sym in "NVA/"]
     np.testing.assert_array_equal(rec.events["qrs"], np.array(beats) / 250.0)
@@ -502,15 +642,158 @@ def test_wfdb_annotations_with_skips_aux_and_non_beats_match_the_wfdb_package(tm
         read_recording(tmp_path / "rec.hea", annotators=["xyz"])
 
 
-def test_wfdb_truncated_annotation_file_keeps_what_was_read(tmp_path, caplog):
+def test_wfdb_annotation_time_resolution_note_sets_the_rate(tmp_path):
+    wfdb = wfdb_or_skip()
+    # wrann with fs writes a "## time resolution" note before the annotations.
+    wfdb.wrann("r", "atr", np.array([100, 300]), symbol=["N", "N"], fs=1000,
+               write_dir=str(tmp_path))
+    ann = wfdb_reader.read_annotations(tmp_path / "r.atr", 250.0)
+    assert ann.fs == 1000.0
+    np.testing.assert_array_equal(ann.beat_times_s(), [0.1, 0.3])
+    assert wfdb_plain.read_annotations(tmp_path / "r.atr", 250.0).fs == 1000.0
+
+
+@pytest.mark.parametrize("reader", [wfdb_reader, wfdb_plain], ids=["wfdb", "plain"])
+def test_wfdb_truncated_annotation_file_keeps_what_was_read(tmp_path, caplog, reader):
     # Hand-made MIT words: N at 10, N at +20, then the file ends without the 0 word.
     words = np.array([(1 << 10) | 10, (1 << 10) | 20], dtype="<u2")
     (tmp_path / "r.atr").write_bytes(words.tobytes())
     with caplog.at_level(logging.WARNING, logger="ridgewatch"):
-        ann = wfdb_reader.read_annotations(tmp_path / "r.atr", 100.0)
+        ann = reader.read_annotations(tmp_path / "r.atr", 100.0)
     np.testing.assert_array_equal(ann.samples, [10, 30])
     np.testing.assert_array_equal(ann.beat_times_s(), [0.1, 0.3])
-    assert "ends without its end marker" in caplog.text
+    assert "r.atr: annotation file ends without its end marker (truncated?); using the 2 " \
+           "annotations read" in caplog.text
+
+
+def test_wfdb_damaged_annotation_file_is_one_error(tmp_path):
+    # A SKIP word (code 59) whose 32-bit increment is cut off after one word.
+    words = np.array([(1 << 10) | 10, 59 << 10, 0], dtype="<u2")
+    (tmp_path / "r.atr").write_bytes(words.tobytes()[:-2])
+    with pytest.raises(InputError, match=r"r\.atr: cannot decode the annotation file \(\w+: "
+                                         r".*\); the file is damaged or not in the MIT "
+                                         r"annotation format$"):
+        wfdb_reader.read_annotations(tmp_path / "r.atr", 100.0)
+
+
+# ---------------------------------------------------------------- multi-frequency WFDB
+
+
+def write_multi_frequency(folder: Path, name: str, signals: list[np.ndarray],
+                          samples_per_frame: list[int], fmt: str, frame_fs: float,
+                          sig_name: list[str], gains: list[float], one_file: bool = False):
+    """A record whose signals have different samples per frame, written by the wfdb
+    package's own writer (``wfdb.io.record.Record.wrsamp`` with the expanded signals).
+
+    A FLAC signal file holds signals of one rate only (the wfdb writer refuses others), so
+    each signal gets its own file unless ``one_file``."""
+    from wfdb.io.record import Record
+
+    n_frames = len(signals[0]) // samples_per_frame[0]
+    files = ([f"{name}.dat"] * len(signals) if one_file
+             else [f"{name}_{s.lower()}.dat" for s in sig_name])
+    record = Record(record_name=name, fs=frame_fs, n_sig=len(signals), sig_len=n_frames,
+                    file_name=files, fmt=[fmt] * len(signals),
+                    samps_per_frame=list(samples_per_frame),
+                    e_d_signal=[np.asarray(x, dtype=np.int64) for x in signals],
+                    sig_name=list(sig_name), units=["mV"] * len(signals),
+                    adc_gain=list(gains), baseline=[0] * len(signals))
+    record.set_d_features(expanded=True)
+    record.set_defaults()
+    record.wrsamp(expanded=True, write_dir=str(folder))
+    return folder / f"{name}.hea"
+
+
+@pytest.mark.parametrize("fmt, one_file", [("16", True), ("212", True), ("16", False),
+                                           ("516", False)])
+def test_wfdb_multi_frequency_record_keeps_each_rate_and_matches_the_plain_reader(
+        tmp_path, rng, fmt, one_file):
+    wfdb_or_skip()
+    n_frames = 301
+    fast = rng.integers(-2000, 2000, 4 * n_frames)
+    slow = rng.integers(-2000, 2000, n_frames)
+    mid = rng.integers(-2000, 2000, 2 * n_frames)
+    path = write_multi_frequency(tmp_path, "mf", [slow, fast, mid], [1, 4, 2], fmt, 62.5,
+                                 ["SLOW", "FAST", "MID"], [100.0, 200.0, 50.0], one_file)
+    header = wfdb_reader.read_header(path)
+    assert header.fs == 62.5 and header.signal_rates == (62.5, 250.0, 125.0)
+    values = wfdb_reader.read_signals(header)
+    np.testing.assert_array_equal(values[0], slow / 100.0)
+    np.testing.assert_array_equal(values[1], fast / 200.0)
+    np.testing.assert_array_equal(values[2], mid / 50.0)
+    if int(fmt) in wfdb_plain.SUPPORTED_FORMATS:
+        plain, n_declared = wfdb_plain.read_signal_list(wfdb_plain.read_header(path), tmp_path)
+        assert n_declared == n_frames
+        for ours, theirs in zip(values, plain):
+            np.testing.assert_array_equal(ours, theirs)
+
+    rec = read_recording(path)
+    assert rec.info.fs == 250.0 and rec.info.channel_names == ["SLOW", "FAST", "MID"]
+    np.testing.assert_array_equal(rec.timestamps, np.arange(4 * n_frames) / 250.0)
+    np.testing.assert_array_equal(rec.samples[:, 1], fast / 200.0)
+    # Every 4th grid point is a sample of SLOW, every 2nd one of MID: exactly theirs.
+    np.testing.assert_array_equal(rec.samples[::4, 0], slow / 100.0)
+    np.testing.assert_array_equal(rec.samples[::2, 2], mid / 50.0)
+    # Between them, the straight line through the neighbours; NaN past the last sample.
+    k = np.arange(4 * (n_frames - 1))
+    left, frac = k // 4, (k % 4) / 4.0
+    np.testing.assert_allclose(rec.samples[k, 0],
+                               ((1 - frac) * slow[left] + frac * slow[left + 1]) / 100.0,
+                               rtol=0, atol=1e-12)
+    assert np.isnan(rec.samples[-3:, 0]).all() and np.isnan(rec.samples[-1, 2])
+
+    # Selecting the slower signals puts them on their own fastest grid: no resampling.
+    picked = read_recording(path, channels=["MID", "SLOW"])
+    assert picked.info.fs == 125.0 and picked.info.channel_names == ["MID", "SLOW"]
+    np.testing.assert_array_equal(picked.samples[:, 0], mid / 50.0)
+    np.testing.assert_array_equal(picked.samples[::2, 1], slow / 100.0)
+    only = read_recording(path, channels=["SLOW"])
+    assert only.info.fs == 62.5
+    np.testing.assert_array_equal(only.samples[:, 0], slow / 100.0)
+
+
+def test_wfdb_multi_frequency_warns_about_resampling(tmp_path, rng, caplog):
+    wfdb_or_skip()
+    path = write_multi_frequency(tmp_path, "mf", [rng.integers(-99, 99, 200),
+                                                  rng.integers(-99, 99, 100)], [2, 1], "16",
+                                 125.0, ["ECG", "PLETH"], [200.0, 200.0], one_file=True)
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        read_recording(path)
+    assert ("mf.hea: resampled PLETH (125 Hz) to 250 Hz by linear interpolation; select "
+            "signals of one rate to avoid it") in caplog.text
+
+
+def test_help_and_csv_replay_do_not_import_wfdb(tmp_path):
+    """wfdb (and the pandas it imports) costs about 0.3 s to import (DEVELOPERS.md): only
+    reading a WFDB record may pay for it."""
+    import subprocess
+    import sys
+
+    write_text(tmp_path / "rec.csv", csv_text(["time", "PPG"], np.array([[0.0, 1.0],
+                                                                          [0.01, 2.0]])))
+    code = ("import sys, contextlib, io\n"
+            "from streamer import cli\n"
+            "from streamer.sources.files import read_recording\n"
+            "with contextlib.redirect_stdout(io.StringIO()), contextlib.suppress(SystemExit):\n"
+            "    cli.main(['--help'])\n"
+            f"read_recording({str(tmp_path / 'rec.csv')!r})\n"
+            "sys.exit(1 if {'wfdb', 'pandas', 'soundfile'} & set(sys.modules) else 0)")
+    root = Path(__file__).resolve().parents[2]
+    done = subprocess.run([sys.executable, "-c", code], cwd=root, capture_output=True,
+                          text=True)
+    assert done.returncode == 0, done.stderr
+
+
+def test_on_fastest_grid_interpolates_slower_signals_over_their_own_times():
+    slow = np.array([0.0, 3.0, np.nan, 9.0])  # at 2 Hz: 0, 0.5, 1.0, 1.5 s
+    fast = np.arange(8.0)  # at 4 Hz
+    samples, timestamps, fs = wfdb_reader.on_fastest_grid([slow, fast], [2.0, 4.0])
+    assert fs == 4.0
+    np.testing.assert_array_equal(timestamps, np.arange(8) / 4.0)
+    np.testing.assert_array_equal(samples[:, 1], fast)
+    # halfway between 0 and 3 is 1.5; a NaN sample spoils both intervals it bounds
+    np.testing.assert_array_equal(samples[:, 0],
+                                  [0.0, 1.5, 3.0, np.nan, np.nan, np.nan, 9.0, np.nan])
 
 
 # ---------------------------------------------------------------------------- EDF

@@ -724,16 +724,11 @@ def _edf_markers(reader, given: str) -> tuple[Marker, ...]:
     blank (a bare duration, or an EDF+ time-keeping entry) says nothing and is skipped;
     durations are not kept. A plain EDF has none."""
     try:
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always")
-            onsets, _, texts = reader.readAnnotations()
+        onsets, _, texts = reader.readAnnotations()
     except Exception as exc:  # pyedflib raises several kinds on a damaged annotation signal
         logger.warning("%s: EDF+ annotations could not be read (%s); reading the signals "
                        "without them", given, exc)
         return ()
-    if caught:  # pyedflib warns when a text is not UTF-8 and decodes it as Latin-1
-        logger.warning("%s: %d EDF+ annotation text(s) not in UTF-8 (as EDF+ requires); "
-                       "read as Latin-1", given, len(caught))
     markers = [Marker(float(onset), str(text), "annotations")
                for onset, text in zip(onsets, texts) if str(text).strip()]
     return tuple(sorted(markers, key=lambda m: m.time_s))

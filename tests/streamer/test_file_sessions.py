@@ -232,6 +232,22 @@ def test_edf_plus_two_rates_and_annotations(tmp_path, caplog):
     assert slow_only.markers == rec.markers
 
 
+def test_unreadable_edf_annotations_leave_the_signals(caplog):
+    """pyedflib reads the signals and the annotations separately; should the second
+    fail, the signals are still read, with a warning."""
+    from streamer.sources.files import _edf_markers
+
+    class Reader:
+        def readAnnotations(self):
+            raise ValueError("could not convert string to float: 'x'")
+
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        assert _edf_markers(Reader(), "r.edf") == ()
+    assert [r.getMessage() for r in caplog.records] == [
+        "r.edf: EDF+ annotations could not be read (could not convert string to float: 'x'); "
+        "reading the signals without them"]
+
+
 # ---------------------------------------------------------------------------- command line
 
 

@@ -117,6 +117,13 @@ def _csv_time(p: argparse.ArgumentParser) -> None:
                         "time_ms or 'time [ms]', else seconds); logs are always in seconds")
 
 
+def _xdf_streams(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--stream", action="append", metavar="NAME",
+                   help="XDF: read the numeric stream NAME; repeatable (streams at different "
+                        "rates are put on the grid of the fastest). Default: every numeric "
+                        "stream. Marker (text) streams are always read")
+
+
 class _Parser(argparse.ArgumentParser):
     """argparse with the house error format: one line on stderr and exit code 2 (the
     stock parser prints the whole usage block first)."""
@@ -137,6 +144,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("replay", help="replay a recording (CSV, WFDB, EDF, XDF) into the engine")
     p.add_argument("file", help="recording: .csv, .csv.gz, .hea (WFDB), .edf, .xdf")
     _csv_time(p)
+    _xdf_streams(p)
     _common(p, speed_default="max")
 
     p = sub.add_parser("demo", help="replay the bundled synthetic demo session")
@@ -164,6 +172,7 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("offline", help="non-causal estimates over a whole recording")
     p.add_argument("file")
     _csv_time(p)
+    _xdf_streams(p)
     p.add_argument("--channel", action="append", metavar="NAME=KIND")
     p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES))
     p.add_argument("--hop", type=_positive, metavar="SECONDS")
@@ -454,7 +463,7 @@ def cmd_replay(args) -> int:
     from streamer.sources.replay import RecordingSource
 
     recording = read_recording(args.file, fs=args.fs, time_column=args.time_column,
-                               time_unit=args.time_unit)
+                               time_unit=args.time_unit, stream=args.stream)
     source = RecordingSource(recording, speed=args.speed, chunk_s=replay_chunk_s(args.speed),
                              progress=_progress_printer(args.quiet or args.display == "text"))
     return _run(args, source, "replay", recording.info.source_id or str(args.file),
@@ -566,7 +575,7 @@ def cmd_offline(args) -> int:
     from streamer.sources.files import read_recording, recording_files
 
     recording = read_recording(args.file, fs=args.fs, time_column=args.time_column,
-                               time_unit=args.time_unit)
+                               time_unit=args.time_unit, stream=args.stream)
     selected = select(recording.info, args.channel)
     profile = _profile(args)
     samples = recording.samples[:, [s.index for s in selected]]

@@ -7,8 +7,8 @@ file                        reader
 =========================== ===========================================================
 ``.csv``, ``.tsv`` (+``.gz``) header row, numeric rows; time column or ``fs=``
 ``.hea`` (``.dat``, none)   WFDB record via wfdb (:mod:`streamer.sources.wfdb_reader`)
-``.edf``, ``.bdf``          EDF/EDF+/BDF via pyedflib
-``.xdf``, ``.xdfz``         XDF via pyxdf, one stream
+``.edf``, ``.bdf``          EDF/EDF+/BDF via pyedflib; EDF+ annotations as markers
+``.xdf``, ``.xdfz``         XDF via pyxdf: numeric streams merged, text streams as markers
 =========================== ===========================================================
 
 Every problem a user can cause becomes one :class:`~streamer.errors.InputError` line that
@@ -35,7 +35,8 @@ import numpy as np
 
 from streamer.errors import InputError
 from streamer.sources import wfdb_reader
-from streamer.sources.base import KINDS, ChannelInfo, Recording, SourceInfo
+from streamer.sources.base import KINDS, ChannelInfo, Marker, Recording, SourceInfo
+from streamer.sources.merge import merge_batch, merge_recordings
 
 logger = logging.getLogger("ridgewatch")
 
@@ -74,7 +75,7 @@ def read_recording(
     fs: float | None = None,
     channels: Sequence[str | int] | str | None = None,
     *,
-    stream: str | None = None,
+    stream: str | Sequence[str] | None = None,
     annotators: Sequence[str] | None = None,
     time_column: str | None = None,
     time_unit: str | None = None,
@@ -95,9 +96,13 @@ def read_recording(
         description, label) or a 0-based index among the file's channels (the CSV time
         column not counted) written as a number. A single string is split at commas.
         All channels when omitted.
-    stream : str, optional
-        XDF only: the name of the stream to read. By default the numeric stream with the
-        most channels (ties: the most samples, then the first).
+    stream : str or sequence of str, optional
+        XDF only: the names of the numeric streams to read, in this order (every stream
+        of a name). By default every numeric stream with samples and a nominal rate
+        (irregular numeric streams only when there is no other). Several streams are
+        put on the grid of the fastest (:mod:`streamer.sources.merge`); channel names
+        are the labels, ``STREAM/LABEL`` where a label is not unique. Text streams are
+        always read, as :attr:`Recording.markers`.
     annotators : sequence of str, optional
         WFDB only: annotation file extensions to read beside the record. Default
         ``("atr",)`` when ``<record>.atr`` exists. Only beat annotations are kept, as
@@ -136,12 +141,16 @@ def read_recording(
     by the grid, with a warning; one that goes backwards is refused.
 
     EDF: only the selected channels are read; selected channels at different rates are
-    resampled to the highest of their rates by linear interpolation, with a warning.
+    put on the grid of the highest of their rates by linear interpolation
+    (:func:`~streamer.sources.merge.merge_batch`, as XDF streams are), with a warning.
+    EDF+ annotations become markers (source ``"annotations"``, at their onset; the
+    duration is not kept; empty or all-blank texts are skipped). XDF: timestamps are
+    the file's, with each stream's clock offsets applied and no dejittering (what a
+    live LSL inlet delivers); a marker's time is its stamp on the same clock.
     WFDB: each signal is read at its own rate (samples per frame times the frame rate);
     selected signals at different rates are put on the grid of the fastest of them by
     linear interpolation over their own sample times, with a warning (see
-    :func:`streamer.sources.wfdb_reader.on_fastest_grid`). XDF: timestamps are the file's, with its clock
-    offsets applied and no dejittering (what a live LSL inlet delivers).
+    :func:`streamer.sources.wfdb_reader.on_fastest_grid`).
     """
     given = str(path)
     path = Path(path)
@@ -167,6 +176,11 @@ def read_recording(
         raise InputError(f"{given}: not a file; give a recording file")
 
     is_csv = lower.endswith((".csv", ".csv.gz", ".tsv", ".tsv.gz"))
+    if isinstance(stream, str):
+        stream = [stream]
+    if stream and not lower.endswith((".xdf", ".xdfz", ".xdf.gz")):
+        raise InputError(f"{given}: --stream applies to XDF files only; this file has one "
+                         "set of channels (choose them with --channel)")
     if not is_csv and (time_column is not None or time_unit is not None):
         option = "--time-column" if time_column is not None else "--time-unit"
         raise InputError(f"{given}: {option} applies to CSV files only; this file states "
@@ -236,6 +250,7 @@ def select_channels(recording: Recording,
         timestamps=recording.timestamps,
         info=info,
         events=recording.events,
+        markers=recording.markers,
     )
 
 
@@ -677,11 +692,12 @@ def _read_wfdb(path: Path, given: str, annotators: Sequence[str] | None,
 
 
 def _read_edf(path: Path, given: str, channels: Sequence[str | int] | str | None) -> Recording:
-    """EDF/EDF+/BDF via pyedflib, only the selected channels.
+    """EDF/EDF+/BDF via pyedflib, only the selected channels, and the EDF+ annotations.
 
-    Selected channels at different rates are resampled to the highest of their rates by
-    linear interpolation (NaN past a slower channel's last sample), with a warning naming
-    them; select channels of one rate to avoid it.
+    Selected channels at different rates are put on the grid of the highest of their
+    rates by :func:`~streamer.sources.merge.merge_batch` (linear interpolation, NaN past
+    a slower channel's last sample), with a warning naming them; select channels of one
+    rate to avoid it.
     """
     import pyedflib
 
@@ -701,30 +717,46 @@ def _read_edf(path: Path, given: str, channels: Sequence[str | int] | str | None
         rates = [float(reader.getSampleFrequency(i)) for i in picked]
         units = [reader.getPhysicalDimension(i).strip() for i in picked]
         signals = [np.asarray(reader.readSignal(i), dtype=np.float64) for i in picked]
+        markers = _edf_markers(reader, given)
     finally:
         reader.close()
-    n_signals = len(picked)
 
+    channel_infos = tuple(ChannelInfo(label, None, unit) for label, unit in zip(labels, units))
     fs = max(rates)
-    n = max(round(len(s) * fs / r) for s, r in zip(signals, rates))
-    timestamps = np.arange(n, dtype=np.float64) / fs
-    samples = np.empty((n, n_signals), dtype=np.float64)
-    slower = []
-    for i, (signal, rate) in enumerate(zip(signals, rates)):
-        if rate == fs and len(signal) == n:
-            samples[:, i] = signal
-        else:
-            slower.append(f"{labels[i]} ({rate:g} Hz)")
-            own_times = np.arange(len(signal), dtype=np.float64) / rate
-            samples[:, i] = np.interp(timestamps, own_times, signal, left=np.nan, right=np.nan)
-    if slower:
+    if all(rate == fs and len(signal) == len(signals[0])
+           for signal, rate in zip(signals, rates)):
+        samples = np.column_stack(signals)
+        timestamps = np.arange(len(signals[0]), dtype=np.float64) / fs
+    else:
+        # Each signal is its own stream on its own time axis; merge_batch puts them on
+        # the grid of the fastest, as it does for XDF streams and LSL inlets.
+        parts = [(SourceInfo(f"signal {i}", rate, (info,)), signal[:, None],
+                  np.arange(len(signal), dtype=np.float64) / rate)
+                 for i, (info, signal, rate) in enumerate(zip(channel_infos, signals, rates))]
+        _, samples, timestamps = merge_batch(parts)
+        slower = [f"{label} ({rate:g} Hz)" for label, rate in zip(labels, rates) if rate != fs]
         logger.warning(
             "%s: resampled %s to %g Hz by linear interpolation; select channels of one rate "
             "to avoid it", given, ", ".join(slower), fs,
         )
-    channels = tuple(ChannelInfo(labels[i], None, units[i]) for i in range(n_signals))
-    info = SourceInfo(name=given, fs=fs, channels=channels, source_id=_source_id(path))
-    return Recording(samples, timestamps, info)
+    info = SourceInfo(name=given, fs=fs, channels=channel_infos, source_id=_source_id(path))
+    return Recording(np.ascontiguousarray(samples), timestamps, info, markers=markers)
+
+
+def _edf_markers(reader, given: str) -> tuple[Marker, ...]:
+    """EDF+ annotations as markers at their onsets (seconds from the file's start),
+    text unchanged, source ``"annotations"``. An annotation whose text is empty or
+    blank (a bare duration, or an EDF+ time-keeping entry) says nothing and is skipped;
+    durations are not kept. A plain EDF has none."""
+    try:
+        onsets, _, texts = reader.readAnnotations()
+    except Exception as exc:  # pyedflib raises several kinds on a damaged annotation signal
+        logger.warning("%s: EDF+ annotations could not be read (%s); reading the signals "
+                       "without them", given, exc)
+        return ()
+    markers = [Marker(float(onset), str(text), "annotations")
+               for onset, text in zip(onsets, texts) if str(text).strip()]
+    return tuple(sorted(markers, key=lambda m: m.time_s))
 
 
 def _check_edf_size(path: Path, given: str) -> None:
@@ -774,9 +806,15 @@ class _CollectLogs(logging.Handler):
         (self.errors if record.levelno >= logging.ERROR else self.warnings).append(first_line)
 
 
-def _read_xdf(path: Path, given: str, stream: str | None) -> Recording:
-    """XDF via pyxdf: one stream, its file timestamps (clock offsets applied, no
-    dejittering: the same stamps a live LSL inlet delivers)."""
+def _read_xdf(path: Path, given: str, streams: Sequence[str] | None) -> Recording:
+    """XDF via pyxdf: the chosen numeric streams on one time grid, and every text
+    stream's samples as markers.
+
+    Timestamps are the file's with each stream's clock offsets applied (pyxdf's linear
+    fit per stream) and no dejittering: the same stamps a live LSL inlet delivers.
+    Several numeric streams are put on the grid of the fastest by
+    :func:`~streamer.sources.merge.merge_recordings`; one stream keeps its own stamps.
+    """
     import pyxdf
 
     try:
@@ -807,7 +845,7 @@ def _read_xdf(path: Path, given: str, stream: str | None) -> Recording:
     pyxdf_logger.addHandler(collector)
     pyxdf_logger.propagate = False
     try:
-        streams, _ = pyxdf.load_xdf(io.BytesIO(raw), dejitter_timestamps=False)
+        loaded, _ = pyxdf.load_xdf(io.BytesIO(raw), dejitter_timestamps=False)
     except Exception as exc:  # pyxdf raises bare Exception/OSError/struct.error on damage
         raise InputError(
             f"{given}: cannot read as XDF ({type(exc).__name__}: {exc}); the file may be "
@@ -817,50 +855,93 @@ def _read_xdf(path: Path, given: str, stream: str | None) -> Recording:
         pyxdf_logger.removeHandler(collector)
         pyxdf_logger.propagate = saved_propagate
 
-    described = [_describe_stream(s) for s in streams]
-    if stream is not None:
-        matches = [s for s in streams if _info(s, "name") == stream]
-        if not matches:
-            raise InputError(
-                f"{given}: no stream named {stream!r}; streams are: "
-                f"{'; '.join(described) or 'none'}"
-            )
-        chosen = matches[0]
-        if not _is_numeric(chosen) or len(chosen["time_stamps"]) == 0:
-            raise InputError(
-                f"{given}: stream {stream!r} holds no numeric samples; pick another stream: "
-                f"{'; '.join(described)}"
-            )
-    else:
-        numeric = [s for s in streams if _is_numeric(s) and len(s["time_stamps"]) > 0]
-        if not numeric:
-            raise InputError(
-                f"{given}: no stream with numeric samples; streams are: "
-                f"{'; '.join(described) or 'none'}"
-            )
-        chosen = max(numeric, key=lambda s: (s["time_series"].shape[1], len(s["time_stamps"])))
-    name = _info(chosen, "name")
+    chosen = _choose_xdf_streams(loaded, given, streams)
     # pyxdf logs errors for damage it skipped, and warnings for its own timing
     # heuristics, e.g. "Segments and clock-segments differ" for every stream whenever
     # dejittering is off: those are only kept at debug level.
-    if collector.errors or "footer" not in chosen:
-        logger.warning(
-            "%s: XDF file looks truncated or damaged (%s); using the %d samples of stream "
-            "%r that could be read", given,
-            collector.errors[0] if collector.errors else "no stream footer",
-            len(chosen["time_stamps"]), name,
-        )
+    for s in chosen:
+        if collector.errors or "footer" not in s:
+            logger.warning(
+                "%s: XDF file looks truncated or damaged (%s); using the %d samples of "
+                "stream %r that could be read", given,
+                collector.errors[0] if collector.errors else "no stream footer",
+                len(s["time_stamps"]), _info(s, "name"),
+            )
     for message in collector.warnings:
         logger.debug("%s: pyxdf: %s", given, message)
 
-    samples = np.ascontiguousarray(np.asarray(chosen["time_series"], dtype=np.float64))
-    timestamps = np.asarray(chosen["time_stamps"], dtype=np.float64)
+    parts = [_xdf_stream_recording(s, given) for s in chosen]
+    markers = tuple(sorted((m for s in loaded if not _is_numeric(s)
+                            for m in _xdf_markers(s)), key=lambda m: m.time_s))
+    if len(parts) == 1:
+        one = parts[0]
+        info = SourceInfo(given, one.info.fs, one.info.channels, _source_id(path))
+        return Recording(one.samples, one.timestamps, info, markers=markers)
+    merged = merge_recordings(parts, name=given)
+    info = SourceInfo(given, merged.info.fs, merged.info.channels, _source_id(path))
+    return Recording(merged.samples, merged.timestamps, info, markers=markers)
+
+
+def _choose_xdf_streams(loaded: list, given: str, streams: Sequence[str] | None) -> list:
+    """The numeric streams to read: those named (in the order named; every stream of a
+    name), else every numeric stream with samples and a nominal rate (an irregular
+    one, e.g. event codes sent as numbers, would set the grid by its median step: it is
+    left out with a warning unless it is all there is)."""
+    described = "; ".join(_describe_stream(s) for s in loaded) or "none"
+    if streams:
+        chosen = []
+        for name in dict.fromkeys(streams):  # a name given twice counts once
+            matches = [s for s in loaded if _info(s, "name") == name]
+            if not matches:
+                raise InputError(f"{given}: no stream named {name!r}; streams are: {described}")
+            numeric = [s for s in matches if _is_numeric(s) and len(s["time_stamps"]) > 0]
+            if not numeric:
+                kind = ("text markers, which are always read"
+                        if not any(_is_numeric(s) for s in matches) else "no samples")
+                raise InputError(
+                    f"{given}: stream {name!r} holds no numeric samples ({kind}); --stream "
+                    f"chooses among the numeric streams: {described}"
+                )
+            chosen += numeric
+        return chosen
+    with_samples = []
+    for s in loaded:
+        if not _is_numeric(s):
+            continue
+        if len(s["time_stamps"]) == 0:
+            logger.warning("%s: stream %r has no samples; left out", given, _info(s, "name"))
+        else:
+            with_samples.append(s)
+    if not with_samples:
+        raise InputError(f"{given}: no stream with numeric samples; streams are: {described}")
+    regular = [s for s in with_samples if _nominal_rate(s) > 0]
+    if not regular:
+        return with_samples
+    for s in with_samples:
+        if _nominal_rate(s) <= 0:
+            logger.warning(
+                "%s: stream %r has no nominal rate (irregular samples); left out, name it "
+                "with --stream to read it", given, _info(s, "name"))
+    return regular
+
+
+def _nominal_rate(stream: dict) -> float:
+    try:
+        value = float(_info(stream, "nominal_srate") or 0.0)
+    except ValueError:
+        return 0.0
+    return value if math.isfinite(value) else 0.0
+
+
+def _xdf_stream_recording(stream: dict, given: str) -> Recording:
+    """One numeric stream as a recording named after the stream (its own stamps)."""
+    name = _info(stream, "name")
+    samples = np.ascontiguousarray(np.asarray(stream["time_series"], dtype=np.float64))
+    timestamps = np.asarray(stream["time_stamps"], dtype=np.float64)
     if np.any(np.diff(timestamps) < 0):
         logger.warning("%s: stream %r has timestamps that go backwards", given, name)
-    nominal = float(_info(chosen, "nominal_srate") or 0.0)
-    if nominal > 0:
-        fs = nominal
-    else:
+    fs = _nominal_rate(stream)
+    if fs <= 0:
         steps = np.diff(timestamps)
         steps = steps[steps > 0]
         if len(steps) == 0:
@@ -869,9 +950,26 @@ def _read_xdf(path: Path, given: str, stream: str | None) -> Recording:
                 "estimate one; nothing to replay"
             )
         fs = 1.0 / float(np.median(steps))
-    channels = _xdf_channels(chosen, samples.shape[1])
-    info = SourceInfo(name=given, fs=fs, channels=channels, source_id=_source_id(path))
-    return Recording(samples, timestamps, info)
+    channels = _xdf_channels(stream, samples.shape[1])
+    return Recording(samples, timestamps, SourceInfo(name, fs, channels))
+
+
+def _xdf_markers(stream: dict) -> list[Marker]:
+    """A text stream's samples as markers at their (clock-corrected) stamps, text
+    unchanged. Source: the stream's name, or ``STREAM/LABEL`` per channel when it has
+    several. Empty or all-blank values (a channel with nothing to say) are skipped."""
+    name = _info(stream, "name")
+    values = stream["time_series"]
+    stamps = np.asarray(stream["time_stamps"], dtype=np.float64)
+    n_channels = len(values[0]) if len(values) else 0
+    sources = ([name] if n_channels == 1 else
+               [f"{name}/{c.name}" for c in _xdf_channels(stream, n_channels)])
+    markers = []
+    for time_s, row in zip(stamps, values):
+        for source, text in zip(sources, row):
+            if isinstance(text, str) and text.strip():
+                markers.append(Marker(float(time_s), text, source))
+    return markers
 
 
 def _complete_xdf_chunks(raw: bytes) -> tuple[int, str]:

@@ -13,8 +13,10 @@ import pytest
 
 from streamer.errors import InputError
 from streamer.sources import wfdb_reader
+from streamer.sources.base import Marker
 from streamer.sources.files import read_recording
 from tests.reference import wfdb_plain
+from tests import xdf_writer
 
 DATA = Path(__file__).resolve().parents[2] / ".." / "shared" / "data"
 WFDB_DIR = DATA / "physionet_wfdb"
@@ -893,54 +895,10 @@ def test_edf_truncated_or_garbage_is_refused(tmp_path, rng):
 
 
 # ---------------------------------------------------------------------------- XDF
-# Files written here by hand following the XDF 1.0 specification (from memory): the
-# magic "XDF:", then chunks [NumLengthBytes][Length][Tag uint16][Content], Length
-# counting tag and content; tags 1 FileHeader, 2 StreamHeader, 3 Samples, 4 ClockOffset,
-# 6 StreamFooter; stream chunks start with a uint32 StreamId.
+# Files written byte by byte with tests/xdf_writer.py (its docstring gives the layout).
 
-
-def _varlen(n: int) -> bytes:
-    if n < 256:
-        return struct.pack("<BB", 1, n)
-    if n < 1 << 32:
-        return struct.pack("<BI", 4, n)
-    return struct.pack("<BQ", 8, n)
-
-
-def _chunk(tag: int, content: bytes) -> bytes:
-    return _varlen(len(content) + 2) + struct.pack("<H", tag) + content
-
-
-def _stream_header(stream_id: int, name: str, kind: str, fmt: str, srate: float,
-                   channels: list[tuple[str, str, str]]) -> bytes:
-    labels = "".join(f"<channel><label>{label}</label><type>{ctype}</type><unit>{unit}</unit>"
-                     f"</channel>" for label, ctype, unit in channels)
-    xml = (f'<?xml version="1.0"?><info><name>{name}</name><type>{kind}</type>'
-           f"<channel_count>{len(channels)}</channel_count><nominal_srate>{srate}"
-           f"</nominal_srate><channel_format>{fmt}</channel_format><created_at>0</created_at>"
-           f"<desc><channels>{labels}</channels></desc></info>")
-    return _chunk(2, struct.pack("<I", stream_id) + xml.encode())
-
-
-def _samples(stream_id: int, stamps, values, fmt: str) -> bytes:
-    body = struct.pack("<I", stream_id) + _varlen(len(values))
-    for stamp, row in zip(stamps, values):
-        body += b"\x00" if stamp is None else b"\x08" + struct.pack("<d", stamp)
-        if fmt == "string":
-            for cell in row:
-                raw = cell.encode()
-                body += _varlen(len(raw)) + raw
-        else:
-            body += np.asarray(row, dtype={"float32": "<f4", "double64": "<f8",
-                                           "int16": "<i2"}[fmt]).tobytes()
-    return _chunk(3, body)
-
-
-def _footer(stream_id: int, first: float, last: float, count: int) -> bytes:
-    xml = (f'<?xml version="1.0"?><info><first_timestamp>{first}</first_timestamp>'
-           f"<last_timestamp>{last}</last_timestamp><sample_count>{count}</sample_count>"
-           f"<clock_offsets></clock_offsets></info>")
-    return _chunk(6, struct.pack("<I", stream_id) + xml.encode())
+_chunk, _stream_header, _samples, _footer = (xdf_writer.chunk, xdf_writer.stream_header,
+                                             xdf_writer.samples_chunk, xdf_writer.footer)
 
 
 def write_xdf(path: Path, rng, clock_offset: float | None = None):
@@ -972,11 +930,11 @@ def write_xdf(path: Path, rng, clock_offset: float | None = None):
     return stamps, values
 
 
-def test_xdf_picks_the_numeric_stream_with_most_channels(tmp_path, rng, caplog):
+def test_xdf_one_stream_keeps_its_own_stamps_and_the_markers(tmp_path, rng, caplog):
     pytest.importorskip("pyxdf")
     stamps, values = write_xdf(tmp_path / "r.xdf", rng)
     with caplog.at_level(logging.WARNING):
-        rec = read_recording(tmp_path / "r.xdf")
+        rec = read_recording(tmp_path / "r.xdf", stream="Wrist")
     assert caplog.records == []  # an intact file reads without any warning
     assert rec.info.channel_names == ["green", "red", "accx"]
     assert [c.kind for c in rec.info.channels] == ["ppg", "ppg", "acc"]  # stream type PPG
@@ -986,6 +944,36 @@ def test_xdf_picks_the_numeric_stream_with_most_channels(tmp_path, rng, caplog):
     np.testing.assert_array_equal(rec.samples, values.astype(np.float64))
     np.testing.assert_allclose(rec.timestamps, stamps, rtol=0, atol=1e-12)
     np.testing.assert_array_equal(np.delete(rec.timestamps, 101), np.delete(stamps, 101))
+    # The text stream is read whichever numeric streams are chosen.
+    assert rec.markers == (Marker(1000.5, "start", "Markers"),)
+
+
+def test_xdf_every_numeric_stream_by_default_on_the_fastest_grid(tmp_path, rng, caplog):
+    pytest.importorskip("pyxdf")
+    stamps, values = write_xdf(tmp_path / "r.xdf", rng)
+    with caplog.at_level(logging.WARNING):
+        rec = read_recording(tmp_path / "r.xdf")
+    assert caplog.records == []
+    assert rec.info.channel_names == ["temp", "green", "red", "accx"]  # file order
+    assert [c.kind for c in rec.info.channels] == [None, "ppg", "ppg", "acc"]
+    assert rec.info.fs == 100.0 and rec.info.name == str(tmp_path / "r.xdf")
+    assert rec.info.source_id == "file:r.xdf"
+    # The grid of the fastest stream from its first stamp; each stream read there by
+    # linear interpolation (numpy's interp is the reference), the 1 Hz stream NaN outside
+    # its samples (1000.0 to 1002.0 s).
+    grid = stamps[0] + np.arange(len(rec.timestamps)) / 100.0
+    np.testing.assert_allclose(rec.timestamps, grid, rtol=0, atol=1e-9)
+    assert rec.timestamps[-1] <= stamps[-1] < rec.timestamps[-1] + 0.01
+    for c in range(3):
+        np.testing.assert_allclose(rec.samples[:, 1 + c],
+                                   np.interp(grid, stamps, values[:, c].astype(np.float64)),
+                                   rtol=1e-9, atol=1e-6)
+    inside = (grid >= 1000.0) & (grid <= 1002.0)
+    np.testing.assert_allclose(rec.samples[inside, 0],
+                               np.interp(grid[inside], [1000.0, 1001.0, 1002.0],
+                                         [36.5, 36.6, 36.7]), rtol=1e-12)
+    assert np.isnan(rec.samples[~inside, 0]).all() and (~inside).sum() > 0
+    assert rec.markers == (Marker(1000.5, "start", "Markers"),)
 
 
 def test_xdf_stream_by_name_and_unknown_stream(tmp_path, rng):
@@ -995,18 +983,26 @@ def test_xdf_stream_by_name_and_unknown_stream(tmp_path, rng):
     np.testing.assert_array_equal(rec.samples[:, 0], [36.5, 36.6, 36.7])
     np.testing.assert_array_equal(rec.timestamps, [1000.0, 1001.0, 1002.0])
     assert rec.info.channel_names == ["temp"] and rec.info.channels[0].kind is None
+    streams = (r"Markers \(type Markers, 1 x string, 1 samples\); Temperature \(type Temp, "
+               r"1 x double64, 3 samples\); Wrist \(type PPG, 3 x float32, 400 samples\)$")
     with pytest.raises(InputError, match=r"r\.xdf: no stream named 'EEG'; streams are: "
-                                         r"Markers \(type Markers, 1 x string, 1 samples\); "
-                                         r"Temperature"):
+                                         + streams):
         read_recording(tmp_path / "r.xdf", stream="EEG")
-    with pytest.raises(InputError, match=r"stream 'Markers' holds no numeric samples"):
+    with pytest.raises(InputError, match=r"r\.xdf: no stream named 'EEG'; streams are: "):
+        read_recording(tmp_path / "r.xdf", stream=["Wrist", "EEG"])
+    with pytest.raises(InputError, match=r"r\.xdf: stream 'Markers' holds no numeric samples "
+                                         r"\(text markers, which are always read\); --stream "
+                                         r"chooses among the numeric streams: " + streams):
         read_recording(tmp_path / "r.xdf", stream="Markers")
+    # Several streams in the order named; a name given twice counts once.
+    rec = read_recording(tmp_path / "r.xdf", stream=["Wrist", "Temperature", "Wrist"])
+    assert rec.info.channel_names == ["green", "red", "accx", "temp"]
 
 
 def test_xdf_clock_offsets_are_applied(tmp_path, rng):
     pytest.importorskip("pyxdf")
     stamps, _ = write_xdf(tmp_path / "r.xdf", rng, clock_offset=0.25)
-    rec = read_recording(tmp_path / "r.xdf")
+    rec = read_recording(tmp_path / "r.xdf", stream="Wrist")
     np.testing.assert_allclose(rec.timestamps, stamps + 0.25, rtol=0, atol=1e-9)
 
 
@@ -1019,7 +1015,7 @@ def test_xdf_truncated_file_keeps_complete_chunks_with_a_warning(tmp_path, rng, 
     cut = last_chunk + 200
     (tmp_path / "cut.xdf").write_bytes(raw[:cut])
     with caplog.at_level(logging.WARNING, logger="ridgewatch"):
-        rec = read_recording(tmp_path / "cut.xdf")
+        rec = read_recording(tmp_path / "cut.xdf", stream="Wrist")
     np.testing.assert_array_equal(rec.samples, values[:300].astype(np.float64))
     np.testing.assert_array_equal(rec.timestamps[:100], stamps[:100])
     assert f"cut.xdf: XDF file ends inside a chunk at byte {last_chunk} of {cut}" in caplog.text
@@ -1033,10 +1029,18 @@ def test_xdf_cut_anywhere_gives_a_clean_prefix_or_an_input_error(tmp_path, rng):
     raw = (tmp_path / "r.xdf").read_bytes()
     for cut in range(4, len(raw), 97):
         (tmp_path / "cut.xdf").write_bytes(raw[:cut])
-        try:
-            rec = read_recording(tmp_path / "cut.xdf")
+        try:  # every numeric stream: a recording or one clear line, nothing else
+            merged = read_recording(tmp_path / "cut.xdf")
+            assert len(merged.timestamps) > 0
         except InputError:
-            continue
+            pass
+        try:
+            rec = read_recording(tmp_path / "cut.xdf", stream="Wrist")
+        except InputError:
+            try:
+                rec = read_recording(tmp_path / "cut.xdf", stream="Temperature")
+            except InputError:
+                continue
         # Whatever is returned is a prefix of the PPG stream or of the 1-channel stream.
         n = len(rec.timestamps)
         if rec.info.channel_names == ["green", "red", "accx"]:
@@ -1050,14 +1054,14 @@ def test_xdfz_and_malformed_chunk(tmp_path, rng, caplog):
     stamps, values = write_xdf(tmp_path / "r.xdf", rng)
     raw = (tmp_path / "r.xdf").read_bytes()
     (tmp_path / "r.xdfz").write_bytes(gzip.compress(raw))
-    rec = read_recording(tmp_path / "r.xdfz")
+    rec = read_recording(tmp_path / "r.xdfz", stream="Wrist")
     np.testing.assert_array_equal(rec.samples, values.astype(np.float64))
     # A NumLengthBytes of 3 is not allowed: reading stops before that chunk.
     last_chunk = raw.rfind(b"\x03\x00\x03\x00\x00\x00") - 5
     broken = raw[:last_chunk] + b"\x03" + raw[last_chunk + 1:]
     (tmp_path / "broken.xdf").write_bytes(broken)
     with caplog.at_level(logging.WARNING, logger="ridgewatch"):
-        rec = read_recording(tmp_path / "broken.xdf")
+        rec = read_recording(tmp_path / "broken.xdf", stream="Wrist")
     assert f"XDF file has a malformed chunk at byte {last_chunk}" in caplog.text
     np.testing.assert_array_equal(rec.samples, values[:300].astype(np.float64))
 

@@ -289,7 +289,8 @@ def best_lag(t, a, b, max_lag_s: float, step_s: float | None = None) -> float:
     gap = step_s * 1.5
     _, ga = align(grid, grid, tt, aa, gap)
     _, gb = align(grid, grid, tt, bb, gap)
-    max_shift = int(math.floor(max_lag_s / step_s + 1e-9))
+    # A shift as long as the series leaves no overlap (and would wrap the slices below).
+    max_shift = min(int(math.floor(max_lag_s / step_s + 1e-9)), n_grid - 1)
     shifts = np.arange(-max_shift, max_shift + 1)
     # Try shifts by increasing |s| so that a strict '>' keeps the smallest on ties.
     order = shifts[np.argsort(np.abs(shifts), kind="stable")]

@@ -647,7 +647,9 @@ def cmd_compare(args) -> int:
     phases = phases_of(series, table)
     if args.report:
         from streamer.report import write_report
-        if hasattr(other, "table"):
+        if hasattr(other, "table") and args.against_source is None:
+            # The other log's same source, drawn beside the reference (with
+            # --against-source the reference already is that log's curve).
             add_overlay(series, Path(args.against).name, other.table)
         paths = write_report(results, series, args.report,
                              f"ridgewatch comparison: {Path(args.log).name} vs "

@@ -552,14 +552,15 @@ def compare(log_table: LogTable, other: Other, quantity: str | None = None,
 
 STEADY = {
     # Band: the EC13-style absolute heart-rate tolerance (ANSI/AAMI EC13, cited from
-    # memory): a rate that stays within the accuracy asked of a monitor counts as
-    # steady. Hold: 30 s, about four independent 8-s analysis windows, so one window's
-    # plateau during a transition does not count (common practice for "steady state"
-    # in exercise testing is to wait for a stable stretch of this order; our choice).
+    # memory): a rate that stays within the accuracy asked of a monitor counts as steady.
+    # Hold: 30 s, the stretch over which a pulse is counted by hand (30 s, doubled;
+    # common practice), and about four independent 8-s analysis windows, so a one-window
+    # plateau during a transition does not count.
     "hr": (5.0, 30.0),
     # Band: the +-2 breaths/min tolerance of breathing-rate studies (common practice).
-    # Hold: 60 s, about two independent 32-s breathing windows (our choice, a priori).
-    "rr": (2.0, 60.0),
+    # Hold: 30 s, the stretch over which breaths are counted by hand (30 s, doubled;
+    # common practice): 6-10 breaths at resting rates.
+    "rr": (2.0, 30.0),
 }
 """(band per minute, hold s) of :func:`estimators.metrics.time_to_steady` per quantity."""
 

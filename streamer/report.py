@@ -113,10 +113,11 @@ def _save(fig, path: Path) -> None:
         raise InputError(f"cannot write the figure {path}: {exc.strerror}") from None
 
 
-def plot_rate(series, path: Path) -> None:
+def plot_rate(series, path: Path, phase_rows: list[dict] | None = None) -> None:
     """Rate over time: the estimate with its confidence band (see :data:`BAND_FRACTION`),
     the reference, the reference's instantaneous rate when it is events, and any extra
-    curves of the series."""
+    curves of the series; with ``phase_rows``, a labelled vertical line at the start of
+    each phase that begins at a marker."""
     fig = _new_figure()
     ax = fig.add_subplot(1, 1, 1)
     t, est = series.time_s, series.estimate
@@ -136,12 +137,24 @@ def plot_rate(series, path: Path) -> None:
     colors = ("tab:orange", "tab:green", "tab:purple", "tab:brown")
     for i, (label, t_extra, rate_extra) in enumerate(series.extra_curves):
         ax.plot(t_extra, rate_extra, color=colors[i % len(colors)], linewidth=1.0, label=label)
+    for row in phase_rows or []:
+        if row["phase"] != _first_phase_label() or row.get("marker_source"):
+            ax.axvline(row["start_s"], color="0.4", linestyle=":", linewidth=1.0)
+            ax.annotate(str(row["phase"]), (row["start_s"], 1.0), xycoords=("data", "axes fraction"),
+                        xytext=(2, -2), textcoords="offset points", rotation=90, va="top",
+                        fontsize="x-small", color="0.3")
     ax.set_xlabel("time (s)")
     ax.set_ylabel(f"{series.quantity} ({UNITS.get(series.quantity, 'per min')})")
     ax.set_title(f"{series.quantity} / {series.source} over time")
     ax.grid(True, alpha=0.3)
     ax.legend(loc="best", fontsize="small")
     _save(fig, path)
+
+
+def _first_phase_label() -> str:
+    from streamer.compare import FIRST_PHASE
+
+    return FIRST_PHASE
 
 
 def plot_bland_altman(series, result: dict, path: Path) -> None:
@@ -374,8 +387,9 @@ def write_report(results: list[dict], series, out_dir, title: str,
         used.add(stem)
         drawn = []
         for name, caption, draw in (
-            ("rate", "rate over time (band: wider = less confident)",
-             lambda p: plot_rate(paired, p)),
+            ("rate", "rate over time (band: wider = less confident"
+                     + ("; dotted lines: markers)" if phase_rows else ")"),
+             lambda p: plot_rate(paired, p, phase_rows)),
             ("bland_altman", "Bland-Altman plot", lambda p: plot_bland_altman(paired, result, p)),
             ("error_vs_confidence", "|error| vs confidence",
              lambda p: plot_error_vs_confidence(paired, result, p)),

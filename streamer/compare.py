@@ -16,6 +16,11 @@ The reference (the "other" side) is loaded by :func:`load_other`, which recognis
 :func:`summarize` computes every metric of :mod:`estimators.metrics` for one pairing and
 :func:`compare` does both. Every user-caused problem raises :class:`InputError` naming the
 file and what to do.
+
+Phases: :func:`split_phases` cuts a session at its markers (before the first marker, then
+from each marker to the next); :func:`phase_rows` gives per phase the duration, mean
+rate, agreement (with a reference) and time to a steady rate (:data:`STEADY`);
+:func:`phases_of` does it for paired series, :func:`log_phases` for a log alone.
 """
 
 from __future__ import annotations

@@ -3,7 +3,8 @@
 :func:`write_report` takes the result dicts of :func:`streamer.compare.summarize` and the
 :class:`streamer.compare.PairedSeries` they came from, and writes into a folder:
 
-* ``summary.md`` - one metrics table and one calibration table per (quantity, source);
+* ``summary.md`` - one metrics table and one calibration table per (quantity, source),
+  and a phase table when the log has markers (also in ``phases.csv``);
 * ``summary.html`` - the same content in one self-contained file (figures embedded);
 * per (quantity, source) three PNG figures: rate over time, Bland-Altman plot, and
   ``|error|`` against confidence.

@@ -289,7 +289,8 @@ def best_lag(t, a, b, max_lag_s: float, step_s: float | None = None) -> float:
     gap = step_s * 1.5
     _, ga = align(grid, grid, tt, aa, gap)
     _, gb = align(grid, grid, tt, bb, gap)
-    max_shift = int(math.floor(max_lag_s / step_s + 1e-9))
+    # A shift as long as the series leaves no overlap (and would wrap the slices below).
+    max_shift = min(int(math.floor(max_lag_s / step_s + 1e-9)), n_grid - 1)
     shifts = np.arange(-max_shift, max_shift + 1)
     # Try shifts by increasing |s| so that a strict '>' keeps the smallest on ties.
     order = shifts[np.argsort(np.abs(shifts), kind="stable")]
@@ -577,3 +578,80 @@ def calibration(errors, confidence, bins=5, reference=None,
             median_abs[i] = float(np.median(np.abs(err[member])))
             fraction[i] = float(np.mean(inside[member]))
     return Calibration(edges, count, median_abs, fraction)
+
+
+# ---------------------------------------------------------------------------- phases
+
+
+def time_to_steady(time_s, rate, start_s: float, band: float, hold_s: float) -> float:
+    """Time from ``start_s`` until the rate settles, or NaN when it never does.
+
+    Parameters
+    ----------
+    time_s : array_like, shape (n,)
+        Estimate times (s), increasing; usually the estimates of one phase, from a marker
+        to the next.
+    rate : array_like, shape (n,)
+        Rates at those times; NaN (no estimate) rows are left out.
+    start_s : float
+        The time the phase starts (the marker), from which the result is counted.
+    band : float
+        Half-width (>= 0, in the rate's units) of the band around the settled rate.
+    hold_s : float
+        How long (>= 0, seconds) the rate must stay in the band, at least.
+
+    Returns
+    -------
+    float
+        ``t_i - start_s`` for the earliest estimate ``i`` (at or after ``start_s``) that
+        starts a steady stretch; NaN when there is none.
+
+    Raises
+    ------
+    ParameterError
+        On mismatched shapes or a negative or non-finite ``band`` or ``hold_s``.
+
+    Notes
+    -----
+    With the finite estimates at or after ``start_s``, ``(t_1, r_1) ... (t_n, r_n)``,
+    estimate ``i`` starts a steady stretch when the rest of the phase lasts long enough
+    and never leaves the band around its own median:
+
+    .. math:: t_n - t_i \\ge \\text{hold}, \\qquad
+              |r_j - \\operatorname{median}(r_i, \\dots, r_n)| \\le \\text{band}
+              \\quad \\text{for all } j \\ge i.
+
+    This is the settling time of a step response (the time after which the response
+    stays within a band around its final value), with the final value read as the median
+    of everything that follows, so one late outlier does not move it.
+
+    Examples
+    --------
+    >>> t = [0.0, 1.0, 2.0, 3.0, 4.0, 5.0]
+    >>> time_to_steady(t, [60, 70, 80, 81, 79, 80], 0.0, band=2.0, hold_s=3.0)
+    2.0
+    >>> time_to_steady(t, [60, 70, 80, 81, 79, 80], 0.0, band=2.0, hold_s=4.0)
+    nan
+    """
+    t = _as_1d("time_s", time_s)
+    r = _as_1d("rate", rate)
+    if t.shape != r.shape:
+        raise ParameterError(f"time_s {t.shape} and rate {r.shape} must match")
+    if not (math.isfinite(band) and band >= 0):
+        raise ParameterError(f"{band=} must be finite and >= 0")
+    if not (math.isfinite(hold_s) and hold_s >= 0):
+        raise ParameterError(f"{hold_s=} must be finite and >= 0")
+    keep = np.isfinite(t) & np.isfinite(r) & (t >= start_s)
+    t, r = t[keep], r[keep]
+    if t.size == 0:
+        return math.nan
+    # The latest stretch end is fixed (the phase's last estimate); scan candidate starts
+    # from the earliest and stop at the first steady one. A phase holds a few thousand
+    # hops at most, so the quadratic worst case is a few milliseconds.
+    for i in range(t.size):
+        if t[-1] - t[i] < hold_s:
+            break
+        rest = r[i:]
+        if np.all(np.abs(rest - np.median(rest)) <= band):
+            return float(t[i] - start_s)
+    return math.nan

@@ -29,9 +29,13 @@ The recordings and ``out_dir`` must be on storage every worker can reach.
 
 from __future__ import annotations
 
+import fnmatch
+import math
 import os
+import re
+import string
 from concurrent.futures import ProcessPoolExecutor, as_completed
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from streamer.errors import InputError
@@ -59,6 +63,15 @@ class BatchOptions:
     time_column: str | None = None
     time_unit: str | None = None
     """The time column of the CSV recordings, and its unit (other formats state theirs)."""
+    reference_patterns: tuple = ()
+    """``[hr:|rr:]TEMPLATE`` strings (:func:`parse_reference_pattern`); when given they
+    replace ``reference_suffixes`` (see :func:`find_references`)."""
+    recording_pattern: str | None = None
+    """The glob the recordings were found with; its one ``*`` is ``{id}`` in a template."""
+    against_fs: float | None = None
+    """Sampling rate (Hz) of sample numbers in the reference files (e.g. BIDMC breaths)."""
+    against_column: str | None = None
+    """The reference files' column to use (rate column, or sample-number column)."""
     extra: dict = field(default_factory=dict)
 
 
@@ -100,11 +113,110 @@ def log_paths(path: Path, out_dir) -> tuple[Path, Path]:
     return out / "live.csv", out / "offline.csv"
 
 
-def find_references(path: Path, suffixes) -> list[tuple[Path, str | None]]:
-    """Every reference beside ``path`` with the quantity it holds."""
+PLACEHOLDERS = ("stem", "id")
+"""Names a reference template may use: ``{stem}`` is the recording's name without its
+format's extension (``bidmc_01_Signals`` of ``bidmc_01_Signals.csv.gz``); ``{id}`` is
+the part of its name the one ``*`` of the recording pattern matched (``01`` of it with
+``--pattern 'bidmc_*_Signals.csv.gz'``)."""
+
+
+def parse_reference_pattern(text: str, recording_pattern: str | None = None
+                            ) -> tuple[str, str | None]:
+    """``[hr:|rr:]TEMPLATE`` -> ``(template, quantity)``, checked.
+
+    The template names a reference file beside each recording through
+    :data:`PLACEHOLDERS` and may hold glob wildcards (``*``, ``?``); the prefix says
+    which quantity the files hold (without it: whatever the file says).
+
+    Raises
+    ------
+    InputError
+        One line naming the option and what is wrong.
+
+    Examples
+    --------
+    >>> parse_reference_pattern("rr:bidmc_{id}_Breaths.csv", "bidmc_*_Signals.csv.gz")
+    ('bidmc_{id}_Breaths.csv', 'rr')
+    """
+    quantity = None
+    template = text
+    for prefix in ("hr:", "rr:"):
+        if text.startswith(prefix):
+            quantity, template = prefix[:2], text[len(prefix):]
+    try:
+        names = [name for _, name, _, _ in string.Formatter().parse(template) if name is not None]
+    except ValueError as exc:
+        raise InputError(f"--reference-pattern '{text}': {exc}; write placeholders as "
+                         "{stem} or {id}") from None
+    unknown = [n for n in names if n not in PLACEHOLDERS]
+    if unknown:
+        raise InputError(f"--reference-pattern '{text}': unknown placeholder {{{unknown[0]}}}; "
+                         "use {stem} or {id}")
+    if not names:
+        raise InputError(f"--reference-pattern '{text}' does not name the recording; put "
+                         "{stem} or {id} in it (e.g. '{stem}_ref.csv')")
+    if "/" in template or os.sep in template:
+        raise InputError(f"--reference-pattern '{text}': give a file name, without a folder "
+                         "(references sit beside their recording)")
+    if "id" in names and (recording_pattern is None or recording_pattern.count("*") != 1):
+        raise InputError(f"--reference-pattern '{text}' uses {{id}}, which needs --pattern "
+                         "with exactly one '*' (e.g. --pattern 'bidmc_*_Signals.csv.gz')")
+    return template, quantity
+
+
+def recording_id(path: Path, recording_pattern: str | None) -> str | None:
+    """What the one ``*`` of ``recording_pattern`` matched in ``path``'s name."""
+    if recording_pattern is None or recording_pattern.count("*") != 1:
+        return None
+    head, tail = recording_pattern.split("*")
+    regex = fnmatch.translate(head)[4:-3] + "(.*)" + fnmatch.translate(tail)[4:-3]
+    found = re.fullmatch(regex, path.name, flags=re.DOTALL)
+    return found.group(1) if found else None
+
+
+def find_references(path: Path, suffixes, patterns=(), recording_pattern: str | None = None
+                    ) -> list[tuple[Path, str | None]]:
+    """Every reference beside ``path`` with the quantity it holds.
+
+    With ``patterns`` (``[hr:|rr:]TEMPLATE`` strings, :func:`parse_reference_pattern`):
+    the files their templates name, wildcards expanded, sorted; the recording itself
+    and estimate logs are never references. Without: ``<stem><suffix>`` for each of
+    ``suffixes``.
+
+    Raises
+    ------
+    InputError
+        On a malformed pattern.
+    """
     stem = recording_stem(path)
-    return [(path.with_name(stem + suffix), quantity) for suffix, quantity in suffixes
-            if path.with_name(stem + suffix).exists()]
+    if not patterns:
+        return [(path.with_name(stem + suffix), quantity) for suffix, quantity in suffixes
+                if path.with_name(stem + suffix).exists()]
+    ident = recording_id(path, recording_pattern)
+    found = []
+    for text in patterns:
+        template, quantity = parse_reference_pattern(text, recording_pattern)
+        if "{id}" in template and ident is None:
+            continue
+        # Placeholders are filled with escaped text, so a '[' in a name stays literal.
+        name = template.format(stem=glob_escape(stem), id=glob_escape(ident or ""))
+        for match in sorted(path.parent.glob(name)):
+            if match != path and match.is_file() and not _is_log(match):
+                found.append((match, quantity))
+    return found
+
+
+def glob_escape(text: str) -> str:
+    """``text`` with glob wildcards made literal (``[*]``), as :func:`glob.escape`."""
+    return re.sub(r"([*?[])", r"[\1]", text)
+
+
+def _is_log(path: Path) -> bool:
+    try:
+        with open(path, "rb") as fh:
+            return fh.read(25).startswith(b"# ridgewatch estimate log")
+    except OSError:
+        return False
 
 
 def process_recording(path, options: BatchOptions) -> list[dict]:
@@ -119,7 +231,7 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
     from estimators.monitor import offline_estimates
     from streamer.channels import select
     from streamer.runner import Runner
-    from streamer.sinks.estimate_log import EstimateLog, read_log
+    from streamer.sinks.estimate_log import EstimateLog, read_log, write_offline_rows
     from streamer.sources.files import read_recording, recording_files
     from streamer.sources.replay import RecordingSource
 
@@ -154,26 +266,29 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
         with EstimateLog(offline_path, "offline", str(path), mapping,
                          dict(config, mode="offline"), if_exists=if_exists,
                          inputs=inputs) as off:
-            for est in estimates:
-                off.write(est)
-        references = find_references(path, options.reference_suffixes)
+            write_offline_rows(off, estimates, recording.markers, math.nan)
+        references = find_references(path, options.reference_suffixes,
+                                     options.reference_patterns, options.recording_pattern)
         if not references:
-            return [{"recording": stem, "run": "live", "reference": "",
-                     "note": "no reference beside the recording"}]
+            return [{"recording": stem, "note": "no reference found"}]
         live, offline = read_log(live_path), read_log(offline_path)
         rows = []
         for reference, quantity in references:
             rows.extend(_compare_runs(stem, out, reference, quantity, live, offline,
-                                      options.report))
+                                      options))
         return rows
     except InputError as exc:
         return [{"recording": stem, "error": str(exc)}]
 
 
-def _compare_runs(stem, out, reference, quantity, live, offline, report: bool) -> list[dict]:
-    from streamer.compare import add_overlay, load_other, pair_up, summarize
+def _compare_runs(stem, out, reference, quantity, live, offline, options) -> list[dict]:
+    from streamer.compare import add_overlay, load_other, pair_up, phases_of, summarize
 
-    other = load_other(reference)
+    report = options.report
+    try:
+        other = load_other(reference, fs=options.against_fs, column=options.against_column)
+    except InputError as exc:
+        return [{"recording": stem, "reference": Path(reference).name, "error": str(exc)}]
     rows = []
     for run, table in (("live", live), ("offline", offline)):
         windows = {q: float(table.header["config"]["profile"][q]["window_s"]) for q in ("hr", "rr")}
@@ -186,14 +301,20 @@ def _compare_runs(stem, out, reference, quantity, live, offline, report: bool) -
         if report and run == "live":
             from streamer.report import write_report
             add_overlay(series, "offline", offline)
-            write_report(results, series, out / f"report-{quantity or 'rate'}",
-                         f"{stem}: live vs {Path(reference).name}")
+            # Named after the reference file when patterns may find several per quantity.
+            folder = (f"report-{Path(reference).name.split('.')[0]}"
+                      if options.reference_patterns else f"report-{quantity or 'rate'}")
+            write_report(results, series, out / folder,
+                         f"{stem}: live vs {Path(reference).name}", phases_of(series, table))
         for r in results:
-            rows.append({"recording": stem, "run": run, "quantity": r["quantity"],
-                         "source": r["source"], "reference": Path(reference).name,
-                         "n": r["n"], "mae": r["mae"], "rmse": r["rmse"], "bias": r["bias"],
-                         "within_tolerance": r["within_tolerance"], "coverage": r["coverage"],
-                         "delay_median_s": r["delay_median_s"]})
+            row = {"recording": stem, "run": run, "quantity": r["quantity"],
+                   "source": r["source"], "reference": Path(reference).name,
+                   "n": r["n"], "mae": r["mae"], "rmse": r["rmse"], "bias": r["bias"],
+                   "within_tolerance": r["within_tolerance"], "coverage": r["coverage"]}
+            if run == "live":
+                # An offline run sees the whole record at once: its delay means nothing.
+                row["delay_median_s"] = r["delay_median_s"]
+            rows.append(row)
     return rows
 
 
@@ -204,6 +325,19 @@ def run_batch(folder, options: BatchOptions, pattern: str | None = None, jobs: i
     from streamer.report import write_batch_summary
 
     recordings = find_recordings(folder, pattern)
+    if options.reference_patterns:
+        options = replace(options, recording_pattern=pattern)
+        for text in options.reference_patterns:  # one line for a bad pattern, before any work
+            parse_reference_pattern(text, pattern)
+    # A file that is the reference of another recording is not a recording itself.
+    references = {ref for p in recordings
+                  for ref, _ in find_references(p, options.reference_suffixes,
+                                                options.reference_patterns,
+                                                options.recording_pattern)}
+    recordings = [p for p in recordings if p not in references]
+    if not recordings:
+        raise InputError(f"{folder}: no recordings found, only reference files; choose the "
+                         "recordings with --pattern")
     out_dir = Path(options.out_dir)
     if out_dir.exists() and not out_dir.is_dir():
         raise InputError(f"--out {out_dir}: is a file, not a folder; give a folder for the "
@@ -236,5 +370,13 @@ def run_batch(folder, options: BatchOptions, pattern: str | None = None, jobs: i
     order = {recording_stem(p): i for i, p in enumerate(recordings)}
     rows.sort(key=lambda r: (order.get(r["recording"], 0), r.get("run", ""),
                              r.get("quantity", ""), r.get("source", "")))
-    written = write_batch_summary(rows, options.out_dir)
+    # A recording without a reference has no figures: it is named below the table
+    # rather than given a row of blanks.
+    unreferenced = [r["recording"] for r in rows if r.get("note") == "no reference found"]
+    looked_for = (", ".join(options.reference_patterns) if options.reference_patterns else
+                  ", ".join("<name>" + s for s, _ in options.reference_suffixes))
+    notes = ([f"No reference found (looked for {looked_for}) for: {', '.join(unreferenced)}."]
+             if unreferenced else [])
+    table = [r for r in rows if r.get("note") != "no reference found"]
+    written = write_batch_summary(table, options.out_dir, notes=notes)
     return rows, written

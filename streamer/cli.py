@@ -193,15 +193,32 @@ def build_parser() -> argparse.ArgumentParser:
                    help="column of OTHER to use (rate column, or sample-number column)")
     p.add_argument("--quantity", choices=("hr", "rr"), help="only this quantity")
     p.add_argument("--source", help="only this source (channel name or 'fused')")
-    p.add_argument("--report", metavar="DIR", help="write a report folder (Markdown, HTML, PNG)")
+    p.add_argument("--against-source", metavar="SOURCE",
+                   help="when OTHER is an estimate log: its source to compare with (default "
+                        "the same source), e.g. --source PPG --against-source ECG")
+    p.add_argument("--report", metavar="DIR", help="write a report folder (Markdown, HTML, "
+                   "PNG; per-phase tables and phases.csv when the log has markers)")
     p.add_argument("-q", "--quiet", action="store_true")
 
     p = sub.add_parser("batch", help="live and offline runs, compared with references, over "
                                      "a folder of recordings")
     p.add_argument("folder", help="folder of recordings; a reference beside each one "
-                                  "(<name>_beats.csv, <name>_breaths.csv, <name>.atr) is used")
+                                  "(<name>_beats.csv, <name>_breaths.csv, <name>.atr, or "
+                                  "as --reference-pattern names it) is used")
     p.add_argument("--out", required=True, metavar="DIR", help="where logs and reports go")
-    p.add_argument("--pattern", help="file pattern, e.g. '*.csv.gz' (default: every format)")
+    p.add_argument("--pattern", help="file pattern, e.g. '*.csv.gz' (default: every format); "
+                                     "its one '*' is {id} in --reference-pattern")
+    p.add_argument("--reference-pattern", action="append", metavar="[hr:|rr:]TEMPLATE",
+                   help="name of each recording's reference file: {stem} is the recording's "
+                        "name without its extension, {id} what the '*' of --pattern matched; "
+                        "wildcards allowed; an hr: or rr: prefix says what it holds; "
+                        "repeatable; replaces the default names. E.g. "
+                        "--pattern 'bidmc_*_Signals.csv.gz' "
+                        "--reference-pattern 'rr:bidmc_{id}_Breaths.csv'")
+    p.add_argument("--against-fs", type=_rate_hz, metavar="HZ",
+                   help="sampling rate of sample numbers in the reference files")
+    p.add_argument("--against-column", metavar="NAME",
+                   help="column of the reference files to use (rate or sample-number column)")
     p.add_argument("--channel", action="append", metavar="NAME=KIND")
     p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES))
     _csv_time(p)
@@ -605,7 +622,25 @@ def cmd_offline(args) -> int:
     if not args.quiet:
         print(f"offline: {len(estimates)} estimates over {recording.duration_s:.1f} s "
               f"in {elapsed:.1f} s; log {args.log}", file=sys.stderr)
+    _print_log_phases(args.log, recording.markers)
     return 0
+
+
+def _print_log_phases(log_path, markers) -> None:
+    """The phase table of a written log on stdout, one block per (quantity, source);
+    nothing when there are no markers. It goes to stdout (the progress line goes to
+    stderr) so that ``> phases.txt`` keeps it, and it is printed even with -q."""
+    from streamer.compare import log_phases
+    from streamer.report import format_phase_table, steady_note
+    from streamer.sinks.estimate_log import read_log
+
+    if not markers:
+        return
+    phases = log_phases(read_log(log_path), list(markers))
+    for (quantity, source), rows in phases.items():
+        print(format_phase_table(rows))
+    for quantity in dict.fromkeys(q for q, _ in phases):
+        print(steady_note(quantity))
 
 
 def _log_windows(table) -> dict | None:
@@ -621,25 +656,40 @@ def cmd_compare(args) -> int:
     from streamer.compare import add_overlay, load_other, pair_up, summarize
     from streamer.sinks.estimate_log import read_log
 
+    from streamer.compare import phases_of
+    from streamer.report import format_phase_table, steady_note
+
     table = read_log(args.log)
     other = load_other(args.against, fs=args.against_fs, column=args.against_column)
-    series = pair_up(table, other, args.quantity, args.source, _log_windows(table))
+    series = pair_up(table, other, args.quantity, args.source, _log_windows(table),
+                     other_source=args.against_source, log_name=args.log)
     results = [summarize(s) for s in series]
+    phases = phases_of(series, table)
     if args.report:
         from streamer.report import write_report
-        if hasattr(other, "table"):
+        if hasattr(other, "table") and args.against_source is None:
+            # The other log's same source, drawn beside the reference (with
+            # --against-source the reference already is that log's curve).
             add_overlay(series, Path(args.against).name, other.table)
         paths = write_report(results, series, args.report,
                              f"ridgewatch comparison: {Path(args.log).name} vs "
-                             f"{Path(args.against).name}")
+                             f"{Path(args.against).name}", phases)
         if not args.quiet:
-            print(f"report written to {args.report} ({len(paths)} files)", file=sys.stderr)
+            count = len(paths["figures"]) + 2 + ("phases" in paths)
+            print(f"report written to {args.report} ({count} files)", file=sys.stderr)
     for r in results:
-        print(f"{r['quantity']} {r['source']}: n={r['n']} MAE {r['mae']:.2f} RMSE {r['rmse']:.2f} "
+        print(f"{r['quantity']} {r['source']} vs {r['reference']}: n={r['n']} "
+              f"MAE {r['mae']:.2f} RMSE {r['rmse']:.2f} "
               f"bias {r['bias']:+.2f} LoA [{r['loa_lower']:.2f}, {r['loa_upper']:.2f}] "
               f"r {r['pearson_r']:.3f} within tolerance {100 * r['within_tolerance']:.1f} % "
               f"coverage {100 * r['coverage']:.1f} % lag {r['lag_s']:+.2f} s "
               f"delay median {r['delay_median_s']:.2f} s")
+        rows = phases.get((r["quantity"], r["source"]))
+        if rows:
+            print(format_phase_table(rows))
+    if phases:
+        for quantity in dict.fromkeys(r["quantity"] for r in results):
+            print(steady_note(quantity))
     return 0
 
 
@@ -649,7 +699,9 @@ def cmd_batch(args) -> int:
     options = BatchOptions(out_dir=args.out, profile=args.profile,
                            channels=tuple(args.channel or ()), fs=args.fs,
                            report=not args.no_report, overwrite=args.overwrite,
-                           time_column=args.time_column, time_unit=args.time_unit)
+                           time_column=args.time_column, time_unit=args.time_unit,
+                           reference_patterns=tuple(args.reference_pattern or ()),
+                           against_fs=args.against_fs, against_column=args.against_column)
 
     def progress(done, total, path):
         if not args.quiet:
@@ -659,6 +711,10 @@ def cmd_batch(args) -> int:
     for row in rows:
         if "error" in row:
             print(f"{row['recording']}: {row['error']}", file=sys.stderr)
+    missing = [row["recording"] for row in rows if row.get("note") == "no reference found"]
+    if missing and not args.quiet:
+        print(f"no reference found for: {', '.join(missing)} (not in the summary)",
+              file=sys.stderr)
     if not args.quiet:
         print(f"summary: {written['markdown']} and {written['csv']}", file=sys.stderr)
     return 0

@@ -16,6 +16,11 @@ The reference (the "other" side) is loaded by :func:`load_other`, which recognis
 :func:`summarize` computes every metric of :mod:`estimators.metrics` for one pairing and
 :func:`compare` does both. Every user-caused problem raises :class:`InputError` naming the
 file and what to do.
+
+Phases: :func:`split_phases` cuts a session at its markers (before the first marker, then
+from each marker to the next); :func:`phase_rows` gives per phase the duration, mean
+rate, agreement (with a reference) and time to a steady rate (:data:`STEADY`);
+:func:`phases_of` does it for paired series, :func:`log_phases` for a log alone.
 """
 
 from __future__ import annotations
@@ -327,6 +332,11 @@ def _window_for(quantity: str, window_s) -> float:
     return float(window_s)
 
 
+def _describe_sources(table: LogTable) -> str:
+    sources = list(dict.fromkeys(s for _, s in table.pairs()))
+    return ", ".join(sources) if sources else "none (no estimates)"
+
+
 def _describe_pairs(table: LogTable) -> str:
     pairs = table.pairs()
     return ", ".join(f"{q}/{s}" for q, s in pairs) if pairs else "no estimates"
@@ -378,6 +388,12 @@ def pair_up(log_table: LogTable, other: Other, quantity: str | None = None,
     """
     if quantity is not None and quantity not in QUANTITIES:
         raise InputError(f"unknown quantity '{quantity}'; choose one of {', '.join(QUANTITIES)}")
+    if source is not None and source not in {s for _, s in log_table.pairs()}:
+        raise InputError(f"{log_name}: no source '{source}' (--source); its sources are "
+                         f"{_describe_sources(log_table)}")
+    if other_source is not None and not isinstance(other, OtherLog):
+        raise InputError(f"--against-source {other_source} needs an estimate log as the "
+                         f"reference; {other.path} was read as {other.kind}")
     pairs = [(q, s) for q, s in log_table.pairs()
              if (quantity is None or q == quantity) and (source is None or s == source)]
     if not pairs:
@@ -436,6 +452,9 @@ def pair_up(log_table: LogTable, other: Other, quantity: str | None = None,
 
 
 def _pair_with_log(log_table, other: OtherLog, pairs, other_source, max_gap_s, log_name):
+    if other_source is not None and other_source not in {s for _, s in other.table.pairs()}:
+        raise InputError(f"{other.path}: no source '{other_source}' (--against-source); its "
+                         f"sources are {_describe_sources(other.table)}")
     out = []
     for q, s in pairs:
         theirs = other.table.select(q, other_source or s).columns
@@ -456,9 +475,12 @@ def _pair_with_log(log_table, other: OtherLog, pairs, other_source, max_gap_s, l
                                 rows["delay_s"], DEFAULT_WINDOW_S.get(q, math.nan)))
     if not out:
         asked = ", ".join(f"{q}/{other_source or s}" for q, s in pairs)
+        hint = ("" if other_source is not None else
+                f"; choose its source with --against-source (one of "
+                f"{_describe_sources(other.table)})")
         raise InputError(
             f"{other.path} has none of {asked} to compare with; it holds "
-            f"{_describe_pairs(other.table)} (choose its source to compare with)"
+            f"{_describe_pairs(other.table)}{hint}"
         )
     return out
 
@@ -529,3 +551,159 @@ def compare(log_table: LogTable, other: Other, quantity: str | None = None,
         As :func:`pair_up`.
     """
     return [summarize(s) for s in pair_up(log_table, other, quantity, source, window_s, **options)]
+
+
+# ---------------------------------------------------------------------------- phases
+
+STEADY = {
+    # Band: the EC13-style absolute heart-rate tolerance (ANSI/AAMI EC13, cited from
+    # memory): a rate that stays within the accuracy asked of a monitor counts as steady.
+    # Hold: 30 s, the stretch over which a pulse is counted by hand (30 s, doubled;
+    # common practice), and about four independent 8-s analysis windows, so a one-window
+    # plateau during a transition does not count.
+    "hr": (5.0, 30.0),
+    # Band: the +-2 breaths/min tolerance of breathing-rate studies (common practice).
+    # Hold: 30 s, the stretch over which breaths are counted by hand (30 s, doubled;
+    # common practice): 6-10 breaths at resting rates.
+    "rr": (2.0, 30.0),
+}
+"""(band per minute, hold s) of :func:`estimators.metrics.time_to_steady` per quantity."""
+
+FIRST_PHASE = "(before the first marker)"
+"""Label of the phase from the session's start to its first marker."""
+
+
+@dataclass(frozen=True)
+class Phase:
+    """A stretch of the session: from a marker (or the start) to the next (or the end).
+
+    ``label`` is the marker's text (:data:`FIRST_PHASE` for the stretch before the first
+    marker), ``marker_source`` where the marker came from ('' for the first stretch).
+    """
+
+    label: str
+    start_s: float
+    end_s: float
+    marker_source: str = ""
+
+    @property
+    def duration_s(self) -> float:
+        return self.end_s - self.start_s
+
+
+def split_phases(markers, start_s: float, end_s: float) -> list[Phase]:
+    """The phases of a session ``[start_s, end_s]`` cut at its markers.
+
+    Phase 0 runs from ``start_s`` to the first marker, phase ``k`` from marker ``k`` to
+    marker ``k + 1`` (the last one to ``end_s``). Markers are taken in time order; a
+    phase of no length is left out: two markers at one time, the stretch before a first
+    marker at or before the session's start, a marker at or after the session's end.
+    A phase keeps its marker's time as its start even before the first estimate, so
+    its time to steady counts from the marker. No markers: no phases (the caller
+    reports the session as a whole, as before).
+
+    Examples
+    --------
+    >>> from streamer.sources.base import Marker
+    >>> [(p.label, p.start_s, p.end_s) for p in split_phases(
+    ...     [Marker(30.0, "ramp"), Marker(60.0, "rest")], 0.0, 99.0)]
+    [('(before the first marker)', 0.0, 30.0), ('ramp', 30.0, 60.0), ('rest', 60.0, 99.0)]
+    """
+    timed = sorted((m for m in markers if math.isfinite(m.time_s)), key=lambda m: m.time_s)
+    if not timed or not (math.isfinite(start_s) and math.isfinite(end_s)):
+        return []
+    starts = [(FIRST_PHASE, float(start_s), "")] + [(m.text, float(m.time_s), m.source)
+                                                    for m in timed]
+    phases = []
+    for k, (label, begin, source) in enumerate(starts):
+        end = starts[k + 1][1] if k + 1 < len(starts) else float(end_s)
+        end = min(end, float(end_s))
+        if end > begin and begin < end_s:
+            phases.append(Phase(label, begin, end, source))
+    return phases
+
+
+def session_span(table: LogTable) -> tuple[float, float]:
+    """First and last estimate time (``time_s``) of a log, over all its rows."""
+    t = table.columns["time_s"]
+    t = t[np.isfinite(t)]
+    return (float(t.min()), float(t.max())) if t.size else (math.nan, math.nan)
+
+
+def phase_rows(quantity: str, source: str, time_s, estimate, phases: list[Phase],
+               reference=None) -> list[dict]:
+    """Per phase: duration, mean rate, agreement (with a reference) and time to steady.
+
+    Parameters
+    ----------
+    quantity, source : str
+        What the rates are (``"hr"``/``"rr"``) and where they come from.
+    time_s, estimate : array_like, shape (n,)
+        Estimate times and rates (NaN: no estimate).
+    phases : list of Phase
+        From :func:`split_phases`. A row belongs to the phase with
+        ``start_s <= time_s < end_s`` (the last phase also keeps ``time_s == end_s``).
+    reference : array_like, shape (n,), optional
+        The reference at the same times; without it the agreement keys are left out.
+
+    Returns
+    -------
+    list of dict
+        Keys ``quantity, source, phase, marker_source, start_s, end_s, duration_s,
+        estimates`` (rows with a rate), ``mean_rate``; with a reference ``reference_mean``
+        and ``n, mae, rmse, bias, loa_lower, loa_upper, within_tolerance``
+        (:func:`estimators.metrics.agreement`, tolerance :data:`TOLERANCES`); and
+        ``time_to_steady_s`` (:func:`estimators.metrics.time_to_steady` with
+        :data:`STEADY`, counted from the phase's start; NaN when it never settles).
+    """
+    t = np.asarray(time_s, dtype=np.float64)
+    est = np.asarray(estimate, dtype=np.float64)
+    ref = None if reference is None else np.asarray(reference, dtype=np.float64)
+    band, hold_s = STEADY.get(quantity, STEADY["hr"])
+    tol_abs, tol_rel = TOLERANCES.get(quantity, TOLERANCES["hr"])
+    rows = []
+    for k, phase in enumerate(phases):
+        inside = (t >= phase.start_s) & (t < phase.end_s)
+        if k == len(phases) - 1:
+            inside |= t == phase.end_s
+        rates = est[inside]
+        row = {"quantity": quantity, "source": source, "phase": phase.label,
+               "marker_source": phase.marker_source, "start_s": phase.start_s,
+               "end_s": phase.end_s, "duration_s": phase.duration_s,
+               "estimates": int(np.isfinite(rates).sum()),
+               "mean_rate": _finite_stat(rates, np.mean)}
+        if ref is not None:
+            row["reference_mean"] = _finite_stat(ref[inside], np.mean)
+            agree = metrics.agreement(rates, ref[inside], tol_abs, tol_rel)
+            for key in ("n", "mae", "rmse", "bias", "loa_lower", "loa_upper",
+                        "within_tolerance"):
+                row[key] = getattr(agree, key)
+        row["time_to_steady_s"] = metrics.time_to_steady(t[inside], rates, phase.start_s,
+                                                         band, hold_s)
+        rows.append(row)
+    return rows
+
+
+def phases_of(series: list[PairedSeries], table: LogTable) -> dict:
+    """Phase rows per (quantity, source) of paired series, cut at the log's markers;
+    empty when the log has no markers (or none inside the session)."""
+    start_s, end_s = session_span(table)
+    phases = split_phases(table.markers, start_s, end_s)
+    if not phases:
+        return {}
+    return {s.key: phase_rows(s.quantity, s.source, s.time_s, s.estimate, phases, s.reference)
+            for s in series}
+
+
+def log_phases(table: LogTable, markers=None) -> dict:
+    """Phase rows (no reference) per (quantity, source) of a log, cut at ``markers``
+    (default the log's own); empty without markers."""
+    start_s, end_s = session_span(table)
+    phases = split_phases(table.markers if markers is None else markers, start_s, end_s)
+    if not phases:
+        return {}
+    out = {}
+    for q, s in table.pairs():
+        rows = table.select(q, s).columns
+        out[(q, s)] = phase_rows(q, s, rows["time_s"], rows["rate_per_min"], phases)
+    return out

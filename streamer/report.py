@@ -3,7 +3,8 @@
 :func:`write_report` takes the result dicts of :func:`streamer.compare.summarize` and the
 :class:`streamer.compare.PairedSeries` they came from, and writes into a folder:
 
-* ``summary.md`` - one metrics table and one calibration table per (quantity, source);
+* ``summary.md`` - one metrics table and one calibration table per (quantity, source),
+  and a phase table when the log has markers (also in ``phases.csv``);
 * ``summary.html`` - the same content in one self-contained file (figures embedded);
 * per (quantity, source) three PNG figures: rate over time, Bland-Altman plot, and
   ``|error|`` against confidence.
@@ -113,10 +114,11 @@ def _save(fig, path: Path) -> None:
         raise InputError(f"cannot write the figure {path}: {exc.strerror}") from None
 
 
-def plot_rate(series, path: Path) -> None:
+def plot_rate(series, path: Path, phase_rows: list[dict] | None = None) -> None:
     """Rate over time: the estimate with its confidence band (see :data:`BAND_FRACTION`),
     the reference, the reference's instantaneous rate when it is events, and any extra
-    curves of the series."""
+    curves of the series; with ``phase_rows``, a labelled vertical line at the start of
+    each phase that begins at a marker."""
     fig = _new_figure()
     ax = fig.add_subplot(1, 1, 1)
     t, est = series.time_s, series.estimate
@@ -136,12 +138,24 @@ def plot_rate(series, path: Path) -> None:
     colors = ("tab:orange", "tab:green", "tab:purple", "tab:brown")
     for i, (label, t_extra, rate_extra) in enumerate(series.extra_curves):
         ax.plot(t_extra, rate_extra, color=colors[i % len(colors)], linewidth=1.0, label=label)
+    for row in phase_rows or []:
+        if row["phase"] != _first_phase_label() or row.get("marker_source"):
+            ax.axvline(row["start_s"], color="0.4", linestyle=":", linewidth=1.0)
+            ax.annotate(str(row["phase"]), (row["start_s"], 1.0), xycoords=("data", "axes fraction"),
+                        xytext=(2, -2), textcoords="offset points", rotation=90, va="top",
+                        fontsize="x-small", color="0.3")
     ax.set_xlabel("time (s)")
     ax.set_ylabel(f"{series.quantity} ({UNITS.get(series.quantity, 'per min')})")
     ax.set_title(f"{series.quantity} / {series.source} over time")
     ax.grid(True, alpha=0.3)
     ax.legend(loc="best", fontsize="small")
     _save(fig, path)
+
+
+def _first_phase_label() -> str:
+    from streamer.compare import FIRST_PHASE
+
+    return FIRST_PHASE
 
 
 def plot_bland_altman(series, result: dict, path: Path) -> None:
@@ -217,6 +231,69 @@ def _calibration_table(result: dict) -> tuple[list[str], list[list[str]]]:
     return ["confidence", "count", "median abs error", "fraction within tolerance"], rows
 
 
+_PHASE_COLUMNS = (
+    # (row key, heading, unit-bearing?, short heading for the terminal)
+    ("phase", "phase", False, "phase"),
+    ("start_s", "start (s)", False, "start s"),
+    ("duration_s", "duration (s)", False, "length s"),
+    ("estimates", "estimates", False, "rows"),
+    ("mean_rate", "mean rate", True, "mean"),
+    ("reference_mean", "reference mean", True, "ref mean"),
+    ("n", "pairs", False, "pairs"),
+    ("mae", "MAE", True, "MAE"),
+    ("bias", "bias", True, "bias"),
+    ("loa_lower", "LoA lower", True, "LoA low"),
+    ("loa_upper", "LoA upper", True, "LoA high"),
+    ("within_tolerance", "within tolerance", False, "within"),
+    ("time_to_steady_s", "time to steady (s)", False, "steady after s"),
+)
+"""Columns of a phase table, in order; a column no row has (the agreement columns
+without a reference) is left out."""
+
+
+def phase_table(rows: list[dict], short: bool = False) -> tuple[list[str], list[list[str]]]:
+    """Heading and cells of the phase table of one (quantity, source)
+    (rows of :func:`streamer.compare.phase_rows`); ``short`` headings without units
+    for the terminal."""
+    if not rows:
+        return [], []
+    unit = UNITS.get(rows[0].get("quantity"), "per min")
+    columns = [c for c in _PHASE_COLUMNS if any(c[0] in r for r in rows)]
+    head = [brief if short else f"{label} ({unit})" if with_unit else label
+            for _, label, with_unit, brief in columns]
+    cells = [[format_value(r.get(key)) if key != "phase" else str(r["phase"])
+              for key, _, _, _ in columns] for r in rows]
+    return head, cells
+
+
+def steady_note(quantity: str) -> str:
+    """One sentence defining the time to steady for ``quantity``."""
+    from streamer.compare import STEADY
+
+    band, hold_s = STEADY.get(quantity, STEADY["hr"])
+    unit = UNITS.get(quantity, "per min")
+    return (f"Time to steady: from the phase's start to the first estimate from which the "
+            f"rate stays within +-{band:g} {unit} of its own median over the rest of the "
+            f"phase, and the rest lasts at least {hold_s:g} s; n/a when it never settles.")
+
+
+def format_phase_table(rows: list[dict]) -> str:
+    """A phase table as aligned plain-text lines for the terminal: a title line naming
+    the quantity, source and unit, then the table."""
+    head, cells = phase_table(rows, short=True)
+    if not head:
+        return ""
+    quantity, source = rows[0]["quantity"], rows[0]["source"]
+    title = f"{quantity} {source} by phase ({UNITS.get(quantity, 'per min')}):"
+    widths = [max(len(h), *(len(r[j]) for r in cells)) for j, h in enumerate(head)]
+
+    def line(items):
+        return "  ".join(x.ljust(w) if j == 0 else x.rjust(w)
+                         for j, (x, w) in enumerate(zip(items, widths))).rstrip()
+
+    return "\n".join([title, line(head)] + [line(r) for r in cells])
+
+
 def _md_table(head: list[str], rows: list[list[str]]) -> str:
     def line(cells):
         return "| " + " | ".join(c.replace("|", "\\|") for c in cells) + " |"
@@ -246,7 +323,8 @@ _HTML_STYLE = ("body{font-family:sans-serif;max-width:60em;margin:2em auto;}"
                "img{max-width:100%;}")
 
 
-def write_report(results: list[dict], series, out_dir, title: str) -> dict:
+def write_report(results: list[dict], series, out_dir, title: str,
+                 phases: dict | None = None) -> dict:
     """Write ``summary.md``, ``summary.html`` and the figures for a comparison.
 
     Parameters
@@ -259,11 +337,16 @@ def write_report(results: list[dict], series, out_dir, title: str) -> dict:
         Folder to write into (created if needed; files in it are overwritten).
     title : str
         Heading of the summary.
+    phases : dict, optional
+        Phase rows per (quantity, source) (:func:`streamer.compare.phases_of`): each
+        section then has a phase table, and ``phases.csv`` holds them all. Empty or
+        None (a log without markers): no phase tables, no ``phases.csv``.
 
     Returns
     -------
     dict
-        ``{"markdown": Path, "html": Path, "figures": [Path, ...]}``.
+        ``{"markdown": Path, "html": Path, "figures": [Path, ...]}``, plus
+        ``"phases": Path`` when phase tables were written.
 
     Raises
     ------
@@ -285,6 +368,12 @@ def write_report(results: list[dict], series, out_dir, title: str) -> dict:
         head, rows = _metric_table(result)
         md += [_md_table(head, rows), ""]
         body_html.append(_html_table(head, rows))
+        phase_rows = (phases or {}).get(key)
+        if phase_rows:
+            head, rows = phase_table(phase_rows)
+            intro = f"Phases (cut at the log's markers). {steady_note(key[0])}"
+            md += [intro, "", _md_table(head, rows), ""]
+            body_html += [f"<p>{html.escape(intro)}</p>", _html_table(head, rows)]
         head, rows = _calibration_table(result)
         if rows:
             md += ["Calibration (error per confidence bin):", "", _md_table(head, rows), ""]
@@ -299,8 +388,9 @@ def write_report(results: list[dict], series, out_dir, title: str) -> dict:
         used.add(stem)
         drawn = []
         for name, caption, draw in (
-            ("rate", "rate over time (band: wider = less confident)",
-             lambda p: plot_rate(paired, p)),
+            ("rate", "rate over time (band: wider = less confident"
+                     + ("; dotted lines: markers)" if phase_rows else ")"),
+             lambda p: plot_rate(paired, p, phase_rows)),
             ("bland_altman", "Bland-Altman plot", lambda p: plot_bland_altman(paired, result, p)),
             ("error_vs_confidence", "|error| vs confidence",
              lambda p: plot_error_vs_confidence(paired, result, p)),
@@ -321,10 +411,37 @@ def write_report(results: list[dict], series, out_dir, title: str) -> dict:
             f"<title>{html.escape(title)}</title><style>{_HTML_STYLE}</style></head>"
             "<body>\n" + "\n".join(body_html) + "\n</body></html>\n")
     _write_text(html_path, page)
-    return {"markdown": md_path, "html": html_path, "figures": figures}
+    written = {"markdown": md_path, "html": html_path, "figures": figures}
+    all_phase_rows = [row for result in results
+                      for row in (phases or {}).get((result["quantity"], result["source"]), [])]
+    if all_phase_rows:
+        written["phases"] = write_csv(all_phase_rows, out / "phases.csv")
+    return written
 
 
-def write_batch_summary(rows: list[dict], out_dir, name: str = "batch_summary") -> dict:
+def write_csv(rows: list[dict], path) -> Path:
+    """Rows as a CSV at full precision (columns: the union of keys in order of first
+    appearance; a key a row lacks, or NaN, is an empty cell)."""
+    path = Path(path)
+    columns: list[str] = []
+    for row in rows:
+        for key, value in row.items():
+            if key not in columns and not isinstance(value, (list, tuple, dict)):
+                columns.append(key)
+    try:
+        with open(path, "w", encoding="utf-8", newline="") as fh:
+            writer = csv.writer(fh)
+            writer.writerow(columns)
+            for row in rows:
+                # Full precision: the CSV is for further analysis, not for reading.
+                writer.writerow(["" if _is_missing(row.get(c)) else row.get(c) for c in columns])
+    except OSError as exc:
+        raise InputError(f"cannot write {path}: {exc.strerror}") from None
+    return path
+
+
+def write_batch_summary(rows: list[dict], out_dir, name: str = "batch_summary",
+                        notes: list[str] | None = None) -> dict:
     """One table over many recordings, as Markdown and CSV.
 
     Parameters
@@ -338,6 +455,8 @@ def write_batch_summary(rows: list[dict], out_dir, name: str = "batch_summary") 
         Folder to write into (created if needed).
     name : str
         File stem of ``<name>.md`` and ``<name>.csv``.
+    notes : list of str, optional
+        Lines written below the Markdown table (e.g. recordings without a reference).
 
     Returns
     -------
@@ -355,20 +474,16 @@ def write_batch_summary(rows: list[dict], out_dir, name: str = "batch_summary") 
         for key, value in row.items():
             if key not in columns and not isinstance(value, (list, tuple, dict)):
                 columns.append(key)
-    table = [[format_value(row.get(c)) for c in columns] for row in rows]
+    # A key a row lacks is a figure that means nothing for it (e.g. the delay of an
+    # offline run): an empty cell, unlike n/a (a figure that could not be computed).
+    table = [[format_value(row[c]) if c in row else "" for c in columns] for row in rows]
     md_path, csv_path = out / f"{name}.md", out / f"{name}.csv"
     md = [f"# Batch summary ({len(rows)} rows)", "", DISCLAIMER, "",
           _md_table(columns, table) if columns else "(no results)"]
+    if notes:
+        md += ["", *notes]
     _write_text(md_path, "\n".join(md) + "\n")
-    try:
-        with open(csv_path, "w", encoding="utf-8", newline="") as fh:
-            writer = csv.writer(fh)
-            writer.writerow(columns)
-            for row in rows:
-                # Full precision in the CSV: it is for further analysis, not for reading.
-                writer.writerow(["" if _is_missing(row.get(c)) else row.get(c) for c in columns])
-    except OSError as exc:
-        raise InputError(f"cannot write {csv_path}: {exc.strerror}") from None
+    write_csv(rows, csv_path)
     return {"markdown": md_path, "csv": csv_path}
 
 

@@ -16,6 +16,7 @@ from estimators.metrics import (
     coverage,
     instantaneous_rate,
     rate_from_events,
+    time_to_steady,
     within_tolerance,
 )
 
@@ -259,6 +260,15 @@ def test_best_lag_nothing_to_correlate_is_nan():
     assert math.isnan(best_lag(t, np.full(10, 60.0), np.arange(10.0), 3.0))  # constant
 
 
+def test_best_lag_series_shorter_than_the_lag_range():
+    # 10 s of data, lags searched to +-32 s: shifts beyond the data have no overlap
+    # (they once wrapped around and raised a broadcasting error)
+    t = np.arange(0.0, 10.0, 1.0)
+    a = np.sin(2 * np.pi * t / 6)
+    b = np.sin(2 * np.pi * (t - 1) / 6)  # 1 s late
+    assert best_lag(t, a, b, max_lag_s=32.0) == 1.0
+
+
 def test_best_lag_errors():
     t = np.arange(5.0)
     with pytest.raises(ParameterError, match=r"t \(5,\), a \(4,\) and b \(5,\) must match"):
@@ -320,3 +330,53 @@ def test_agreement_pearson_nan_for_a_side_constant_to_rounding():
     ref = np.array([v, np.nextafter(v, 100.0), v, np.nextafter(v, 0.0)])
     assert np.ptp(ref) > 0
     assert math.isnan(agreement([14.0, 15.0, 16.0, 17.0], ref).pearson_r)
+
+
+# ------------------------------------------------------------------- time to steady
+
+
+def _first_order_step(t, start_s, tau_s=10.0):
+    """60 bpm, then from ``start_s`` a first-order approach to 100 bpm (time constant
+    ``tau_s``)."""
+    after = np.clip(t - start_s, 0.0, None)
+    return 60.0 + 40.0 * (1.0 - np.exp(-after / tau_s))
+
+
+def test_time_to_steady_first_order_step():
+    t = np.arange(0.0, 350.0, 0.25)
+    rate = _first_order_step(t, 50.0)
+    # Within 5 bpm of the final 100 bpm once 40 exp(-s / 10) <= 5, i.e. s >= 10 ln 8 =
+    # 20.79 s after the step; the median of what follows is 100 - 40 exp(-15) (its
+    # middle sample, 150 s on), 1.2e-5 below 100, which cannot move the answer off the
+    # grid point that follows 20.79 s: 21.0 s.
+    assert 10.0 * math.log(8.0) == pytest.approx(20.794, abs=1e-3)
+    assert time_to_steady(t, rate, 50.0, band=5.0, hold_s=30.0) == 21.0
+    # a tighter band takes longer: 40 exp(-s / 10) <= 1 -> s >= 10 ln 40 = 36.89 -> 37.0
+    assert time_to_steady(t, rate, 50.0, band=1.0, hold_s=30.0) == 37.0
+    # rows before the start and without a rate are left out
+    rate[::7] = np.nan
+    assert time_to_steady(t, rate, 50.0, band=5.0, hold_s=30.0) == 21.0
+
+
+def test_time_to_steady_outlier_and_hold():
+    t = np.arange(0.0, 100.0, 1.0)
+    rate = np.full(t.size, 80.0)
+    assert time_to_steady(t, rate, 0.0, band=2.0, hold_s=30.0) == 0.0
+    # one estimate 10 bpm off at 60 s: steady only from the next one, 61 s
+    rate[60] = 90.0
+    assert time_to_steady(t, rate, 0.0, band=2.0, hold_s=30.0) == 61.0
+    # ... which needs the rest (61-99 s, 38 s) to last the hold: 40 s is too long
+    assert math.isnan(time_to_steady(t, rate, 0.0, band=2.0, hold_s=40.0))
+    # a rate that keeps swinging by +-10 never settles within +-5
+    swing = 80.0 + 10.0 * np.sin(2 * np.pi * t / 20.0)
+    assert math.isnan(time_to_steady(t, swing, 0.0, band=5.0, hold_s=30.0))
+    assert math.isnan(time_to_steady([], [], 0.0, band=5.0, hold_s=30.0))
+
+
+def test_time_to_steady_errors():
+    with pytest.raises(ParameterError, match=r"time_s \(3,\) and rate \(2,\) must match"):
+        time_to_steady([0.0, 1.0, 2.0], [60.0, 61.0], 0.0, 5.0, 30.0)
+    with pytest.raises(ParameterError, match=r"band=-1.0 must be finite and >= 0"):
+        time_to_steady([0.0], [60.0], 0.0, -1.0, 30.0)
+    with pytest.raises(ParameterError, match=r"hold_s=nan must be finite and >= 0"):
+        time_to_steady([0.0], [60.0], 0.0, 5.0, float("nan"))

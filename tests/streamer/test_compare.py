@@ -258,9 +258,15 @@ def test_compare_quantity_errors(tmp_path, log_path, events):
         compare(table, beats, quantity="rr")
     # beat annotations imply hr: no quantity needed
     assert {r["quantity"] for r in compare(table, beats)} == {"hr"}
-    with pytest.raises(InputError, match=r"the estimate log has no estimates for hr ECG; it "
-                                         r"holds hr/PLETH, hr/fused, rr/RESP"):
+    with pytest.raises(InputError, match=r"^the estimate log: no source 'ECG' \(--source\); its "
+                                         r"sources are PLETH, fused, RESP$"):
         compare(table, plain, quantity="hr", source="ECG")
+    with pytest.raises(InputError, match=r"^the estimate log has no estimates for hr RESP; it "
+                                         r"holds hr/PLETH, hr/fused, rr/RESP$"):
+        compare(table, plain, quantity="hr", source="RESP")
+    with pytest.raises(InputError, match=r"^--against-source PLETH needs an estimate log as the "
+                                         r"reference; \S*ev.csv was read as events$"):
+        compare(table, plain, quantity="hr", other_source="PLETH")
     with pytest.raises(InputError, match=r"unknown quantity 'spo2'; choose one of hr, rr"):
         compare(table, plain, quantity="spo2")
 
@@ -277,9 +283,14 @@ def test_compare_against_another_log(tmp_path, log_path):
     # compare hr/PLETH with the other log's hr/fused
     [r] = compare(table, load_other(log_path), source="PLETH", other_source="fused")
     assert r["reference"] == "live.csv (hr/fused)" and r["mae"] > 0
-    with pytest.raises(InputError, match=r"live.csv has none of hr/ECG to compare with; it holds "
-                                         r"hr/PLETH, hr/fused, rr/RESP"):
+    with pytest.raises(InputError, match=r"^\S*live.csv: no source 'ECG' \(--against-source\); "
+                                         r"its sources are PLETH, fused, RESP$"):
         compare(table, load_other(log_path), source="PLETH", other_source="ECG")
+    # a source of the other log without the quantity asked for
+    with pytest.raises(InputError, match=r"^\S*live.csv has none of hr/RESP to compare with; it "
+                                         r"holds hr/PLETH, hr/fused, rr/RESP$"):
+        compare(table, load_other(log_path), quantity="hr", source="PLETH",
+                other_source="RESP")
     joined = tmp_path / "joined.csv"
     joined.write_text(log_path.read_text() + "".join(log_path.read_text().splitlines(True)[8:]))
     with pytest.raises(InputError, match=r"joined.csv: times of hr/PLETH are not strictly "

@@ -308,9 +308,10 @@ def find_demo() -> Path | None:
 
 
 def _profile(args):
-    """The chosen profile (``--profile`` or ``--profile-file``) with ``--hop``, which must lie between one heart-rate analysis
-    sample (a shorter hop repeats estimates; a much shorter one runs for hours) and the
-    shortest window (a longer hop skips samples)."""
+    """The chosen profile (``--profile`` or ``--profile-file``) with ``--hop``, which
+    must lie between one heart-rate analysis sample (a shorter hop repeats estimates; a
+    much shorter one runs for hours) and the shortest window (a longer hop skips
+    samples). Read once per run (``args.resolved_profile``)."""
     if getattr(args, "resolved_profile", None) is not None:
         return args.resolved_profile
     if getattr(args, "profile_file", None):

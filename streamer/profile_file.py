@@ -97,7 +97,9 @@ def profile_toml(profile: Profile, *, notes: bool = True, header: str = "") -> s
     as comments.
     """
     explained = setting_notes() if notes else {}
-    lines = [f"# {line}".rstrip() for line in header.splitlines()]
+    # A comment holds no control characters (TOML 1.0): escape any, e.g. from a command line.
+    lines = ["# " + "".join(c if c.isprintable() else repr(c)[1:-1] for c in line).rstrip()
+             for line in header.splitlines()]
     lines += [
         "# ridgewatch profile (research tool, not a medical device).",
         "# Read with: ridgewatch <command> --profile-file THIS_FILE",

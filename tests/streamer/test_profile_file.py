@@ -45,6 +45,13 @@ def test_odd_texts_and_numbers_read_back_exactly(tmp_path):
     assert read_profile_file(path) == odd
 
 
+def test_header_lines_stay_comments_whatever_they_hold():
+    text = profile_toml(PROFILES["wrist"], header="command: ridgewatch replay 'a\x1bb\rc.csv'")
+    assert tomllib.loads(text)["name"] == "wrist"
+    assert text.splitlines()[0] == "# command: ridgewatch replay 'a\\x1bb"
+    assert text.splitlines()[1] == "# c.csv'"
+
+
 def test_a_partial_file_takes_the_rest_from_its_base(tmp_path):
     path = tmp_path / "lab.toml"
     path.write_text('name = "treadmill"\nbase = "exercise-wrist"\n\n[hr]\n'

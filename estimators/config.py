@@ -8,7 +8,7 @@ values. Users give seconds, Hz and per-minute rates, never raw sample counts.
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, field, fields, replace
 
 from estimators.errors import ParameterError
 
@@ -120,6 +120,12 @@ class RateSettings:
     motion_trust: str = "track"
 
     def __post_init__(self):
+        for f in fields(self):
+            value = getattr(self, f.name)
+            numbers = value if isinstance(value, tuple) else (value,)
+            if all(isinstance(x, (int, float)) for x in numbers):
+                _check(all(math.isfinite(x) for x in numbers),
+                       f"{f.name}={value} must be finite")
         _check(self.quantity in ("hr", "rr"), f"quantity={self.quantity!r} must be 'hr' or 'rr'")
         lo, hi = self.band_per_min
         _check(0 < lo < hi, f"band_per_min={self.band_per_min} must satisfy 0 < low < high")
@@ -211,12 +217,26 @@ class Profile:
     rr_pulse: RateSettings = field(default_factory=lambda: BREATHING_FROM_PULSE)
     """Settings of the breathing rate from a pulse."""
 
+    def __post_init__(self):
+        _check(isinstance(self.name, str) and self.name.strip() != "",
+               f"name={self.name!r} must be a non-empty text")
+        for section, quantity in PROFILE_SECTIONS.items():
+            settings = getattr(self, section)
+            _check(isinstance(settings, RateSettings),
+                   f"{section}={settings!r} must be a RateSettings")
+            _check(settings.quantity == quantity,
+                   f"{section}.quantity={settings.quantity!r} must be {quantity!r}")
+
     def to_dict(self) -> dict:
         return asdict(self)
 
     def with_hop(self, hop_s: float) -> "Profile":
         return replace(self, hr=replace(self.hr, hop_s=hop_s), rr=replace(self.rr, hop_s=hop_s),
                        rr_pulse=replace(self.rr_pulse, hop_s=hop_s))
+
+
+PROFILE_SECTIONS = {"hr": "hr", "rr": "rr", "rr_pulse": "rr"}
+"""The :class:`RateSettings` fields of a :class:`Profile` and the quantity each estimates."""
 
 
 BREATHING = RateSettings(
@@ -303,11 +323,152 @@ PROFILES = {
 DEFAULT_PROFILE = "wrist"
 
 
-def get_profile(name: str) -> Profile:
-    """The profile called ``name``; :class:`ParameterError` listing the names otherwise."""
+def get_profile(name) -> Profile:
+    """The built-in profile called ``name``; :class:`ParameterError` listing the names
+    otherwise. A :class:`Profile` given as ``name`` is returned as it is (a profile of
+    one's own, e.g. read from a file, passes wherever a name does)."""
+    if isinstance(name, Profile):
+        return name
     try:
         return PROFILES[name]
     except KeyError:
         raise ParameterError(
             f"profile={name!r} is not known; profiles are: {', '.join(sorted(PROFILES))}"
         ) from None
+
+
+PROFILE_KEYS = ("name", "description", "base", "breathing_from_pulse", *PROFILE_SECTIONS)
+"""Top-level keys of a profile mapping (:func:`profile_from_dict`)."""
+
+
+def _typed(path: str, value, default):
+    """``value`` as the type of ``default`` (a RateSettings or Profile default), or
+    :class:`ParameterError` naming the dotted ``path``. Whole numbers are accepted where a
+    number is expected, and a pair is a list or tuple of two numbers."""
+    def number(x) -> bool:
+        return isinstance(x, (int, float)) and not isinstance(x, bool)
+
+    if isinstance(default, bool):
+        _check(isinstance(value, bool), f"{path}={value!r} must be true or false")
+        return value
+    if isinstance(default, int):
+        _check(isinstance(value, int) and not isinstance(value, bool),
+               f"{path}={value!r} must be a whole number")
+        return value
+    if isinstance(default, float):
+        _check(number(value), f"{path}={value!r} must be a number")
+        return float(value)
+    if isinstance(default, tuple):
+        _check(isinstance(value, (list, tuple)) and len(value) == len(default)
+               and all(number(x) for x in value),
+               f"{path}={value!r} must be a list of {len(default)} numbers")
+        return tuple(float(x) for x in value)
+    _check(isinstance(value, str), f"{path}={value!r} must be a text in quotes")
+    return value
+
+
+def _unknown(path: str, key: str, known) -> ParameterError:
+    import difflib
+
+    close = difflib.get_close_matches(key, list(known), n=1)
+    hint = f"did you mean {path}{close[0]}?" if close else "keys here are: " + ", ".join(known)
+    return ParameterError(f"{path}{key} is not a setting ({hint})")
+
+
+def _rate_settings(section: str, values, start: RateSettings | None, base: str | None):
+    """The :class:`RateSettings` of ``section`` from a mapping of its keys; keys left out
+    come from ``start`` (the base profile's settings)."""
+    _check(isinstance(values, dict),
+           f"{section} must be a table of settings ([{section}]), not {values!r}")
+    names = [f.name for f in fields(RateSettings)]
+    defaults = {f.name: f.default for f in fields(RateSettings)}
+    for key in values:
+        if key not in defaults:
+            raise _unknown(f"{section}.", key, names)
+    chosen = {key: _typed(f"{section}.{key}", value, defaults[key])
+              for key, value in values.items()}
+    missing = [name for name in names if name not in chosen]
+    if start is None and missing:
+        raise ParameterError(
+            f"{section}.{missing[0]} is missing; give it, or take the keys left out from "
+            f"a built-in profile with base = \"{DEFAULT_PROFILE}\"")
+    try:
+        return RateSettings(**chosen) if start is None else replace(start, **chosen)
+    except ParameterError as exc:
+        raise _in_section(section, exc, base if missing else None, chosen) from None
+
+
+def _in_section(section: str, exc: ParameterError, base: str | None,
+                given) -> ParameterError:
+    """``exc`` (a RateSettings message such as ``window_s=2.0 must be ...``) with its key
+    given the dotted path ``section.window_s``; when that key was not ``given``, the
+    message says it came from the ``base`` profile."""
+    message = str(exc)
+    key = message.split("=", 1)[0]
+    if key in {f.name for f in fields(RateSettings)}:
+        message = f"{section}.{message}"
+    else:
+        message = f"{section}: {message}"
+    if base is not None and key not in given:
+        message += f" ({key} comes from base profile {base!r})"
+    return ParameterError(message)
+
+
+def profile_from_dict(data: dict) -> Profile:
+    """A :class:`Profile` from a mapping such as a parsed TOML file or
+    ``Profile.to_dict()`` (the inverse of the latter).
+
+    Keys: ``name`` (required), ``description``, ``breathing_from_pulse``, and one table
+    per :data:`PROFILE_SECTIONS` with the fields of :class:`RateSettings`. With
+    ``base = "<built-in profile>"`` every key left out comes from that profile;
+    without it, every key must be given. Values are validated by the same constructors
+    as the built-in profiles.
+
+    Raises
+    ------
+    ParameterError
+        Naming the dotted key (``hr.window_s``) and what is wrong with it: an unknown
+        key (with the closest known one), a wrong type, a missing key, or a value the
+        settings refuse.
+
+    Examples
+    --------
+    >>> profile = profile_from_dict({"name": "lab", "base": "wrist",
+    ...                              "hr": {"band_per_min": [45, 190]}})
+    >>> profile.hr.band_per_min, profile.rr == PROFILES["wrist"].rr
+    ((45.0, 190.0), True)
+    >>> profile_from_dict({"name": "lab", "base": "wrist", "hr": {"window": 6}})
+    Traceback (most recent call last):
+    ...
+    estimators.errors.ParameterError: hr.window is not a setting (did you mean hr.window_s?)
+    """
+    _check(isinstance(data, dict), f"a profile must be a mapping of settings, not {data!r}")
+    for key in data:
+        if key not in PROFILE_KEYS:
+            raise _unknown("", key, PROFILE_KEYS)
+    base = data.get("base")
+    if base is not None:
+        _check(isinstance(base, str) and base in PROFILES,
+               f"base={base!r} must name a built-in profile: {', '.join(sorted(PROFILES))}")
+    start = PROFILES[base] if base is not None else None
+    _check("name" in data, "name is missing; give the profile a name (name = \"my-lab\")")
+    name = _typed("name", data["name"], "")
+    description = _typed("description", data.get("description", ""), "")
+    if "breathing_from_pulse" in data:
+        breathing = _typed("breathing_from_pulse", data["breathing_from_pulse"], True)
+    else:
+        _check(start is not None,
+               "breathing_from_pulse is missing; give it, or take the keys left out from a "
+               f"built-in profile with base = \"{DEFAULT_PROFILE}\"")
+        breathing = start.breathing_from_pulse
+    sections = {}
+    for section in PROFILE_SECTIONS:
+        if section in data:
+            sections[section] = _rate_settings(section, data[section],
+                                               getattr(start, section, None), base)
+        else:
+            _check(start is not None,
+                   f"[{section}] is missing; give it, or take the keys left out from a "
+                   f"built-in profile with base = \"{DEFAULT_PROFILE}\"")
+            sections[section] = getattr(start, section)
+    return Profile(name, description, breathing_from_pulse=breathing, **sections)

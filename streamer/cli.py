@@ -13,6 +13,7 @@ import logging
 import math
 import os
 import re
+import shlex
 import sys
 import threading
 import time
@@ -80,8 +81,7 @@ def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> Non
     p.add_argument("--channel", action="append", metavar="NAME=KIND",
                    help="use channel NAME (label or 0-based index) as KIND: ppg, ecg, resp "
                         "or acc; repeatable. Default: from the source's metadata or labels")
-    p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES),
-                   help=f"settings preset (default {DEFAULT_PROFILE}; see 'ridgewatch profiles')")
+    _profile_options(p)
     p.add_argument("--hop", type=_positive, metavar="SECONDS",
                    help="time between estimates (default from the profile, 0.25 s)")
     p.add_argument("--log", metavar="PATH",
@@ -103,6 +103,17 @@ def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> Non
         p.add_argument("--publish-samples", action="store_true",
                        help="also publish the replayed samples as an LSL stream")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress or summary lines")
+
+
+def _profile_options(p: argparse.ArgumentParser) -> None:
+    """``--profile NAME`` or ``--profile-file PATH`` (not both)."""
+    group = p.add_mutually_exclusive_group()
+    group.add_argument("--profile", choices=sorted(PROFILES),
+                       help=f"settings preset (default {DEFAULT_PROFILE}; see 'ridgewatch "
+                            "profiles')")
+    group.add_argument("--profile-file", metavar="PATH",
+                       help="settings from a TOML file of your own; start from 'ridgewatch "
+                            "profiles --show NAME > lab.toml'")
 
 
 def _csv_time(p: argparse.ArgumentParser) -> None:
@@ -167,14 +178,20 @@ def build_parser() -> argparse.ArgumentParser:
                    help="stop after this many wall-clock seconds (default: loop until Ctrl-C)")
     p.add_argument("-q", "--quiet", action="store_true")
 
-    sub.add_parser("profiles", help="list the settings presets")
+    p = sub.add_parser("profiles", help="list the settings presets, or print one as a file")
+    shown = p.add_mutually_exclusive_group()
+    shown.add_argument("--show", metavar="NAME", choices=sorted(PROFILES),
+                       help="print built-in profile NAME as a TOML file for --profile-file")
+    shown.add_argument("--from-log", metavar="LOG",
+                       help="print the profile an estimate log was written with, as a TOML "
+                            "file for --profile-file (to repeat that run)")
 
     p = sub.add_parser("offline", help="non-causal estimates over a whole recording")
     p.add_argument("file")
     _csv_time(p)
     _xdf_streams(p)
     p.add_argument("--channel", action="append", metavar="NAME=KIND")
-    p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES))
+    _profile_options(p)
     p.add_argument("--hop", type=_positive, metavar="SECONDS")
     p.add_argument("--log", metavar="PATH", required=True, help="where to write the log")
     p.add_argument("--overwrite", action="store_true",
@@ -220,7 +237,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--against-column", metavar="NAME",
                    help="column of the reference files to use (rate or sample-number column)")
     p.add_argument("--channel", action="append", metavar="NAME=KIND")
-    p.add_argument("--profile", default=DEFAULT_PROFILE, choices=sorted(PROFILES))
+    _profile_options(p)
     _csv_time(p)
     p.add_argument("--jobs", type=int, help="parallel processes (default: number of cores)")
     p.add_argument("--no-report", action="store_true", help="summary table only")
@@ -317,10 +334,17 @@ def find_demo() -> Path | None:
 
 
 def _profile(args):
-    """The chosen profile with ``--hop``, which must lie between one heart-rate analysis
-    sample (a shorter hop repeats estimates; a much shorter one runs for hours) and the
-    shortest window (a longer hop skips samples)."""
-    profile = get_profile(args.profile)
+    """The chosen profile (``--profile`` or ``--profile-file``) with ``--hop``, which
+    must lie between one heart-rate analysis sample (a shorter hop repeats estimates; a
+    much shorter one runs for hours) and the shortest window (a longer hop skips
+    samples). Read once per run (``args.resolved_profile``)."""
+    if getattr(args, "resolved_profile", None) is not None:
+        return args.resolved_profile
+    if getattr(args, "profile_file", None):
+        from streamer.profile_file import read_profile_file
+        profile = read_profile_file(args.profile_file)
+    else:
+        profile = get_profile(args.profile or DEFAULT_PROFILE)
     hop_s = getattr(args, "hop", None)
     if hop_s is not None:
         low = 1.0 / profile.hr.analysis_fs
@@ -331,7 +355,24 @@ def _profile(args):
                 f"hop only repeats estimates) and {high:g} s (the heart-rate window of "
                 f"profile {profile.name})")
         profile = profile.with_hop(hop_s)
+    args.resolved_profile = profile
     return profile
+
+
+def _run_config(args, profile, **more) -> dict:
+    """The ``# config:`` header of a log: the profile in full (what ``--profile-file``
+    reads back: see ``ridgewatch profiles --from-log``), the command line, and ``more``."""
+    config = {"profile": profile.to_dict(), **more}
+    if getattr(args, "profile_file", None):
+        config["profile_file"] = str(args.profile_file)
+    if getattr(args, "command_line", None):
+        config["command"] = args.command_line
+    return config
+
+
+def _profile_words(args, profile) -> str:
+    source = f" (from {args.profile_file})" if getattr(args, "profile_file", None) else ""
+    return f"profile {profile.name}{source}"
 
 
 def _progress_printer(quiet: bool):
@@ -368,8 +409,8 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
     selected = select(source.info, args.channel)
     profile = _profile(args)
     mapping = {s.name: s.kind for s in selected}
-    config = {"profile": profile.to_dict(), "fs": source.info.fs,
-              "speed": getattr(args, "speed", None), "mode": mode}
+    config = _run_config(args, profile, fs=source.info.fs, speed=getattr(args, "speed", None),
+                         mode=mode)
     config["speed"] = "max" if config["speed"] == math.inf else config["speed"]
     display = args.display or ("qt" if _screen_available() else "text")
     if display == "qt" and not _screen_available():
@@ -417,7 +458,7 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
         if warning:
             print(f"ridgewatch: warning: {warning}", file=sys.stderr)
         print("channels: " + ", ".join(f"{s.name}={s.kind}" for s in selected)
-              + f"; profile {profile.name}" + (f"; log {log_path}" if log_path else "")
+              + f"; {_profile_words(args, profile)}" + (f"; log {log_path}" if log_path else "")
               + ("; publishing LSL streams " + ", ".join(
                   f"'{n}'" for n in [*runner.outlet.names.values(), runner.outlet.marker_name])
                   if runner.outlet else ""),
@@ -573,6 +614,14 @@ def cmd_simulate(args) -> int:
 
 
 def cmd_profiles(args) -> int:
+    if args.show or args.from_log:
+        from streamer.profile_file import profile_from_log, profile_toml, run_summary
+        if args.show:
+            print(profile_toml(get_profile(args.show)), end="")
+        else:
+            profile, config = profile_from_log(args.from_log)
+            print(profile_toml(profile, header=run_summary(args.from_log, config)), end="")
+        return 0
     for name, profile in sorted(PROFILES.items()):
         marker = " (default)" if name == DEFAULT_PROFILE else ""
         print(f"{name}{marker}: {profile.description}")
@@ -596,7 +645,7 @@ def cmd_offline(args) -> int:
     selected = select(recording.info, args.channel)
     profile = _profile(args)
     samples = recording.samples[:, [s.index for s in selected]]
-    config = {"profile": profile.to_dict(), "fs": recording.info.fs, "mode": "offline"}
+    config = _run_config(args, profile, fs=recording.info.fs, mode="offline")
     paths = [(s.name, s.kind) for s in selected]
     try:  # the settings the engine refuses for this input, before any file is touched
         RateMonitor(paths, recording.info.fs, profile)
@@ -696,7 +745,9 @@ def cmd_compare(args) -> int:
 def cmd_batch(args) -> int:
     from streamer.batch import BatchOptions, run_batch
 
-    options = BatchOptions(out_dir=args.out, profile=args.profile,
+    # A profile from a file travels to the worker processes as the Profile itself.
+    profile = _profile(args) if args.profile_file else (args.profile or DEFAULT_PROFILE)
+    options = BatchOptions(out_dir=args.out, profile=profile,
                            channels=tuple(args.channel or ()), fs=args.fs,
                            report=not args.no_report, overwrite=args.overwrite,
                            time_column=args.time_column, time_unit=args.time_unit,
@@ -741,10 +792,14 @@ def main(argv=None) -> int:
     stderr.setFormatter(_OneLineFormatter("ridgewatch: %(message)s"))
     logging.basicConfig(level=logging.WARNING, handlers=[stderr])  # no-op if configured
     parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
     args = parser.parse_args(argv)
+    args.command_line = shlex.join(["ridgewatch", *argv])
     if getattr(args, "quiet", False):
         logging.getLogger("ridgewatch").setLevel(logging.ERROR)
     try:
+        if hasattr(args, "profile_file"):
+            _profile(args)  # a bad --profile-file or --hop is refused before any input is read
         return COMMANDS[args.command](args)
     except (InputError, ParameterError) as exc:
         print(f"ridgewatch: error: {one_line(exc)}", file=sys.stderr)

@@ -27,6 +27,11 @@ labelled vertical lines on the rate history (:class:`MarkerLines`). The key only
 a request to the runner (``Runner.add_user_marker``, a queue); the marker is drawn when
 it comes back with the updates, so the window shows what the log holds.
 
+Freezing (the key :data:`FREEZE_KEY` or the header's button) stops redrawing the plots
+only: the feed is still drained into the buffers, the readout cards, stream status and
+session clock go on, and estimation and logging never notice. Resuming redraws at once
+from the buffers, so the plots catch up with the newest data.
+
 Set the environment variable ``RIDGEWATCH_SCREENSHOT`` to a ``.png`` path to save the
 window, as drawn just before it closes, to that file.
 """
@@ -48,8 +53,8 @@ from pyqtgraph.Qt import QtCore, QtGui, QtWidgets
 from estimators.display_rule import GREY, GREY_CONFIDENCE, SHOW, SHOW_CONFIDENCE, WITHHOLD
 from streamer.display.buffers import (DisplayBuffers, DisplayLayout, FramePacer, UpdateFeed,
                                       confidence_band, rate_axis_range)
-from streamer.display.state import (QUALITY_WORDS, format_rate, marker_label, quality_word,
-                                    quantity_name, unit_of)
+from streamer.display.state import (QUALITY_WORDS, SessionClock, format_duration, format_rate,
+                                    marker_label, quality_word, quantity_name, unit_of)
 from streamer.errors import InputError
 
 log = logging.getLogger("ridgewatch")
@@ -74,6 +79,25 @@ SIGNAL_POLL_MS = 100
 SLOW_INTERVAL_S = 0.2
 """Least wall time between redraws of everything but the raw traces."""
 
+FREEZE_KEY = "F"
+"""Key that freezes and resumes the plots (the button in the header does the same)."""
+
+TIME_AXIS_LABEL = "time before the newest sample (s)"
+"""Label of every time axis: plots run in stream seconds, 0 at the newest sample."""
+
+CARD_WIDTH = 300
+"""Width of the readout cards (px): the digits, unit and two detail lines fit."""
+
+COMPACT_TRACES = 2
+"""With more channels than this, each raw-trace row gets a one-line label, so that
+eight rows fit in a 1280 x 800 window."""
+
+
+def _trace_stretch(n_channels: int) -> int:
+    """Share of the plot column for the raw traces (the rates and the spectra get 4
+    each): 4 for one or two channels, one more per two channels up to 7 for eight."""
+    return 4 + max(0, min(n_channels, 8) - 1) // 2
+
 # A colour-blind-safe qualitative palette (hex values from memory), reordered so the
 # first colours stand out on a dark background. Colour is never the only carrier:
 # every curve is also named in text and drawn with its own line style.
@@ -88,6 +112,7 @@ TEXT = "#E8EAED"
 DIM = "#8A9199"
 GRID = "#2E363F"
 RIDGE = "#FF5CA8"
+FROZEN_COLOUR = "#F5C26B"
 WORD_COLOURS = {"good": TEXT, "weak": "#F5C26B", "unusable": "#FF8A80"}
 """The quality word's colour only repeats what the word says."""
 
@@ -264,7 +289,8 @@ class ReadoutCard(QtWidgets.QFrame):
         self.unit.setAlignment(QtCore.Qt.AlignmentFlag.AlignLeft
                                | QtCore.Qt.AlignmentFlag.AlignBottom)
         self.detail = QtWidgets.QLabel("")
-        self.detail.setStyleSheet("font-size: 18px;")
+        # Compact cards put the delay on the first line: smaller type keeps it in the card.
+        self.detail.setStyleSheet(f"font-size: {16 if compact else 18}px;")
         self.detail.setTextFormat(QtCore.Qt.TextFormat.RichText)
         grid.addWidget(self.title, 0, 0, 1, 2)
         grid.addWidget(self.value, 1, 0)
@@ -333,14 +359,18 @@ class MonitorWindow(QtWidgets.QMainWindow):
         readout), or None.
     title : shown in the header (e.g. the source's name).
     trace_span_s, rate_span_s, image_span_s : seconds shown per kind of plot.
+    clock : the session clock shown in the header (default: starts now).
     """
 
     closed = QtCore.Signal()
 
     def __init__(self, layout: DisplayLayout, feed: UpdateFeed, stats=None, title: str = "",
                  trace_span_s: float = 10.0, rate_span_s: float = 300.0,
-                 image_span_s: float = 120.0):
+                 image_span_s: float = 120.0, clock: SessionClock | None = None):
         super().__init__()
+        self.clock = clock or SessionClock()
+        self.frozen = False
+        self.frozen_at_s = math.nan
         self.layout_info = layout
         self.feed = feed
         self.stats = stats
@@ -380,15 +410,20 @@ class MonitorWindow(QtWidgets.QMainWindow):
         scroll.setWidgetResizable(True)
         scroll.setFrameShape(QtWidgets.QFrame.Shape.NoFrame)
         scroll.setHorizontalScrollBarPolicy(QtCore.Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
-        scroll.setFixedWidth(350)  # many outputs scroll instead of squeezing the digits
+        scroll.setFixedWidth(CARD_WIDTH + 20)  # many outputs scroll, digits stay large
         body.addWidget(scroll, 0)
         plots = QtWidgets.QVBoxLayout()
         body.addLayout(plots, 1)
-        plots.addWidget(self._build_traces(), 4)
+        # Every trace row keeps a readable height: more channels, more of the column.
+        n = len(layout.channels)
+        self.compact_traces = n > COMPACT_TRACES
+        plots.addWidget(self._build_traces(), _trace_stretch(n))
         plots.addWidget(self._build_rates(), 4)
         plots.addWidget(self._build_images(), 4)
         self._build_status_bar()
         self._build_markers()
+        shortcut = QtGui.QShortcut(QtGui.QKeySequence(FREEZE_KEY), self)
+        shortcut.activated.connect(self.toggle_frozen)
 
         self.pacer = FramePacer(fastest_s=FRAME_INTERVAL_MS / 1e3, share=DRAW_SHARE)
         self.timer = QtCore.QTimer(self)
@@ -402,17 +437,38 @@ class MonitorWindow(QtWidgets.QMainWindow):
         name.setStyleSheet("font-size: 24px; font-weight: bold;")
         self.source_label = QtWidgets.QLabel(title)
         self.source_label.setStyleSheet(f"font-size: 16px; color: {DIM};")
+        # A long source name is cut rather than widening the window beyond the screen.
+        self.source_label.setSizePolicy(QtWidgets.QSizePolicy.Policy.Ignored,
+                                        QtWidgets.QSizePolicy.Policy.Preferred)
         self.stream_label = QtWidgets.QLabel("\u25cb waiting for data")
-        self.stream_label.setStyleSheet("font-size: 22px; font-weight: bold;")
-        self.timing_label = QtWidgets.QLabel("")
-        self.timing_label.setStyleSheet("font-size: 18px;")
+        self.stream_label.setStyleSheet("font-size: 20px; font-weight: bold;")
+        self.clock_label = QtWidgets.QLabel(self.clock.text())
+        self.clock_label.setStyleSheet("font-size: 18px;")
+        self.clock_label.setToolTip("time since the session started, and the local time")
+        self.frozen_label = QtWidgets.QLabel("")
+        self.frozen_label.setToolTip("only the plots wait: the rates on the cards, the log "
+                                     "and the outlet go on")
+        self.frozen_label.setStyleSheet(f"font-size: 15px; font-weight: bold; "
+                                        f"color: {FROZEN_COLOUR};")
+        self.freeze_button = QtWidgets.QPushButton(f"Freeze plots ({FREEZE_KEY})")
+        self.freeze_button.setCheckable(True)
+        self.freeze_button.setFocusPolicy(QtCore.Qt.FocusPolicy.NoFocus)
+        self.freeze_button.setToolTip("stop redrawing the plots to look at them; the rates, "
+                                      "the log and the outlet go on")
+        self.freeze_button.setStyleSheet(
+            f"QPushButton {{ font-size: 15px; color: {TEXT}; background: {PANEL}; "
+            f"border: 1px solid {DIM}; border-radius: 4px; padding: 3px 10px; }} "
+            f"QPushButton:checked {{ color: {BACKGROUND}; background: {FROZEN_COLOUR}; }}")
+        self.freeze_button.toggled.connect(self.set_frozen)
         row.addWidget(name)
-        row.addSpacing(16)
-        row.addWidget(self.source_label)
-        row.addStretch(1)
+        row.addSpacing(12)
+        row.addWidget(self.source_label, 1)
         row.addWidget(self.stream_label)
-        row.addSpacing(32)
-        row.addWidget(self.timing_label)
+        row.addSpacing(20)
+        row.addWidget(self.clock_label)
+        row.addSpacing(16)
+        row.addWidget(self.frozen_label)
+        row.addWidget(self.freeze_button)
         return row
 
     def _build_cards(self):
@@ -423,14 +479,14 @@ class MonitorWindow(QtWidgets.QMainWindow):
         compact = len(self.layout_info.outputs) > 4
         for info in self.layout_info.outputs:
             card = ReadoutCard(info, self.colours.get(info.source, FUSED_COLOUR), compact)
-            card.setFixedWidth(330)
+            card.setFixedWidth(CARD_WIDTH)
             card.show_estimate(None, False)
             self.cards[info.key] = card
             column.addWidget(card)
         column.addStretch(1)
         guide = QtWidgets.QLabel(self._reading_guide() + " " + self._marker_hint())
         guide.setWordWrap(True)
-        guide.setFixedWidth(330)
+        guide.setFixedWidth(CARD_WIDTH)
         guide.setStyleSheet(f"font-size: 14px; color: {DIM};")
         column.addWidget(guide)
         return column
@@ -476,7 +532,7 @@ class MonitorWindow(QtWidgets.QMainWindow):
 
     @staticmethod
     def _style_axes(plot, show_bottom: bool, left_label: str | None = None,
-                    grid: bool = False, bottom_label: bool = True):
+                    grid: bool = False, bottom_label: str | None = TIME_AXIS_LABEL):
         font = QtGui.QFont()
         font.setPixelSize(14)
         for side in ("left", "bottom"):
@@ -489,8 +545,7 @@ class MonitorWindow(QtWidgets.QMainWindow):
         if left_label:
             plot.setLabel("left", left_label, color=TEXT, **{"font-size": "15px"})
         if show_bottom and bottom_label:
-            plot.setLabel("bottom", "seconds before the newest sample", color=TEXT,
-                          **{"font-size": "14px"})
+            plot.setLabel("bottom", bottom_label, color=TEXT, **{"font-size": "13px"})
         if not show_bottom:
             plot.hideAxis("bottom")
         if grid:
@@ -503,11 +558,11 @@ class MonitorWindow(QtWidgets.QMainWindow):
         self.traces_widget = widget
         self.trace_curves, self.channel_labels, self.trace_plots = [], [], []
         widget.ci.addLabel(f"raw signals, last {self.trace_span_s:g} s", row=0, col=0,
-                           colspan=2, color=TEXT, size="14pt", justify="left")
+                           colspan=2, color=TEXT, size="12pt", justify="left")
         n = len(self.layout_info.channels)
         for i, (name, kind) in enumerate(self.layout_info.channels):
             label = widget.ci.addLabel("", row=i + 1, col=0, justify="left")
-            label.setFixedWidth(175)
+            label.setFixedWidth(255 if self.compact_traces else 175)
             plot = widget.ci.addPlot(row=i + 1, col=1)
             self._style_axes(plot, show_bottom=False)
             plot.hideAxis("left")
@@ -528,9 +583,13 @@ class MonitorWindow(QtWidgets.QMainWindow):
         axis.setTextPen(pg.mkPen(TEXT))
         axis.setPen(pg.mkPen(DIM))
         font = QtGui.QFont()
-        font.setPixelSize(14)
+        font.setPixelSize(13)
         axis.setStyle(tickFont=font)
+        axis.setLabel(TIME_AXIS_LABEL, color=TEXT, **{"font-size": "13px"})
         widget.ci.addItem(axis, row=n + 1, col=1)
+        self.trace_axis = axis
+        # Rows close together: eight of them and the axis fit in a 1280 x 800 window.
+        widget.ci.layout.setVerticalSpacing(2 if self.compact_traces else 6)
         for plot in self.trace_plots[1:]:
             plot.setXLink(self.trace_plots[0])
         for i in range(n):
@@ -548,19 +607,21 @@ class MonitorWindow(QtWidgets.QMainWindow):
         minutes = self.rate_span_s / 60.0
         for col, quantity in enumerate(quantities):
             plot = widget.ci.addPlot(row=0, col=col)
-            plot.setTitle(f"{quantity_name(quantity)}, {unit_of(quantity)}  \u00b7  last "
-                          f"{minutes:g} min, band: confidence", color=TEXT, size="14pt")
-            self._style_axes(plot, show_bottom=True, grid=True)
+            plot.setTitle(f"{quantity_name(quantity)}, last {minutes:g} min (band: "
+                          f"confidence)", color=TEXT, size="12pt")
+            self._style_axes(plot, show_bottom=True, grid=True, left_label=unit_of(quantity))
             plot.setXRange(-self.rate_span_s, 0, padding=0)
             plot.setMouseEnabled(x=False, y=False)
             plot.disableAutoRange()
             first = next(o for o in self.layout_info.outputs if o.quantity == quantity)
             plot.setYRange(*first.band_per_min, padding=0)  # until data come
             plot._y_range = None
-            legend = plot.addLegend(offset=(8, 8), labelTextColor=TEXT,
-                                    labelTextSize="13pt", brush=pg.mkBrush(PANEL + "D0"))
-            k = 0
             sharing = sum(o.quantity == quantity for o in self.layout_info.outputs)
+            legend = plot.addLegend(offset=(6, 6), labelTextColor=TEXT,
+                                    labelTextSize="13pt" if sharing <= 3 else "10pt",
+                                    brush=pg.mkBrush(PANEL + "D0"), verSpacing=-6, horSpacing=14,
+                                    colCount=1 if sharing <= 3 else 2)
+            k = 0
             for info in self.layout_info.outputs:
                 q, source = info.key
                 if q != quantity:
@@ -589,15 +650,18 @@ class MonitorWindow(QtWidgets.QMainWindow):
         spectra = "de-shape spectra" if all(o.deshape for o in outputs) else "spectra"
         widget.ci.addLabel(f"{spectra}, last {self.image_span_s / 60:g} min "
                            f"(brighter = stronger); pink line = tracked rate", row=0,
-                           col=0, colspan=max(1, len(outputs)), color=TEXT, size="14pt",
+                           col=0, colspan=max(1, len(outputs)), color=TEXT, size="12pt",
                            justify="left")
+        many = len(outputs) > 4
         previous = None
         for col, info in enumerate(outputs):
             quantity, source, grid = info.quantity, info.source, info.grid
             plot = widget.ci.addPlot(row=1, col=col)
-            plot.setTitle(f"{source} \u00b7 {quantity_name(quantity)}", color=TEXT,
-                          size="13pt")
-            self._style_axes(plot, show_bottom=True, bottom_label=False,
+            # Many images: the source names the plot, the unit on the left axis (at the
+            # first of each quantity) says which rate it is.
+            plot.setTitle(source if many else f"{source} \u00b7 {quantity_name(quantity)}",
+                          color=TEXT, size="11pt" if many else "12pt")
+            self._style_axes(plot, show_bottom=True, bottom_label="time (s)",
                              left_label=unit_of(quantity) if quantity != previous else None)
             previous = quantity
             plot.setMouseEnabled(x=False, y=False)
@@ -625,6 +689,8 @@ class MonitorWindow(QtWidgets.QMainWindow):
         bar.addWidget(caution)
         self.notice_label = QtWidgets.QLabel("")
         bar.addWidget(self.notice_label, 1)
+        self.timing_label = QtWidgets.QLabel("")
+        bar.addPermanentWidget(self.timing_label)
         self.display_label = QtWidgets.QLabel("")
         bar.addPermanentWidget(self.display_label)
 
@@ -658,15 +724,17 @@ class MonitorWindow(QtWidgets.QMainWindow):
         The raw traces move with every chunk and are redrawn on every tick that brought
         one. Everything else changes at most once per hop and scrolls by about a pixel
         per hop, so it is redrawn at most every :data:`SLOW_INTERVAL_S` seconds: painting
-        is what costs, and the engine shares the interpreter with it.
+        is what costs, and the engine shares the interpreter with it. While
+        :attr:`frozen`, the plots keep what they show; the cards, status and clock go on.
         """
         wall = time.monotonic()
         if force or wall - self._timing_drawn_at >= 0.5:
             self._timing_drawn_at = wall
             self._draw_timing()
+            self._draw_clock()
         b = self.buffers
         now = b.now_s
-        if b.raw.version != self._raw_drawn and math.isfinite(now):
+        if not self.frozen and b.raw.version != self._raw_drawn and math.isfinite(now):
             self._raw_drawn = b.raw.version
             self.frames += 1
             t, x = b.raw.view()
@@ -684,7 +752,7 @@ class MonitorWindow(QtWidgets.QMainWindow):
         for key, card in self.cards.items():
             card.show_estimate(state.latest.get(key), key in state.ever_rated, lost)
         self._draw_channel_labels()
-        if not math.isfinite(now):
+        if self.frozen or not math.isfinite(now):
             return
         for key, curve in self.rate_curves.items():
             view = b.rates[key].view()
@@ -739,23 +807,26 @@ class MonitorWindow(QtWidgets.QMainWindow):
 
     def _draw_channel_labels(self) -> None:
         state = self.buffers.state
+        # Compact rows: one line in smaller type (name, kind, word, value).
+        big, small, word_pt = (12, 10, 11) if self.compact_traces else (15, 12, 14)
         for label, (name, kind) in zip(self.channel_labels, self.layout_info.channels):
             est = state.channel_estimate(name, kind)
             colour = self.colours[name]
-            head = (f"<span style='font-size:15pt; font-weight:bold; color:{colour}'>"
-                    f"{name}</span>&nbsp;<span style='font-size:11pt; color:{DIM}'>"
+            head = (f"<span style='font-size:{big}pt; font-weight:bold; color:{colour}'>"
+                    f"{name}</span>&nbsp;<span style='font-size:{small - 1}pt; color:{DIM}'>"
                     f"{kind}</span>")
             if kind == "acc":
-                body = f"<span style='font-size:12pt; color:{DIM}'>motion reference</span>"
+                body = f"<span style='font-size:{small}pt; color:{DIM}'>motion reference</span>"
             elif est is None:
-                body = f"<span style='font-size:12pt; color:{DIM}'>quality: warming up</span>"
+                body = (f"<span style='font-size:{small}pt; color:{DIM}'>quality: warming "
+                        f"up</span>")
             else:
                 word = quality_word(est.quality)
-                body = (f"<span style='font-size:14pt; font-weight:bold; "
+                body = (f"<span style='font-size:{word_pt}pt; font-weight:bold; "
                         f"color:{WORD_COLOURS[word]}'>{word}</span>&nbsp;"
-                        f"<span style='font-size:12pt; color:{TEXT}'>quality "
-                        f"{est.quality:.2f}</span>")
-            html = f"{head}<br>{body}"
+                        f"<span style='font-size:{small}pt; color:{TEXT}'>"
+                        f"quality {est.quality:.2f}</span>")
+            html = f"{head}{'&nbsp;&nbsp;' if self.compact_traces else '<br>'}{body}"
             if getattr(label, "_html", None) != html:
                 label.setText(html)
                 label._html = html
@@ -780,8 +851,38 @@ class MonitorWindow(QtWidgets.QMainWindow):
         load = (c1 - c0) / (s1 - s0)
         hop_s = min(o.hop_s for o in self.layout_info.outputs)
         faster = f"{1 / load:,.0f}x" if load > 0 else "\u221e x"
-        self.timing_label.setText(f"compute {1e3 * load * hop_s:.1f} ms per hop "
+        self.timing_label.setText(f"compute {1e3 * load * hop_s:.1f} ms/hop "
                                   f"({faster} real time)")
+
+    def _draw_clock(self) -> None:
+        text = self.clock.text()
+        if self.clock_label.text() != text:
+            self.clock_label.setText(text)
+
+    # ----------------------------------------------------------------- freezing
+    def set_frozen(self, frozen: bool) -> None:
+        """Freeze (True) or resume (False) the plots. Only drawing stops: the feed is
+        still drained, so resuming redraws at once from up-to-date buffers."""
+        frozen = bool(frozen)
+        if frozen == self.frozen:
+            return
+        self.frozen = frozen
+        if self.freeze_button.isChecked() != frozen:
+            self.freeze_button.setChecked(frozen)  # its signal comes back here: no-op
+        if frozen:
+            self.frozen_at_s = self.clock.elapsed_s()
+            self.frozen_label.setText(f"plots frozen at {format_duration(self.frozen_at_s)} ")
+            self.freeze_button.setText(f"Resume plots ({FREEZE_KEY})")
+        else:
+            self.frozen_label.setText("")
+            self.freeze_button.setText(f"Freeze plots ({FREEZE_KEY})")
+            self._raw_drawn = -1
+            self._slow_drawn = None
+            self.draw(force=True)
+
+    def toggle_frozen(self) -> None:
+        """The freeze key's slot."""
+        self.set_frozen(not self.frozen)
 
     def display_fps(self) -> float:
         """Paints per second of the trace view over the last two seconds."""

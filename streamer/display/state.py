@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import collections
 import math
+import time
 from dataclasses import dataclass, field
 
 from estimators.display_rule import UNUSABLE_QUALITY
@@ -74,6 +75,47 @@ def format_rate(rate_per_min: float, digits: int = 0) -> str:
     if rate_per_min is None or not math.isfinite(rate_per_min):
         return "\u2014"
     return f"{rate_per_min:.{digits}f}"
+
+
+def format_duration(seconds: float) -> str:
+    """Elapsed time as ``H:MM:SS`` (hours as many as needed); ``-:--:--`` when unknown.
+
+    Examples
+    --------
+    >>> format_duration(0.4), format_duration(83.9), format_duration(90061)
+    ('0:00:00', '0:01:23', '25:01:01')
+    """
+    if seconds is None or not math.isfinite(seconds):
+        return "-:--:--"
+    whole = int(max(0.0, seconds))
+    return f"{whole // 3600}:{whole // 60 % 60:02d}:{whole % 60:02d}"
+
+
+@dataclass
+class SessionClock:
+    """Elapsed session time and the wall-clock time, for every display.
+
+    The session starts when the clock is made (the display opens with the run);
+    ``wall`` is injectable so tests need no real time. The wall-clock time is local,
+    as a lab notes it; the log's ``started`` header holds the same instant in UTC.
+    """
+
+    wall: object = time.time
+    started: float = float("nan")
+
+    def __post_init__(self):
+        if not math.isfinite(self.started):
+            self.started = self.wall()
+
+    def elapsed_s(self) -> float:
+        return self.wall() - self.started
+
+    def text(self, sep: str = "  \u00b7  ") -> str:
+        """``session 0:12:34 · 14:05:09`` (elapsed, then local time), parts joined by
+        ``sep``."""
+        now = self.wall()
+        local = time.strftime("%H:%M:%S", time.localtime(now))
+        return f"session {format_duration(now - self.started)}{sep}{local}"
 
 
 def _speed_words(speed) -> str:

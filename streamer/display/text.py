@@ -17,7 +17,7 @@ import threading
 import time
 
 from estimators.display_rule import GREY, WITHHOLD
-from streamer.display.state import DisplayState, marker_label, quality_word, unit_of
+from streamer.display.state import DisplayState, SessionClock, marker_label, quality_word, unit_of
 
 CAUTION = "research tool, not a medical device"
 
@@ -85,10 +85,14 @@ def format_marker_line(marker) -> str:
 
 
 class TextDisplay:
-    """Drains a queue of runner updates and prints the latest value per quantity/source."""
+    """Drains a queue of runner updates and prints the latest value per quantity/source,
+    under a header with the stream status and the session clock (``clock``; elapsed
+    session time and local wall-clock time)."""
 
-    def __init__(self, stream=None, refresh_s: float = 0.5, maxsize: int = 256):
+    def __init__(self, stream=None, refresh_s: float = 0.5, maxsize: int = 256,
+                 clock: SessionClock | None = None):
         self.stream = stream or sys.stdout
+        self.clock = clock or SessionClock()
         self.refresh_s = refresh_s
         self.queue: queue.Queue = queue.Queue(maxsize=maxsize)
         self.state = DisplayState()
@@ -153,8 +157,9 @@ class TextDisplay:
             self.state.apply(update)
 
     def header(self) -> str:
-        """The first line: caution, stream status and the last notice."""
-        line = f"ridgewatch ({CAUTION}) - {self.state.stream}"
+        """The first line: caution, stream status, session and wall-clock time, and the
+        last notice."""
+        line = f"ridgewatch ({CAUTION}) - {self.state.stream} - {self.clock.text(sep=' at ')}"
         if self.state.status not in (self.state.stream, "running", "waiting for data"):
             line += f" - {self.state.status}"
         if self.state.dropped:

@@ -499,6 +499,17 @@ class MonitorWindow(QtWidgets.QMainWindow):
         self.marker_shortcut = QtGui.QShortcut(QtGui.QKeySequence(MARKER_KEY), self)
         self.marker_shortcut.activated.connect(self.add_user_marker)
 
+    def keyPressEvent(self, event) -> None:  # noqa: N802 (Qt's name)
+        """The window's keys when no shortcut took them (e.g. the window is not the
+        active one, as under an offscreen platform): the same actions."""
+        key = event.text().upper()
+        if key == MARKER_KEY:
+            self.add_user_marker()
+        elif key == FREEZE_KEY:
+            self.toggle_frozen()
+        else:
+            super().keyPressEvent(event)
+
     def add_user_marker(self) -> None:
         """Key :data:`MARKER_KEY`: ask the runner for a marker ``user marker N`` at the
         newest sample. Never waits: the runner takes it from a queue."""

@@ -28,7 +28,7 @@ from estimators.config import Profile
 from estimators.estimate import Estimate
 from estimators.monitor import Gap, RateMonitor
 from streamer.channels import Selected
-from streamer.sources.base import Chunk, SourceEvent
+from streamer.sources.base import Chunk, Marker, SourceEvent
 
 log = logging.getLogger("ridgewatch")
 
@@ -226,10 +226,11 @@ class Runner:
             log.info("%s", event.message)
         if self.log is not None and event.kind != "replaying":
             self.log.write_event(event.kind, event.message, event.time_s)
-        if event.kind == "resumed":
+        if event.kind == "resumed" and event.detail.get("restart", True):
             # The time axis may jump at a comeback (forwards over the loss, or backwards
             # for a restarted sender): windows must not straddle it, so estimation
-            # starts afresh, as the LSL source asks of its consumers.
+            # starts afresh, as the LSL source asks of its consumers (not when a
+            # session's motion-reference stream comes back: the time axis ran on).
             self.monitor.reset()
         self._notify(Update([], None, {}, event))
 
@@ -250,6 +251,9 @@ class Runner:
                     break
                 if isinstance(item, Chunk):
                     self._handle_chunk(item)
+                elif isinstance(item, Marker):
+                    if self.log is not None:
+                        self.log.write_marker(item)
                 else:
                     self._handle_event(item)
                     if item.kind == "end":

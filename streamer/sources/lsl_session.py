@@ -32,8 +32,8 @@ Loss and return, per stream
   the estimates are not restarted for a motion reference coming back.
 * A stream that sends nothing for longer than its silence limit (the stream's own
   :attr:`~streamer.sources.lsl_source.LslSource.silence_limit_s`, which learns a buffering
-  sender's rhythm) stops holding the others back; the first time a stream has sent
-  nothing at all by then, an ``"irregular"`` event says so. Its samples are used again
+  sender's rhythm) stops holding the others back; a stream that has sent nothing at all
+  that long after the first samples of another gets an ``"irregular"`` event saying so. Its samples are used again
   as soon as they flow.
 * A marker stream lost: a ``"lost"`` event, and it is looked for again; markers are
   never held back.
@@ -341,8 +341,10 @@ class LslSession:
             return
         self._start()
         n = len(self.streams)
-        started = time.monotonic()
-        last_delivery = [started] * n
+        # A stream's silence is counted from its last delivery, or, before its first,
+        # from the first delivery of any stream: senders that all start late hold
+        # nothing back, and a stream that never sends does not block the others.
+        last_delivery = [math.inf] * n
         delivered = [False] * n
         told_silent = [False] * n
         running = n
@@ -360,7 +362,10 @@ class LslSession:
                 if isinstance(item, Chunk):
                     self.merger.push(k, item.samples, item.timestamps)  # active again
                     self._holding[k] = True
-                    last_delivery[k], delivered[k] = time.monotonic(), True
+                    now = time.monotonic()
+                    if not any(delivered):
+                        last_delivery = [now] * n
+                    last_delivery[k], delivered[k] = now, True
                 elif isinstance(item, SourceEvent) and k is not None:
                     yield self._stream_event(k, item)
                 elif item is not None:  # a marker, or a marker stream's event

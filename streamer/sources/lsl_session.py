@@ -30,11 +30,11 @@ Loss and return, per stream
   quality) while every other channel carries on. When it comes back, a ``"resumed"``
   event; ``detail["restart"]`` is False for a stream of accelerometer channels only, so
   the estimates are not restarted for a motion reference coming back.
-* A stream that sends nothing for longer than its silence limit (the stream's own
-  :attr:`~streamer.sources.lsl_source.LslSource.silence_limit_s`, which learns a buffering
-  sender's rhythm) stops holding the others back; a stream that has sent nothing at all
-  that long after the first samples of another gets an ``"irregular"`` event saying so. Its samples are used again
-  as soon as they flow.
+* A stream that sends nothing for longer than its silence limit
+  (:attr:`~streamer.sources.lsl_source.LslSource.silence_limit_s`, which learns a
+  buffering sender's rhythm) stops holding the others back; a stream that has sent
+  nothing at all that long after the first samples of another gets an ``"irregular"``
+  event saying so. Its samples are used again as soon as they flow.
 * A marker stream lost: a ``"lost"`` event, and it is looked for again; markers are
   never held back.
 """
@@ -49,7 +49,6 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Iterator
 
-import numpy as np
 import pylsl
 from pylsl.util import LostError
 from pylsl.util import TimeoutError as LslTimeoutError

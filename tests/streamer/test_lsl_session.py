@@ -14,7 +14,6 @@ while the others run. Nothing asserts on wall-clock time; waits are bounded for 
 
 from __future__ import annotations
 
-import math
 import subprocess
 import sys
 import threading
@@ -25,14 +24,10 @@ import numpy as np
 import pylsl
 import pytest
 
-from estimators.errors import ParameterError
-from streamer.channels import select
-from streamer.errors import InputError
 from streamer.simulation import WristRunSession
-from streamer.sinks.estimate_log import EstimateLog, read_log
-from streamer.sources.base import ChannelInfo, Chunk, Marker, SourceEvent, SourceInfo
-from streamer.sources.lsl_session import Criterion, LslSession, criteria_from_options
-from streamer.sources.merge import merged_info
+from streamer.sinks.estimate_log import read_log
+from streamer.sources.base import Chunk, Marker, SourceEvent
+from streamer.sources.lsl_session import Criterion, LslSession
 from tests.streamer.lsl_devices import clock_shift_prefix, publish, publish_markers
 from tests.streamer.test_cli import HANG_S, cli_command, cli_env, run_cli
 
@@ -253,29 +248,31 @@ def test_session_reports_the_lost_stream_and_runs_on(lab):
     assert np.all(np.diff(times) > 0)
 
 
-# -- without LSL -----------------------------------------------------------------------
-
-
-def test_options_once_each_make_one_stream_repeated_ones_several():
-    assert criteria_from_options(["a"], ["PPG"], None) == [Criterion("a", "PPG")]
-    assert criteria_from_options(["a", "b"], ["Markers"], ["x"]) == [
-        Criterion(name="a"), Criterion(name="b"), Criterion(type="Markers"),
-        Criterion(source_id="x")]
-    with pytest.raises(ParameterError, match=r"^criteria must name at least one stream$"):
-        LslSession([])
-
-
-def test_merged_names_work_in_channel_and_the_log_header(tmp_path):
-    band = SourceInfo("band", 125.0, (ChannelInfo("PPG", "ppg"), ChannelInfo("X", "acc")))
-    strap = SourceInfo("strap", 250.0, (ChannelInfo("ECG", "ecg"), ChannelInfo("X", "acc")))
-    info = merged_info([band, strap])
-    chosen = select(info, ["PPG=ppg", "band/X=acc", "strap/X=acc"])
-    assert [(c.index, c.name) for c in chosen] == [(0, "PPG"), (1, "band/X"), (3, "strap/X")]
-    with pytest.raises(InputError, match=r"^band \+ strap: no channel 'X'; channels are: "
-                                         r"PPG, band/X, ECG, strap/X \(or a 0-based index "
-                                         r"below 4\)$"):
-        select(info, ["PPG=ppg", "X=acc"])
-    mapping = {c.name: c.kind for c in chosen}
-    log = EstimateLog(tmp_path / "log.csv", "live", info.name, mapping, {})
-    log.close()
-    assert read_log(tmp_path / "log.csv").header["channels"] == mapping
+def test_a_stream_that_never_sends_does_not_hold_the_others_back():
+    ppg, silent = unique("rw-ppg"), unique("rw-silent-acc")
+    stop = threading.Event()
+    epoch = time.time() + 1.5
+    outlet = pylsl.StreamOutlet(pylsl.StreamInfo(silent, "Accelerometer", 1, 50.0,
+                                                 pylsl.cf_double64, unique("dev")))
+    sender = threading.Thread(target=publish, daemon=True, args=(
+        "ppg", ppg, unique("dev"), 125.0, epoch, 30.0, SESSION, stop))
+    sender.start()
+    items = []
+    try:
+        with LslSession([Criterion(name=ppg), Criterion(name=silent)], timeout_s=10.0,
+                        lost_after_s=1.0) as session:
+            for item in session.chunks():
+                items.append(item)
+                chunks = [i for i in items if isinstance(i, Chunk)]
+                if sum(len(c) for c in chunks) >= 125 or len(items) > 10_000:
+                    break
+    finally:
+        stop.set()
+        del outlet
+    events = [i for i in items if isinstance(i, SourceEvent)]
+    assert [e.message for e in events] == [
+        f"stream '{silent}' has sent no samples for 1 s; continuing with the other streams "
+        f"without it"]
+    samples, _ = _chunks(items)
+    assert len(samples) >= 125
+    assert np.isfinite(samples[:, 0]).all() and np.isnan(samples[:, 1]).all()

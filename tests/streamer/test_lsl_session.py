@@ -25,6 +25,7 @@ import pylsl
 import pytest
 
 from streamer.simulation import WristRunSession
+from streamer.errors import InputError
 from streamer.sinks.estimate_log import read_log
 from streamer.sources.base import Chunk, Marker, SourceEvent
 from streamer.sources.lsl_session import Criterion, LslSession
@@ -276,3 +277,53 @@ def test_a_stream_that_never_sends_does_not_hold_the_others_back():
     samples, _ = _chunks(items)
     assert len(samples) >= 125
     assert np.isfinite(samples[:, 0]).all() and np.isnan(samples[:, 1]).all()
+
+
+def test_a_lost_marker_stream_is_reported_and_estimation_goes_on():
+    ppg, markers = unique("rw-ppg"), unique("rw-markers")
+    stop = threading.Event()
+    epoch = time.time() + 1.5
+    outlet = pylsl.StreamOutlet(pylsl.StreamInfo(markers, "Markers", 1, pylsl.IRREGULAR_RATE,
+                                                 pylsl.cf_string, unique("dev")))
+    sender = threading.Thread(target=publish, daemon=True, args=(
+        "ppg", ppg, unique("dev"), 125.0, epoch, 30.0, SESSION, stop))
+    sender.start()
+    items = []
+    try:
+        with LslSession([Criterion(name=ppg), Criterion(name=markers)],
+                        timeout_s=10.0) as session:
+            for item in session.chunks():
+                items.append(item)
+                if outlet is not None and sum(isinstance(i, Chunk) for i in items) >= 5:
+                    outlet.push_sample(["before, \"the\" loss"])
+                    time.sleep(0.2)
+                    outlet = None  # the outlet is destroyed: its connections close
+                lost = [i for i in items if isinstance(i, SourceEvent)]
+                if lost and sum(isinstance(i, Chunk) for i in items[items.index(lost[0]):]) > 5:
+                    break
+    finally:
+        stop.set()
+    assert [i.text for i in items if isinstance(i, Marker)] == ['before, "the" loss']
+    events = [i for i in items if isinstance(i, SourceEvent)]
+    assert [(e.kind, e.message) for e in events] == [
+        ("lost", f"marker stream '{markers}' lost; waiting for it to come back")]
+
+
+def test_errors_name_every_missing_stream_and_a_markers_only_session():
+    a, b = unique("rw-absent-a"), unique("rw-absent-b")
+    with pytest.raises(InputError, match=rf"^no LSL stream matches name='{a}' nor "
+                                         rf"name='{b}' within 0.3 s"):
+        LslSession([Criterion(name=a), Criterion(name=b)], timeout_s=0.3)
+    markers, device = unique("rw-markers-only"), unique("dev")
+    outlet = pylsl.StreamOutlet(pylsl.StreamInfo(markers, "Markers", 1, pylsl.IRREGULAR_RATE,
+                                                 pylsl.cf_string, device))
+    try:
+        with pytest.raises(InputError, match=rf"^the LSL streams found \('{markers}' \(type "
+                                             rf"'Markers', source_id '{device}', 1 ch, irregular "
+                                             rf"rate\)\) all carry markers; add a stream of "
+                                             rf"samples \(PPG, ECG, respiration\) with "
+                                             rf"--name/--type/--source-id$"):
+            # Both options find the one marker stream, which is read once.
+            LslSession([Criterion(name=markers), Criterion(source_id=device)], timeout_s=5.0)
+    finally:
+        del outlet

@@ -161,12 +161,16 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("demo", help="replay the bundled synthetic demo session")
     _common(p, speed_default="4")
 
-    p = sub.add_parser("live", help="follow a live LSL stream")
-    p.add_argument("--name", help="LSL stream name to look for")
-    p.add_argument("--type", help="LSL stream type to look for (e.g. PPG)")
-    p.add_argument("--source-id", help="LSL source_id to look for")
+    p = sub.add_parser("live", help="follow live LSL streams (one, or several devices "
+                                    "and a marker stream)")
+    p.add_argument("--name", action="append",
+                   help="LSL stream name to look for; repeat (with --type, --source-id) to "
+                        "read several streams: each value then selects its own")
+    p.add_argument("--type", action="append",
+                   help="LSL stream type to look for (e.g. PPG, Markers); repeatable")
+    p.add_argument("--source-id", action="append", help="LSL source_id to look for; repeatable")
     p.add_argument("--timeout", type=_positive, default=5.0, metavar="SECONDS",
-                   help="how long to look for the stream (default 5)")
+                   help="how long to look for the streams (default 5)")
     _common(p)
 
     p = sub.add_parser("simulate",
@@ -559,10 +563,16 @@ def cmd_live(args) -> int:
     # does not pile up meanwhile and come out as a burst of late estimates.
     import streamer.runner  # noqa: F401
 
+    from streamer.sources.lsl_session import LslSession, criteria_from_options
+
     _quiet_liblsl()
-    kinds = None
-    source = LslSource(name=args.name, type=args.type, source_id=args.source_id,
-                       timeout_s=args.timeout, channel_kinds=kinds)
+    criteria = criteria_from_options(args.name, args.type, args.source_id)
+    if len(criteria) == 1:  # one stream, as it always was
+        one = criteria[0]
+        source = LslSource(name=one.name, type=one.type, source_id=one.source_id,
+                           timeout_s=args.timeout)
+    else:
+        source = LslSession(criteria, timeout_s=args.timeout)
     return _run(args, source, "live", source.info.source_id or source.info.name)
 
 

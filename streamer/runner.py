@@ -356,10 +356,11 @@ class Runner:
             self._write_markers(self.markers.due(math.inf))
         elif event.kind == "resumed":
             self._source_lost = False
-        if event.kind == "resumed":
+        if event.kind == "resumed" and event.detail.get("restart", True):
             # The time axis may jump at a comeback (forwards over the loss, or backwards
             # for a restarted sender): windows must not straddle it, so estimation
-            # starts afresh, as the LSL source asks of its consumers.
+            # starts afresh, as the LSL source asks of its consumers (not when a
+            # session's motion-reference stream comes back: the time axis ran on).
             self.monitor.reset()
         self._notify(Update([], None, {}, event))
 

@@ -121,3 +121,72 @@ def pulse_train(fs: float, rate_bpm: np.ndarray, seed: int = 0, noise: float = 0
     pos = (np.cumsum(np.asarray(rate_bpm) / 60.0) / fs) % 1.0
     wave = np.exp(-0.5 * ((pos - 0.18) / 0.06) ** 2) + 0.45 * np.exp(-0.5 * ((pos - 0.45) / 0.07) ** 2)
     return wave + noise * rng.standard_normal(len(pos))
+
+
+class WristRunSession:
+    """A synthetic two-device exercise session of our own design, as continuous functions
+    of time, so each device can sample it at its own rate and on its own clock.
+
+    A wrist band's PPG and a second device's three-axis accelerometer on the same arm.
+    The heart rate ramps from ``hr_start_bpm`` to ``hr_end_bpm`` over ``ramp_s`` seconds
+    and then holds; the arm swings at ``swing_per_min`` (a running stride) and the swing
+    reaches the PPG as an artifact ``motion_gain`` times the pulse's own amplitude, with
+    a second harmonic (the foot strikes): the strongest line in the PPG spectrum is the
+    arm's, not the heart's. ``taps`` are brief knocks on the band (seconds): a sharp
+    bump in the PPG and the accelerometer at the same instant, for checking how two
+    streams line up. Everything is synthetic; the truth is exact.
+    """
+
+    def __init__(self, hr_start_bpm: float = 100.0, hr_end_bpm: float = 130.0,
+                 ramp_s: float = 40.0, swing_per_min: float = 80.0, motion_gain: float = 2.0,
+                 taps: tuple = (), seed: int = 11):
+        self.hr_start_bpm, self.hr_end_bpm = float(hr_start_bpm), float(hr_end_bpm)
+        self.ramp_s, self.swing_per_min = float(ramp_s), float(swing_per_min)
+        self.motion_gain, self.taps = float(motion_gain), tuple(float(t) for t in taps)
+        self.seed = seed
+
+    def hr_bpm(self, t_s) -> np.ndarray:
+        t = np.asarray(t_s, dtype=np.float64)
+        frac = np.clip(t / self.ramp_s, 0.0, 1.0)
+        return self.hr_start_bpm + (self.hr_end_bpm - self.hr_start_bpm) * frac
+
+    def _beat_cycles(self, t: np.ndarray) -> np.ndarray:
+        # The integral of hr_bpm / 60 (linear ramp, then constant).
+        slope = (self.hr_end_bpm - self.hr_start_bpm) / self.ramp_s
+        tr = np.clip(t, 0.0, self.ramp_s)
+        ramp = self.hr_start_bpm * tr + 0.5 * slope * tr ** 2
+        return (ramp + self.hr_end_bpm * np.maximum(t - self.ramp_s, 0.0)) / 60.0
+
+    def _swing(self, t: np.ndarray) -> np.ndarray:
+        return 2 * np.pi * self.swing_per_min / 60.0 * t
+
+    def _tap(self, t: np.ndarray) -> np.ndarray:
+        # 40 ms wide bumps: wide enough for a 50 Hz device to sample two or three times.
+        out = np.zeros(len(t))
+        for at in self.taps:
+            out += np.exp(-0.5 * ((t - at) / 0.04) ** 2)
+        return out
+
+    def ppg(self, t_s, noise: float = 0.03) -> np.ndarray:
+        """The band's PPG at times ``t_s`` (seconds of true time)."""
+        t = np.asarray(t_s, dtype=np.float64)
+        pos = self._beat_cycles(t) % 1.0
+        pulse = np.exp(-0.5 * ((pos - 0.18) / 0.06) ** 2) \
+            + 0.45 * np.exp(-0.5 * ((pos - 0.45) / 0.07) ** 2)
+        # The pulse wave's fundamental has an amplitude of about 0.4 (of its 1.0 peak).
+        phase = self._swing(t)
+        artifact = 0.4 * self.motion_gain * (np.sin(phase) + 0.5 * np.sin(2 * phase + 0.7))
+        rng = np.random.default_rng(self.seed)
+        return pulse + artifact + 3.0 * self._tap(t) + noise * rng.standard_normal(len(t))
+
+    def acc(self, t_s, noise: float = 0.02) -> np.ndarray:
+        """The accelerometer's three axes (g) at times ``t_s``: the swing on x, the foot
+        strikes on y, a mix on z, and the taps on every axis."""
+        t = np.asarray(t_s, dtype=np.float64)
+        phase = self._swing(t)
+        rng = np.random.default_rng(self.seed + 1)
+        tap = self._tap(t)
+        x = np.sin(phase) + tap
+        y = 0.5 * np.sin(2 * phase + 0.7) + tap
+        z = 0.3 * np.sin(phase + 1.2) + 0.2 * np.sin(2 * phase) + tap
+        return np.column_stack((x, y, z)) + noise * rng.standard_normal((len(t), 3))

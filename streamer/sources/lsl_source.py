@@ -10,7 +10,11 @@ Every timestamp a chunk carries is the sender's sample time mapped onto the *loc
 clock (:func:`pylsl.local_clock`): the inlet runs with ``proc_clocksync`` only, so liblsl
 adds its running clock-offset estimate (``time_correction``) to each sample. We do not
 ask liblsl to dejitter or monotonise: both would smooth over exactly the gaps and
-out-of-order samples we want to see and report. The estimate log therefore records
+out-of-order samples we want to see and report. The offset is kept fresh by liblsl
+itself, not by us: the inlet's clock-sync thread measures it again every 2 s
+(``tuning.TimeUpdateInterval``, liblsl ``api_config.cpp``) and the post-processing
+picks up the newest measurement at most every 0.5 s (liblsl ``time_postprocessor.cpp``),
+so a sender clock that drifts is followed within seconds. The estimate log therefore records
 times on the local LSL clock, the same axis an LSL recorder on this machine uses.
 
 Timing checks
@@ -411,6 +415,9 @@ class LslSource:
         takes effect.
     extra_wait_s : after the first match, how long to keep listening for a second one,
         so that an ambiguous choice is reported rather than made at random.
+    resolved : a stream already resolved (by :class:`~streamer.sources.lsl_session.LslSession`,
+        which reads several); then no search is made and ``name``, ``type`` and
+        ``source_id`` only say how to look for it again after a loss.
 
     Raises
     ------
@@ -437,6 +444,7 @@ class LslSource:
         gap_tolerance_s: float = 0.05,
         poll_s: float = 0.005,
         extra_wait_s: float = 0.5,
+        resolved: pylsl.StreamInfo | None = None,
     ):
         for label, value in (
             ("timeout_s", timeout_s),
@@ -456,8 +464,8 @@ class LslSource:
         self._running = False
         self._inlet: pylsl.StreamInlet | None = None
 
-        found = _resolve(self._predicate, 1, timeout_s)
-        if found and extra_wait_s > 0:
+        found = [resolved] if resolved is not None else _resolve(self._predicate, 1, timeout_s)
+        if found and extra_wait_s > 0 and resolved is None:
             found = _unique_by_uid(
                 found + _resolve(self._predicate, len(found) + 1, extra_wait_s)
             )
@@ -514,6 +522,12 @@ class LslSource:
             self._comeback_predicate = build_predicate(None, None, self.info.source_id)
         else:
             self._comeback_predicate = self._predicate or build_predicate(stream, None, None)
+
+    @property
+    def silence_limit_s(self) -> float:
+        """Wall-clock silence after which this stream may count as lost: the shortest
+        limit, or twice the longest pause the sender has made (see :class:`SilenceCheck`)."""
+        return self._silence.limit_s
 
     # -- inlet handling ---------------------------------------------------------------
     def _open(self, resolved: pylsl.StreamInfo, timeout_s: float) -> None:

@@ -6,7 +6,10 @@ samples per chunk, so every numeric stream is put on one grid:
 
 * **The grid** has the nominal rate of the fastest stream (no stream is sampled below
   its own rate, so nothing aliases) and is anchored at the first sample of that stream:
-  grid point ``i`` is at ``t0 + i / fs``. Ties go to the stream listed first.
+  grid point ``i`` is at ``t0 + i / fs``. Ties go to the stream listed first. When
+  that stream sends nothing at all (it is marked lost, or has no samples in a file),
+  the grid is anchored at the earliest first sample of the others, so a silent chest
+  strap never blocks the wrist band.
 * **Values** of each stream at a grid point are linear interpolations between the two
   samples around it, on the stream's own timestamps (LSL: the sender's clock mapped to
   ours with ``time_correction``). Where those two samples are further apart than the
@@ -136,6 +139,7 @@ class GridMerger:
         self._last_s = [-np.inf] * len(self.infos)
         self._active = [True] * len(self.infos)
         self._t0: float | None = None
+        self._first_s = [np.inf] * len(self.infos)
         self._next = 0  # index of the next grid point to give out
         self.dropped = [0] * len(self.infos)  # samples with repeated/back-stepping times
 
@@ -151,6 +155,7 @@ class GridMerger:
         self._t[k] = np.concatenate((self._t[k], timestamps))
         self._x[k] = np.concatenate((self._x[k], samples))
         self._last_s[k] = float(timestamps[-1])
+        self._first_s[k] = min(self._first_s[k], float(timestamps[0]))
         self._active[k] = True
         if self._t0 is None and k == self._fastest:
             self._t0 = float(timestamps[0])
@@ -162,6 +167,9 @@ class GridMerger:
 
     def pull(self) -> tuple[np.ndarray, np.ndarray]:
         """Grid samples ``(n, all channels)`` and their times that are ready now."""
+        if (self._t0 is None and not self._active[self._fastest]
+                and np.isfinite(min(self._first_s))):
+            self._t0 = min(self._first_s)  # the fastest stream sent nothing
         if self._t0 is None:
             return np.zeros((0, self._offsets[-1])), np.zeros(0)
         active = [s for s, a in zip(self._last_s, self._active) if a]
@@ -200,16 +208,17 @@ def merge_batch(parts: list[tuple[SourceInfo, np.ndarray, np.ndarray]],
     info = merged_info(infos, name)
     fastest = _fastest(infos)
     cleaned = []
-    for _, x, t in parts:
+    for part_info, x, t in parts:
         t = np.asarray(t, dtype=np.float64)
-        x = np.asarray(x, dtype=np.float64).reshape(len(t), -1)
+        x = np.asarray(x, dtype=np.float64).reshape(len(t), len(part_info.channels))
         keep = _increasing(t, -np.inf)
         cleaned.append((t[keep], x[keep]))
     t_fast = cleaned[fastest][0]
     width = sum(len(i.channels) for i in infos)
-    if len(t_fast) == 0:
+    firsts = [float(t[0]) for t, _ in cleaned if len(t)]
+    if not firsts:
         return info, np.zeros((0, width)), np.zeros(0)
-    t0 = float(t_fast[0])
+    t0 = float(t_fast[0]) if len(t_fast) else min(firsts)
     end = max(float(t[-1]) for t, _ in cleaned if len(t))
     grid = t0 + np.arange(int(np.floor((end - t0) * info.fs + 1e-9)) + 1) / info.fs
     out = np.concatenate([_interpolate(t, x, grid, gap_limit_s(i.fs))

@@ -125,3 +125,21 @@ def test_merge_recordings_keeps_markers_in_time_order_and_events():
     assert [m.text for m in merged.markers] == ["m0", "m1"]
     assert "beats" in merged.events
     assert merged.info.fs == 125.0
+
+
+def test_a_fastest_stream_that_never_sends_does_not_block_the_others():
+    """A 250 Hz chest strap that never delivers, beside a 125 Hz wrist band: once the
+    strap is marked lost, the band's samples come through (on the 250 Hz grid), as in
+    the batch twin of the same streams."""
+    strap = SourceInfo("strap", 250.0, (ChannelInfo("ECG", "ecg"),))
+    parts = streams(seconds=2)[:1]
+    merger = GridMerger([strap, PPG])
+    merger.push(1, parts[0][1], parts[0][2])
+    assert len(merger.pull()[1]) == 0  # still waiting for the strap
+    merger.set_active(0, False)
+    x, t = merger.pull()
+    _, bx, bt = merge_batch([(strap, np.zeros((0, 1)), np.zeros(0)), parts[0]])
+    assert len(t) > 400 and t[0] == parts[0][2][0]
+    np.testing.assert_array_equal(t, bt)
+    np.testing.assert_allclose(x, bx, equal_nan=True)
+    assert np.all(np.isnan(x[:, 0])) and np.all(np.isfinite(x[:, 1]))

@@ -88,10 +88,17 @@ def select(info: SourceInfo, specs: list[str] | None) -> list[Selected]:
         if kind:
             chosen.append(Selected(i, ch.name, kind))
     if not any(c.kind in ("ppg", "ecg", "resp") for c in chosen):
+        unknown = [n for n in names if n not in {c.name for c in chosen}]
+        if chosen and not unknown:  # e.g. an accelerometer stream on its own
+            raise InputError(
+                f"{info.name}: holds accelerometer channels only "
+                f"({', '.join(f'{c.name}={c.kind}' for c in chosen)}); heart and breathing "
+                f"rates need a PPG, ECG or respiration channel: add the stream or file "
+                f"that carries it")
         raise InputError(
             f"{info.name}: cannot tell which channels are PPG, ECG or respiration "
             f"(channels: {', '.join(names)}); name them with --channel NAME=KIND, "
-            f"e.g. --channel {names[0] if names else 'NAME'}=ppg")
+            f"e.g. --channel {unknown[0] if unknown else 'NAME'}=ppg")
     return chosen
 
 

@@ -102,6 +102,12 @@ def test_nothing_usable_says_how_to_name_channels():
                                          r"or respiration \(channels: ch0, ch1\); name them "
                                          r"with --channel NAME=KIND, e\.g\. --channel ch0=ppg"):
         select(info("ch0", "ch1"), None)
-    # A motion channel alone is not enough either.
-    with pytest.raises(InputError, match=r"cannot tell which channels .*ACC_X"):
-        select(info("ACC_X"), None)
+    # A motion channel alone is not enough either, and is never suggested as a PPG.
+    with pytest.raises(InputError, match=r"^rec\.csv: holds accelerometer channels only "
+                                         r"\(ACC_X=acc, ACC_Y=acc\); heart and breathing "
+                                         r"rates need a PPG, ECG or respiration channel: add "
+                                         r"the stream or file that carries it$"):
+        select(info("ACC_X", "ACC_Y"), None)
+    # With an unknown channel beside it, the unknown one is the suggestion.
+    with pytest.raises(InputError, match=r"e\.g\. --channel sensor=ppg$"):
+        select(info("ACC_X", "sensor"), None)

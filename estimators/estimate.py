@@ -27,6 +27,11 @@ class Estimate:
     quality : in [0, 1], the data-quality index of the window.
     evidence : heart rate: the raw measures behind the confidence, named by
         :data:`estimators.evidence.FEATURES` (for diagnostics); empty otherwise.
+    rate_now_per_min : the rate at ``emitted_s`` (the newest sample used): the rate
+        carried forward over the delay by the ridge's recent slope
+        (:mod:`estimators.rate_now`); equal to ``rate_per_min`` offline (no delay).
+    now_confidence : the confidence of ``rate_now_per_min`` (the confidence times the
+        chance that the forecast's own error is within the tolerance).
     """
 
     quantity: str
@@ -37,6 +42,8 @@ class Estimate:
     confidence: float
     quality: float
     evidence: tuple = ()
+    rate_now_per_min: float = math.nan
+    now_confidence: float = math.nan
 
     @property
     def delay_s(self) -> float:
@@ -53,3 +60,10 @@ class Estimate:
         from estimators.display_rule import decide_estimate
 
         return decide_estimate(self)
+
+    @property
+    def now_display(self) -> str:
+        """The same rule applied to the rate now and its own confidence."""
+        from estimators.display_rule import decide
+
+        return decide(self.quantity, self.rate_now_per_min, self.now_confidence, self.quality)

@@ -40,6 +40,7 @@ from estimators import deshape as deshape_mod
 from estimators import evidence as evidence_mod
 from estimators import motion as motion_mod
 from estimators import quality as quality_mod
+from estimators import rate_now as now_mod
 from estimators import tracker as tracker_mod
 from estimators.config import PROFILES, SIGNAL_KINDS, Profile, RateSettings, get_profile
 from estimators.errors import ParameterError
@@ -533,6 +534,7 @@ class RateMonitor:
             for path in self.motion_paths.values():
                 path.keep_columns = bool(self.motion)
         self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
+        self._now_states: dict = {}  # (quantity, source) -> rate_now.NowState
         self._gap_s = gap_threshold_s(self.fs)
         self.last_gaps: list[Gap] = []
         self.pulse_breathing: dict[str, PulseBreathing] = {
@@ -574,6 +576,7 @@ class RateMonitor:
             suppressor.reset()
         for breathing in self.pulse_breathing.values():
             breathing.reset()
+        self._now_states = {}
 
     def reset(self) -> None:
         """As after construction: :meth:`restart`, and no timestamp seen (for a stream
@@ -682,7 +685,7 @@ class RateMonitor:
         if len(starts) == 0:  # the usual case: one stretch
             estimates = self._update_stretch(samples, labels)
             estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
-            return estimates
+            return self._with_rate_now(estimates)
         bounds = sorted({0, *starts.tolist(), len(labels)})
         estimates, pieces = [], []
         for a, b in zip(bounds[:-1], bounds[1:]):
@@ -691,13 +694,27 @@ class RateMonitor:
                 after = float(labels[a])
                 self.last_gaps.append(Gap(before, after, after - before - 1.0 / self.fs))
                 self.restart()
-            estimates.extend(self._update_stretch(samples[a:b], labels[a:b]))
+            estimates.extend(self._with_rate_now(sorted(
+                self._update_stretch(samples[a:b], labels[a:b]),
+                key=lambda e: (e.emitted_s, e.quantity, e.source))))
             pieces.append(self.last_blocks)
         if len(pieces) > 1:  # the blocks of the chunk, for a display drawing them
             self.last_blocks = {key: concat_blocks([p[key] for p in pieces]) for key in
                                 pieces[-1]}
         estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
         return estimates
+
+    def _with_rate_now(self, estimates: list[Estimate]) -> list[Estimate]:
+        """The estimates (in emitted order) with their rate now and its confidence
+        (:mod:`estimators.rate_now`), each output carrying its own forecast state."""
+        out = []
+        for e in estimates:
+            state = self._now_states.setdefault((e.quantity, e.source), now_mod.NowState())
+            now, conf = now_mod.rate_now_step(state, now_mod.params_for(e.quantity),
+                                              e.emitted_s, e.rate_per_min, e.delay_s,
+                                              e.confidence)
+            out.append(dataclasses.replace(e, rate_now_per_min=now, now_confidence=conf))
+        return out
 
     def _update_stretch(self, samples: np.ndarray, labels: np.ndarray) -> list[Estimate]:
         """One stretch without a gap; ``labels`` never decrease."""
@@ -741,7 +758,9 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
         if b > a:
             estimates.extend(_offline_stretch(monitor, samples[a:b], timestamps[a:b]))
     estimates.sort(key=lambda e: (e.time_s, e.quantity, e.source))
-    return estimates
+    # No delay to compensate offline: the rate now is the centre rate.
+    return [dataclasses.replace(e, rate_now_per_min=e.rate_per_min, now_confidence=e.confidence)
+            for e in estimates]
 
 
 def _offline_stretch(monitor: RateMonitor, samples: np.ndarray,

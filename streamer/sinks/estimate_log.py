@@ -36,6 +36,9 @@ no estimate; it keeps the engine's rate even when the displays withhold it. ``di
 (the last column) is what the displays did with the estimate: ``show``, ``grey`` or
 ``withhold`` (:mod:`estimators.display_rule`). Logs written before that column existed
 are still read (:data:`COLUMNS_BEFORE_DISPLAY`); their ``display`` cells read as empty.
+``rate_now_per_min`` and ``now_confidence`` (after ``display``) are the rate at
+``emitted_s`` and its confidence (:mod:`estimators.rate_now`); logs written before
+them (:data:`COLUMNS_BEFORE_NOW`) read them as NaN.
 
 A log never replaces data by accident (see :class:`EstimateLog`): it is created
 exclusively, is never one of the run's input files, and replaces an existing file only
@@ -76,8 +79,12 @@ COLUMNS = (
     "delay_s",
     "compute_ms",
     "display",
+    "rate_now_per_min",
+    "now_confidence",
 )
-COLUMNS_BEFORE_DISPLAY = COLUMNS[:-1]
+COLUMNS_BEFORE_NOW = COLUMNS[:COLUMNS.index("rate_now_per_min")]
+"""The header row of logs written before the rate-now columns (still read)."""
+COLUMNS_BEFORE_DISPLAY = COLUMNS[:COLUMNS.index("display")]
 """The header row of logs written before the ``display`` column (still read)."""
 TEXT_COLUMNS = ("quantity", "source", "display")
 
@@ -103,6 +110,8 @@ def format_row(estimate: Estimate, compute_ms: float) -> str:
         _fmt(estimate.delay_s, 4),
         _fmt(compute_ms, 4),
         estimate.display,
+        _fmt(estimate.rate_now_per_min, 3),
+        _fmt(estimate.now_confidence, 4),
     ))
     return buffer.getvalue()
 
@@ -482,7 +491,7 @@ def read_log(path) -> LogTable:
             header[key.strip()] = value
         i += 1
     names = tuple(lines[i].rstrip("\r").split(",")) if i < len(lines) else ()
-    if names not in (COLUMNS, COLUMNS_BEFORE_DISPLAY):
+    if names not in (COLUMNS, COLUMNS_BEFORE_NOW, COLUMNS_BEFORE_DISPLAY):
         raise InputError(
             f"{path} is not a ridgewatch estimate log (expected the header row "
             f"'{','.join(COLUMNS)}' after the '#' lines)"
@@ -511,6 +520,9 @@ def read_log(path) -> LogTable:
             ) from None
     if names == COLUMNS_BEFORE_DISPLAY:
         cols["display"] = np.array([""] * len(rows), dtype=str)
+    for name in COLUMNS[len(names):]:
+        if name not in cols:  # an older log: the rate-now columns read as NaN
+            cols[name] = np.full(len(rows), np.nan)
     markers = [m for m in map(parse_marker, notes) if m is not None]
     return LogTable(header, cols, markers)
 

@@ -1,13 +1,16 @@
 """Estimates as LSL streams, for other LSL tools to record or react to.
 
 :class:`EstimateOutlet` publishes one LSL stream per estimate stream of the engine (one
-per (quantity, source) pair, e.g. ``hr.PLETH`` and ``rr.PLETH``), each with four
+per (quantity, source) pair, e.g. ``hr.PLETH`` and ``rr.PLETH``), each with six
 channels::
 
-    hr.PLETH.rate_per_min   unit 1/min
-    hr.PLETH.confidence     unit 1 (a fraction in [0, 1])
-    hr.PLETH.quality        unit 1 (a fraction in [0, 1])
-    hr.PLETH.delay_s        unit s
+    hr.PLETH.rate_per_min       unit 1/min (the window-centre rate)
+    hr.PLETH.confidence         unit 1 (a fraction in [0, 1])
+    hr.PLETH.quality            unit 1 (a fraction in [0, 1])
+    hr.PLETH.delay_s            unit s
+    hr.PLETH.rate_now_per_min   unit 1/min (the rate at the sample time, the newest
+                                sample used; :mod:`estimators.rate_now`)
+    hr.PLETH.now_confidence     unit 1
 
 Every row of the estimate log is one sample of its stream, and nothing else is sent: the
 consumer receives exactly as many samples per stream as the log has rows for it, and
@@ -73,10 +76,12 @@ from estimators.errors import ParameterError
 from estimators.estimate import QUANTITIES, Estimate
 from streamer.sources.lsl_publish import derived_source_id
 
-FIELDS = ("rate_per_min", "confidence", "quality", "delay_s")
+FIELDS = ("rate_per_min", "confidence", "quality", "delay_s", "rate_now_per_min",
+          "now_confidence")
 """Channels published per (quantity, source) pair, in this order."""
 
-UNITS = {"rate_per_min": "1/min", "confidence": "1", "quality": "1", "delay_s": "s"}
+UNITS = {"rate_per_min": "1/min", "confidence": "1", "quality": "1", "delay_s": "s",
+         "rate_now_per_min": "1/min", "now_confidence": "1"}
 
 STREAM_TYPE = "RateEstimates"
 
@@ -94,7 +99,7 @@ _MAX_INSTANCES = 99
 
 
 def channel_labels(pairs: Sequence[tuple[str, str]]) -> list[str]:
-    """Channel labels for ``pairs`` in order (four per pair).
+    """Channel labels for ``pairs`` in order (six per pair).
 
     Examples
     --------
@@ -269,7 +274,9 @@ class EstimateOutlet:
         for pair, group in grouped.items():
             samples = np.array(
                 [(e.rate_per_min if e.display != WITHHOLD else np.nan, e.confidence,
-                  e.quality, e.delay_s if e.has_rate and e.display != WITHHOLD else np.nan)
+                  e.quality, e.delay_s if e.has_rate and e.display != WITHHOLD else np.nan,
+                  e.rate_now_per_min if e.now_display != WITHHOLD else np.nan,
+                  e.now_confidence)
                  for e in group], dtype=np.float64)
             out[pair] = (samples, np.array([e.emitted_s for e in group], dtype=np.float64))
         return out

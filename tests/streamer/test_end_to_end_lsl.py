@@ -228,6 +228,9 @@ def check_estimates(log_path, collector, offset_s, name, all_published: bool):
     np.testing.assert_allclose(got[:, 1], cols["confidence"][tail], atol=5e-5)
     np.testing.assert_allclose(got[:, 2], cols["quality"][tail], atol=5e-5)
     np.testing.assert_allclose(got[:, 3], cols["delay_s"][tail], atol=1.5e-4)
+    np.testing.assert_allclose(got[:, 4], cols["rate_now_per_min"][tail], atol=5e-4,
+                               equal_nan=True)
+    np.testing.assert_allclose(got[:, 5], cols["now_confidence"][tail], atol=5e-5)
 
     # Accurate at every hop: start-up (the first 8 s window) gives no estimate at all,
     # so the check covers every row. Truth at the window centre, mapped back onto the

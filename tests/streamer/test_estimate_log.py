@@ -86,7 +86,9 @@ def test_text_layout(tmp_path, rng):
     assert lines[8] == format_row(ests[0], 0.0).rstrip("\n")
     no_rate = Estimate("hr", "PLETH", 1.0, 5.0, math.nan, 0.5, 0.25)
     assert format_row(no_rate, math.nan) == ("5.0000,1.0000,hr,PLETH,,0.5000,0.2500,4.0000,,"
-                                              "withhold\n")
+                                              "withhold,,\n")
+    now = Estimate("hr", "PLETH", 1.0, 5.0, 80.0, 0.9, 0.8, (), 82.5, 0.85)
+    assert format_row(now, 1.0).endswith(",show,82.500,0.8500\n")
 
 
 def test_partial_last_line_is_ignored(tmp_path, rng):
@@ -175,7 +177,7 @@ def test_bad_number_names_the_line(tmp_path, rng):
         read_log(path)
 
 
-@pytest.mark.parametrize("cells", [3, 11])
+@pytest.mark.parametrize("cells", [3, 13])
 def test_wrong_number_of_cells_names_the_line(tmp_path, rng, cells):
     ests = estimates(rng, 4)
     path = tmp_path / "a.csv"
@@ -183,7 +185,7 @@ def test_wrong_number_of_cells_names_the_line(tmp_path, rng, cells):
     with open(path, "a") as fh:
         fh.write(",".join(["1.0"] * cells) + "\n")
         fh.write(format_row(ests[0], 0.0))
-    with pytest.raises(InputError, match=rf"a\.csv, line 17: {cells} cells instead of 10"):
+    with pytest.raises(InputError, match=rf"a\.csv, line 17: {cells} cells instead of 12"):
         read_log(path)
 
 
@@ -199,8 +201,8 @@ def test_display_column_records_the_display_rule(tmp_path):
             Estimate("hr", "PLETH", 0.5, 4.5, 140.0, 0.2, 0.8),
             Estimate("hr", "PLETH", 0.75, 4.75, math.nan, 0.9, 0.1)]
     write(tmp_path / "log.csv", ests)
-    assert COLUMNS[-1] == "display"
-    assert [row.split(",")[-1] for row in rows_text(tmp_path / "log.csv")] == [
+    at = COLUMNS.index("display")
+    assert [row.split(",")[at] for row in rows_text(tmp_path / "log.csv")] == [
         "show", "grey", "withhold", "withhold"]
     table = read_log(tmp_path / "log.csv")
     assert list(table.columns["display"]) == ["show", "grey", "withhold", "withhold"]
@@ -215,12 +217,26 @@ def test_a_log_written_before_the_display_column_is_still_read(tmp_path, rng):
     write(path, ests)
     # Rewrite it as the writer did before the display column existed.
     lines = path.read_text().splitlines()
-    old = [ln if ln.startswith("#") else ln.rsplit(",", 1)[0] for ln in lines]
+    old = [ln if ln.startswith("#") else ln.rsplit(",", 3)[0] for ln in lines]
     path.write_text("\n".join(old) + "\n")
     assert "display" not in path.read_text()
     table = read_log(path)
     check_matches(table, ests)
     assert list(table.columns["display"]) == [""] * len(ests)
+    assert np.all(np.isnan(table.columns["rate_now_per_min"]))
+
+
+def test_a_log_written_before_the_rate_now_columns_is_still_read(tmp_path, rng):
+    ests = estimates(rng, n=8)
+    path = tmp_path / "old.csv"
+    write(path, ests)
+    lines = path.read_text().splitlines()
+    old = [ln if ln.startswith("#") else ln.rsplit(",", 2)[0] for ln in lines]
+    path.write_text("\n".join(old) + "\n")
+    assert "rate_now" not in path.read_text()
+    table = read_log(path)
+    check_matches(table, ests)
+    assert np.all(np.isnan(table.columns["now_confidence"]))
 
 
 # --------------------------------------------------------------------------- odd names
@@ -391,9 +407,9 @@ def test_a_device_is_written_as_it_is(tmp_path):
 def test_drop_cell_leaves_out_one_column_by_name():
     est = Estimate("hr", "PPG, left", 4.0, 8.0, 72.0, 0.5, 0.75)
     row = format_row(est, 1.25).rstrip("\n")
-    assert row == f'8.0000,4.0000,hr,"PPG, left",72.000,0.5000,0.7500,4.0000,1.2500,{est.display}'
+    assert row == f'8.0000,4.0000,hr,"PPG, left",72.000,0.5000,0.7500,4.0000,1.2500,{est.display},,'
     assert drop_cell(row) == row.replace(",1.2500,", ",")
-    assert drop_cell(row, "display") == row.rsplit(",", 1)[0]
+    assert drop_cell(row, "display") == row.replace(f",{est.display},", ",")
     assert drop_cell(row[:20]) == row[:20]  # cut short before the compute time
 
 

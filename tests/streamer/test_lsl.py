@@ -470,15 +470,15 @@ def test_estimate_outlet_publishes_one_stream_per_pair():
     hr_inlet, hr_info = _open_estimates(outlet.source_ids[("hr", "PLETH")])
     rr_inlet, rr_info = _open_estimates(outlet.source_ids[("rr", "PLETH")])
     assert (hr_info.name(), rr_info.name()) == (f"{name} hr.PLETH", f"{name} rr.PLETH")
-    assert hr_info.channel_count() == rr_info.channel_count() == len(FIELDS) == 4
+    assert hr_info.channel_count() == rr_info.channel_count() == len(FIELDS) == 6
     assert (hr_info.nominal_srate(), rr_info.nominal_srate()) == (4.0, 2.0)
     assert hr_info.get_channel_labels() == channel_labels([("hr", "PLETH")])
     assert rr_info.get_channel_labels()[0] == "rr.PLETH.rate_per_min"
-    assert hr_info.get_channel_units() == ["1/min", "1", "1", "s"]
+    assert hr_info.get_channel_units() == ["1/min", "1", "1", "s", "1/min", "1"]
 
     now = pylsl.local_clock()
     estimates = [
-        Estimate("hr", "PLETH", now - 4.0, now, 72.5, 0.9, 0.8),
+        Estimate("hr", "PLETH", now - 4.0, now, 72.5, 0.9, 0.8, (), 74.0, 0.85),
         # Breathing from a pulse reports hops when a beat completes them: two at once.
         Estimate("rr", "PLETH", now - 16.5, now, 15.0, 0.7, 0.6),
         Estimate("rr", "PLETH", now - 16.0, now, math.nan, 0.1, 0.2),
@@ -491,9 +491,11 @@ def test_estimate_outlet_publishes_one_stream_per_pair():
     # One sample per estimate, in its own stream, NaN only where there is no rate.
     assert hr_t == pytest.approx([now, now + 0.25], abs=1e-9)
     assert rr_t == pytest.approx([now, now], abs=1e-9)
-    np.testing.assert_allclose(hr_x, [[72.5, 0.9, 0.8, 4.0], [np.nan, 0.1, 0.2, np.nan]],
+    np.testing.assert_allclose(hr_x, [[72.5, 0.9, 0.8, 4.0, 74.0, 0.85],
+                                      [np.nan, 0.1, 0.2, np.nan, np.nan, np.nan]],
                                rtol=0, atol=1e-9)
-    np.testing.assert_allclose(rr_x, [[15.0, 0.7, 0.6, 16.5], [np.nan, 0.1, 0.2, np.nan]],
+    np.testing.assert_allclose(rr_x, [[15.0, 0.7, 0.6, 16.5, np.nan, np.nan],
+                                      [np.nan, 0.1, 0.2, np.nan, np.nan, np.nan]],
                                rtol=0, atol=1e-9)
     with pytest.raises(ParameterError, match=r"estimate for \('hr', 'ECG'\) is not among"):
         outlet.rows([Estimate("hr", "ECG", 0.0, 1.0, 60.0, 1.0, 1.0)])

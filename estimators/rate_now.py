@@ -1,0 +1,186 @@
+"""The rate now: each live estimate carried forward from the instant it describes to the
+newest sample it used.
+
+A live estimate describes the centre of its analysis window, less the causal filters'
+group delay (``time_s``); the user sees it at ``emitted_s``, half a window and more
+later (4.2 s for heart rate with an 8 s window). During exercise onset or recovery the
+rate moves 1-2 bpm/s, so the window-centre rate is several bpm behind the rate *now*.
+The rate now forecasts the ridge over that delay with its recent slope (the delay
+correction of causal heart-rate trackers; Temko, IEEE TBME 64(9), 2017, cited from
+memory):
+
+.. math:: r_{now} = r + \\tilde v \\, (t_{emitted} - t_{centre})
+
+``v`` is the least-squares slope of the last :attr:`NowParams.window_s` seconds of the
+rate against ``emitted_s`` (which never goes back), restarted at a jump (a change
+faster than :attr:`NowParams.jump_per_s` between two hops: no heart or breathing rate
+moves that fast, so it is the tracker switching to another ridge, and the slope before
+it says nothing about the slope after it), and shrunk towards zero where it is small,
+``v' = v^3 / (v^2 + \\delta^2)``, so a steady rate is not made noisier by the slope's
+own jitter, and limited to :attr:`NowParams.max_slope_per_s`. Why not a Kalman filter
+with a constant-velocity state: it needs the same three choices (process noise, jump
+handling, bounds) in a less readable form, and its velocity lags a ramp's start by as
+much as a regression window does.
+
+The rate now has its own confidence: the centre estimate's calibrated confidence times
+the chance that the forecast's own error (the slope's standard error times the delay,
+normal) stays within the tolerance, :func:`now_confidence`.
+
+The offline twin has no delay to compensate: its rate now equals its centre rate.
+
+:func:`rate_now_step` (per hop, with a state) and :func:`rate_now_batch` (a whole
+record) are twins, tested against each other.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class NowParams:
+    """Forecast settings of one quantity, in its own units (per minute, per second).
+
+    Attributes
+    ----------
+    window_s : seconds of recent estimates the slope is fitted on.
+    jump_per_s : a change between two hops faster than this is a jump (restart).
+    shrink_per_s : ``delta`` of the slope's shrinkage towards zero.
+    max_slope_per_s : the slope is limited to +- this.
+    tolerance_per_min : the tolerance the confidence of the rate now refers to.
+    min_points : estimates needed after a (re)start before a slope is used.
+    """
+
+    window_s: float
+    jump_per_s: float
+    shrink_per_s: float
+    max_slope_per_s: float
+    tolerance_per_min: float
+    min_points: int = 4
+
+
+HEART = NowParams(window_s=3.0, jump_per_s=6.0, shrink_per_s=0.2, max_slope_per_s=4.0,
+                  tolerance_per_min=5.0)
+"""Heart rate. Onset and recovery of exercise move the rate 1-2 bpm/s and rarely more
+than 3-4 bpm/s (common practice; the issue's 2 bpm/s): the slope is limited to 4 bpm/s,
+and 6 bpm/s between hops counts as a jump. A 3 s window holds 12 hops at 0.25 s: enough
+to average the tracker's hop-to-hop jitter, short against the minute-long shape of an
+exercise transition. Below the shrinkage of 0.2 bpm/s a slope moves the forecast by
+less than 1 bpm over the 4.2 s delay, and is mostly jitter. The tolerance is the
+absolute part of the heart-rate tolerance (5 bpm, ANSI/AAMI EC13, from memory).
+Measured on synthetic ramps of +-1 and +-2 bpm/s (PPG and ECG): MAE against the truth at
+``emitted_s`` 0.34-0.72 bpm (window-centre rate 1.8-3.0), and a steady rate's standard
+deviation 1.05-1.12 times the centre rate's (``python -m bench.rate_now``)."""
+
+BREATHING = NowParams(window_s=10.0, jump_per_s=1.0, shrink_per_s=0.05,
+                      max_slope_per_s=0.2, tolerance_per_min=2.0)
+"""Breathing rate, whose windows are long (32 s or more: a delay of 16 s) and whose
+changes are slow (a few breaths per minute over tens of seconds; common practice): a
+10 s fit, shrinkage below 0.05 /min per s (0.8 /min over the delay), slope limited to
+0.2 /min per s, a jump above 1 /min per s; tolerance 2 breaths/min (common practice)."""
+
+
+def params_for(quantity: str) -> NowParams:
+    return HEART if quantity == "hr" else BREATHING
+
+
+@dataclass
+class NowState:
+    """Recent (emitted_s, rate) pairs since the last jump, and the last finite rate."""
+
+    times: list = field(default_factory=list)
+    rates: list = field(default_factory=list)
+    last_rate: float = math.nan
+    last_time: float = math.nan
+
+
+def _slope(times: list, rates: list, min_points: int) -> tuple[float, float]:
+    """Least-squares slope of ``rates`` against ``times`` and its standard error
+    (0 and 0 with fewer than ``min_points``; the error is infinite-free: a perfect fit
+    has error 0)."""
+    n = len(times)
+    if n < max(min_points, 3):
+        return 0.0, 0.0
+    t = np.asarray(times) - times[-1]
+    r = np.asarray(rates)
+    tm, rm = t.mean(), r.mean()
+    sxx = float(np.sum((t - tm) ** 2))
+    if sxx <= 0:
+        return 0.0, 0.0
+    v = float(np.sum((t - tm) * (r - rm)) / sxx)
+    resid = r - (rm + v * (t - tm))
+    se = math.sqrt(max(float(np.sum(resid ** 2)) / (n - 2), 0.0) / sxx)
+    return v, se
+
+
+def _shrunk(v: float, params: NowParams) -> float:
+    if v == 0.0:
+        return 0.0
+    v = v ** 3 / (v * v + params.shrink_per_s ** 2)
+    return min(max(v, -params.max_slope_per_s), params.max_slope_per_s)
+
+
+def now_confidence(confidence: float, slope_se: float, delay_s: float,
+                   params: NowParams) -> float:
+    """``confidence`` times ``P(|N(0, (slope_se * delay_s)^2)| <= tolerance)``: the
+    centre estimate right and the forecast's own error within the tolerance, taken as
+    independent (an approximation: both fail together during fast changes, so it is,
+    if anything, optimistic there; checked against the references in the bench)."""
+    if not math.isfinite(confidence):
+        return confidence
+    spread = abs(slope_se * delay_s)
+    if spread == 0.0:
+        return confidence
+    return confidence * math.erf(params.tolerance_per_min / (spread * math.sqrt(2.0)))
+
+
+def rate_now_step(state: NowState, params: NowParams, emitted_s: float, rate: float,
+                  delay_s: float, confidence: float) -> tuple[float, float]:
+    """Advance ``state`` (in place) by one estimate; its ``(rate_now, confidence_now)``.
+    A NaN rate gives NaN and leaves the state as it was."""
+    if not math.isfinite(rate):
+        return math.nan, math.nan
+    if math.isfinite(state.last_rate):
+        step_s = max(emitted_s - state.last_time, 1e-9)
+        if abs(rate - state.last_rate) > params.jump_per_s * max(step_s, 0.25):
+            state.times, state.rates = [], []
+    state.last_rate, state.last_time = rate, emitted_s
+    state.times.append(emitted_s)
+    state.rates.append(rate)
+    while state.times and state.times[0] <= emitted_s - params.window_s:
+        state.times.pop(0)
+        state.rates.pop(0)
+    v, se = _slope(state.times, state.rates, params.min_points)
+    return (rate + _shrunk(v, params) * delay_s,
+            now_confidence(confidence, se if v != 0.0 else 0.0, delay_s, params))
+
+
+def rate_now_batch(emitted_s: np.ndarray, rate: np.ndarray, delay_s: np.ndarray,
+                   confidence: np.ndarray, params: NowParams) -> tuple[np.ndarray, np.ndarray]:
+    """The batch twin of :func:`rate_now_step` over one record's estimates (one output,
+    in hop order): each estimate's fit window found by search on the finite rates,
+    restarted after the last jump before it."""
+    emitted_s = np.asarray(emitted_s, dtype=np.float64)
+    rate = np.asarray(rate, dtype=np.float64)
+    finite = np.flatnonzero(np.isfinite(rate))
+    now = np.full(len(rate), np.nan)
+    conf_now = np.full(len(rate), np.nan)
+    if len(finite) == 0:
+        return now, conf_now
+    t, r = emitted_s[finite], rate[finite]
+    steps = np.maximum(np.diff(t), 1e-9)
+    jumps = np.abs(np.diff(r)) > params.jump_per_s * np.maximum(steps, 0.25)
+    start_of = np.zeros(len(t), dtype=int)  # first index of each estimate's segment
+    for k in range(1, len(t)):
+        start_of[k] = k if jumps[k - 1] else start_of[k - 1]
+    for k in range(len(t)):
+        first = max(start_of[k], int(np.searchsorted(t, t[k] - params.window_s, side="right")))
+        v, se = _slope(t[first:k + 1].tolist(), r[first:k + 1].tolist(), params.min_points)
+        i = finite[k]
+        now[i] = r[k] + _shrunk(v, params) * delay_s[i]
+        conf_now[i] = now_confidence(float(confidence[i]), se if v != 0.0 else 0.0,
+                                     float(delay_s[i]), params)
+    return now, conf_now

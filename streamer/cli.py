@@ -92,6 +92,10 @@ def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> Non
     p.add_argument("--no-log", action="store_true", help="write no estimate log")
     p.add_argument("--publish", action="store_true",
                    help="publish the estimates as an LSL stream")
+    p.add_argument("--headline", choices=("now", "centre"), default="now",
+                   help="which heart/breathing rate the window shows in large digits: the "
+                        "rate now (at the newest sample, the default) or the window-centre "
+                        "rate (the other is shown beside it)")
     p.add_argument("--display", choices=("qt", "text", "none"),
                    help="window, terminal lines, or nothing (default: qt when a screen "
                         "is available, else text)")
@@ -214,6 +218,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="column of OTHER to use (rate column, or sample-number column)")
     p.add_argument("--quantity", choices=("hr", "rr"), help="only this quantity")
     p.add_argument("--source", help="only this source (channel name or 'fused')")
+    p.add_argument("--use", choices=("centre", "now"), default="centre",
+                   help="score the window-centre rate at time_s (default) or the rate now "
+                        "at emitted_s (an offline log's rate now is its centre rate)")
     p.add_argument("--against-source", metavar="SOURCE",
                    help="when OTHER is an estimate log: its source to compare with (default "
                         "the same source), e.g. --source PPG --against-source ECG")
@@ -470,7 +477,8 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
     try:
         if display == "qt":
             from streamer.display.qt_window import run_with_window
-            stats = run_with_window(runner, profile, duration_s=args.duration)
+            stats = run_with_window(runner, profile, duration_s=args.duration,
+                                    headline=args.headline)
         else:
             stats = _run_threaded(runner, display, install_signal_handlers)
     finally:
@@ -718,8 +726,12 @@ def cmd_compare(args) -> int:
     from streamer.compare import phases_of
     from streamer.report import format_phase_table, steady_note
 
-    table = read_log(args.log)
+    from streamer.compare import OtherLog, with_rate
+
+    table = with_rate(read_log(args.log), args.use, args.log)
     other = load_other(args.against, fs=args.against_fs, column=args.against_column)
+    if isinstance(other, OtherLog):
+        other = OtherLog(other.path, with_rate(other.table, args.use, str(other.path)))
     series = pair_up(table, other, args.quantity, args.source, _log_windows(table),
                      other_source=args.against_source, log_name=args.log)
     results = [summarize(s) for s in series]

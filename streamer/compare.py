@@ -485,6 +485,30 @@ def _pair_with_log(log_table, other: OtherLog, pairs, other_source, max_gap_s, l
     return out
 
 
+def with_rate(table: LogTable, use: str, name: str) -> LogTable:
+    """``table`` with the rate the comparison scores: ``centre`` (as logged: the
+    window-centre rate at ``time_s``) or ``now`` (the rate now at ``emitted_s``, with its
+    own confidence and no delay, :mod:`estimators.rate_now`). An offline log's rate now
+    is its centre rate, at its centre: it is scored at ``time_s``."""
+    if use == "centre":
+        return table
+    if use != "now":
+        raise InputError(f"--use {use!r}: expected now or centre")
+    cols = dict(table.columns)
+    now = cols.get("rate_now_per_min")
+    if now is None or (len(now) and np.all(np.isnan(now)) and
+                       np.any(np.isfinite(cols["rate_per_min"]))):
+        raise InputError(f"{name} has no rate-now column (written before ridgewatch logged "
+                         "it); compare its window-centre rate with --use centre")
+    offline = str(table.header.get("mode", "")).strip() == "offline"
+    if not offline:
+        cols["time_s"] = cols["emitted_s"]
+        cols["delay_s"] = np.zeros(len(now))
+    cols["rate_per_min"] = now
+    cols["confidence"] = cols["now_confidence"]
+    return LogTable(table.header, cols, table.markers)
+
+
 def add_overlay(series: list[PairedSeries], label: str, table: LogTable) -> None:
     """Add the matching (quantity, source) of another log as a curve to overlay in figures."""
     for item in series:

@@ -262,9 +262,10 @@ class ReadoutCard(QtWidgets.QFrame):
     details into two lines, so that more fit on the screen without scrolling.
     """
 
-    def __init__(self, info, colour: str, compact: bool = False):
+    def __init__(self, info, colour: str, compact: bool = False, headline: str = "now"):
         super().__init__()
         self.setObjectName("card")
+        self.headline = headline  # "now": the rate now in large digits; "centre"
         self.quantity, self.source = info.quantity, info.source
         self.first_estimate_s = info.first_estimate_s
         self.compact = compact
@@ -305,13 +306,22 @@ class ReadoutCard(QtWidgets.QFrame):
         (:mod:`estimators.display_rule`): the digits when shown, greyed digits when
         greyed, a dash when withheld or without a rate; the last value greyed while the
         stream is lost."""
-        decision = WITHHOLD if est is None else est.display
+        # The large digits are the rate now (live) unless the card was asked for the
+        # window-centre rate; the other one is said beside the delay.
+        use_now = (self.headline == "now" and est is not None
+                   and not math.isnan(est.rate_now_per_min))
+        decision = WITHHOLD if est is None else (est.now_display if use_now else est.display)
         key = (None if est is None else (est.rate_per_min, est.confidence, est.quality,
-                                          est.delay_s), ever_rated, stream_lost)
+                                          est.delay_s, est.rate_now_per_min,
+                                          est.now_confidence), ever_rated, stream_lost)
         if key == self._shown:
             return
         self._shown = key
-        self.value.setText(format_rate(est.rate_per_min if decision != WITHHOLD else math.nan))
+        rate = math.nan if est is None else (est.rate_now_per_min if use_now
+                                             else est.rate_per_min)
+        confidence = math.nan if est is None else (est.now_confidence if use_now
+                                                   else est.confidence)
+        self.value.setText(format_rate(rate if decision != WITHHOLD else math.nan))
         dim = decision != SHOW or stream_lost
         if dim != self._dim:
             # Style sheets are costly to apply: only when the look changes.
@@ -327,23 +337,34 @@ class ReadoutCard(QtWidgets.QFrame):
         word = quality_word(est.quality)
         quality = (f"quality {est.quality:.2f} <b style='color:{WORD_COLOURS[word]}'>"
                    f"{word}</b>")
-        delay = f"delay {est.delay_s:.1f} s"
+        other = ""  # the rate not in large digits, said beside
+        if use_now:
+            if est.display != WITHHOLD:
+                other = f"centre {format_rate(est.rate_per_min)}"
+            delay = "now" + (f" \u00b7 {other}, {est.delay_s:.1f} s ago" if other
+                             else ", delay 0 s")
+            short = "now"
+        else:
+            if not math.isnan(est.rate_now_per_min) and est.now_display != WITHHOLD:
+                other = f"now {format_rate(est.rate_now_per_min)}"
+            delay = f"delay {est.delay_s:.1f} s" + (f" \u00b7 {other}" if other else "")
+            short = f"delay {est.delay_s:.1f} s"
         if stream_lost:
             first = "stream lost: last value shown"
         elif decision != WITHHOLD:
-            first = f"confidence {100 * est.confidence:.0f} %"
+            first = f"confidence {100 * confidence:.0f} %"
             if decision == GREY:
                 first += ": uncertain"
             if self.compact:
-                first += f", {delay}"
-        elif est.has_rate:
-            first = f"not shown: confidence {100 * est.confidence:.0f} %"
+                first += f", {short}"
+        elif not math.isnan(rate):
+            first = f"not shown: confidence {100 * confidence:.0f} %"
         elif ever_rated:
             first = "no estimate: signal not usable"
         else:
             first = "warming up"
         if self.compact:
-            self.detail.setText(f"{first}<br>{quality}")
+            self.detail.setText(f"{first}<br>{quality}" + (f" \u00b7 {other}" if other else ""))
         else:
             self.detail.setText(f"{first}<br>{quality}<br>{delay}")
 
@@ -366,8 +387,10 @@ class MonitorWindow(QtWidgets.QMainWindow):
 
     def __init__(self, layout: DisplayLayout, feed: UpdateFeed, stats=None, title: str = "",
                  trace_span_s: float = 10.0, rate_span_s: float = 300.0,
-                 image_span_s: float = 120.0, clock: SessionClock | None = None):
+                 image_span_s: float = 120.0, clock: SessionClock | None = None,
+                 headline: str = "now"):
         super().__init__()
+        self.headline = headline
         self.clock = clock or SessionClock()
         self.frozen = False
         self.frozen_at_s = math.nan
@@ -478,7 +501,8 @@ class MonitorWindow(QtWidgets.QMainWindow):
         self.cards: dict = {}
         compact = len(self.layout_info.outputs) > 4
         for info in self.layout_info.outputs:
-            card = ReadoutCard(info, self.colours.get(info.source, FUSED_COLOUR), compact)
+            card = ReadoutCard(info, self.colours.get(info.source, FUSED_COLOUR), compact,
+                               self.headline)
             card.setFixedWidth(CARD_WIDTH)
             card.show_estimate(None, False)
             self.cards[info.key] = card
@@ -532,8 +556,12 @@ class MonitorWindow(QtWidgets.QMainWindow):
                 f"more likely wrong than right. Heart-rate confidence (PPG): how often such "
                 f"an estimate was within \u00b110 % or \u00b15 bpm on the development "
                 f"recordings; below {SHOW_CONFIDENCE:.0%} the digits are grey, below "
-                f"{GREY_CONFIDENCE:.0%} not shown. Delay: how far the estimate lags the "
-                f"newest sample.")
+                f"{GREY_CONFIDENCE:.0%} not shown. "
+                + ("Large digits: the rate now (at the newest sample), forecast from the "
+                   "window-centre rate, which is given beside it with its delay."
+                   if self.headline == "now" else
+                   "Large digits: the window-centre rate; delay: how far it lags the "
+                   "newest sample; the rate now is given beside it."))
 
     def _plot_widget(self):
         widget = pg.GraphicsLayoutWidget()
@@ -993,7 +1021,7 @@ def binding_drops_none(calls: int = 64, probe=None) -> bool:
 
 
 def run_with_window(runner, profile=None, duration_s: float | None = None,
-                    keep_open: bool | None = None, on_window=None):
+                    keep_open: bool | None = None, on_window=None, headline: str = "now"):
     """Run ``runner`` in a worker thread while the window draws its updates.
 
     Parameters
@@ -1037,7 +1065,8 @@ def run_with_window(runner, profile=None, duration_s: float | None = None,
     title = str(getattr(source_info, "name", ""))
     if profile is not None and getattr(profile, "name", ""):
         title += f"  \u00b7  profile {profile.name}"
-    window = MonitorWindow(layout, feed, stats=getattr(runner, "stats", None), title=title)
+    window = MonitorWindow(layout, feed, stats=getattr(runner, "stats", None), title=title,
+                           headline=headline)
     window.marker_sink = getattr(runner, "add_user_marker", None)
     if keep_open is None:
         keep_open = duration_s is None and app.platformName() != "offscreen"

@@ -41,6 +41,14 @@ def format_line(key, est) -> str:
     heart rate PPG         72.0 bpm          confidence 0.90  quality 0.80 (good)  delay  4.0 s
     >>> print(format_line(("hr", "PPG"), Estimate("hr", "PPG", 10.0, 14.0, 71.96, 0.6, 0.8)))
     heart rate PPG         72.0 bpm          confidence 0.60  quality 0.80 (good)  delay  4.0 s  (uncertain)
+
+    A live estimate also carries the rate now (the rate at its newest sample,
+    :mod:`estimators.rate_now`), said after the window-centre rate with its own
+    confidence and the same rule (``?`` when greyed, ``--`` when withheld):
+
+    >>> print(format_line(("hr", "PPG"), Estimate("hr", "PPG", 10.0, 14.0, 71.96, 0.9, 0.8,
+    ...                                           (), 75.04, 0.86)))
+    heart rate PPG         72.0 bpm          confidence 0.90  quality 0.80 (good)  delay  4.0 s  now  75.0 bpm (0.86)
     """
     quantity, source = key
     unit = unit_of(quantity)
@@ -50,7 +58,18 @@ def format_line(key, est) -> str:
     note = {GREY: GREY_NOTE, WITHHOLD: WITHHELD_NOTE if est.has_rate else ""}.get(decision, "")
     return (f"{label:<10} {source:<10} {rate} {unit:<11}  confidence {est.confidence:4.2f}  "
             f"quality {est.quality:4.2f} ({quality_word(est.quality)})  "
-            f"delay {est.delay_s:4.1f} s{note}")
+            f"delay {est.delay_s:4.1f} s{now_part(est)}{note}")
+
+
+def now_part(est) -> str:
+    """``"  now  75.0 bpm (0.86)"`` for an estimate with a rate now, else empty."""
+    if math.isnan(est.rate_now_per_min):
+        return ""
+    decision = est.now_display
+    rate = "   --" if decision == WITHHOLD else f"{est.rate_now_per_min:5.1f}"
+    mark = "?" if decision == GREY else ""
+    return (f"  now {rate}{mark} {unit_of(est.quantity)}"
+            f" ({est.now_confidence:4.2f})")
 
 
 def in_foreground(stream) -> bool:

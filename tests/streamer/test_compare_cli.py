@@ -96,3 +96,61 @@ def test_the_same_source_missing_names_the_option(full_replay, tmp_path, capfd):
     assert (code, out) == (2, [])
     assert err == [f"ridgewatch: error: {ecg_only} has none of hr/PPG to compare with; it "
                    "holds hr/ECG; choose its source with --against-source (one of ECG)"]
+
+
+def test_use_now_scores_the_rate_now_at_its_newest_sample(tmp_path, capfd):
+    """A synthetic PPG whose rate ramps at 1.5 bpm/s, replayed as live, compared with its
+    exact truth (a rate series): ``--use now`` aligns the rate now at emitted_s and
+    ``--use centre`` the centre rate at time_s, both within 1 bpm MAE (the forecast and
+    the honest time_s); the centre rate read at emitted_s, what a user would get taking
+    it as the current rate, is 2-3 bpm off."""
+    import numpy as np
+
+    from streamer.compare import load_other, pair_up, summarize, with_rate
+    from streamer.simulation import pulse_train
+
+    fs = 125.0
+    t = np.arange(int(90 * fs)) / fs
+    rate = 80.0 + 1.5 * np.clip(t - 30.0, 0.0, 40.0)
+    rec = tmp_path / "ramp.csv"
+    np.savetxt(rec, np.column_stack((t, pulse_train(fs, rate, seed=3))), fmt="%.5f",
+               delimiter=",", header="time_s,PPG", comments="")
+    truth = tmp_path / "truth.csv"
+    np.savetxt(truth, np.column_stack((t[::12], rate[::12])), fmt="%.4f", delimiter=",",
+               header="time_s,rate_per_min", comments="")
+    log = tmp_path / "live.csv"
+    assert cli.main(["replay", str(rec), "--speed", "max", "--display", "none", "-q",
+                     "--log", str(log)]) == 0
+    table = read_log(log)
+    other = load_other(str(truth))
+
+    def mae(use):
+        [hr] = [summarize(s) for s in pair_up(with_rate(table, use, str(log)), other, "hr",
+                                               "PPG")]
+        return hr["mae"]
+
+    cols = table.select("hr", "PPG").columns
+    naive = np.nanmean(np.abs(cols["rate_per_min"] - np.interp(cols["emitted_s"], t, rate)))
+    assert mae("now") <= 1.0 and mae("centre") <= 1.0
+    assert naive >= 2.0
+    capfd.readouterr()
+    assert cli.main(["compare", str(log), "--against", str(truth), "--use", "now",
+                     "--quantity", "hr"]) == 0
+    out = capfd.readouterr().out
+    assert f"MAE {mae('now'):.2f}" in out and "delay median 0.00 s" in out
+
+
+def test_use_now_on_a_log_without_the_column_is_one_line(tmp_path, capfd):
+    from streamer.sinks.estimate_log import COLUMNS_BEFORE_NOW
+
+    old = tmp_path / "old.csv"
+    old.write_text("# ridgewatch estimate log\n# mode: replay\n" + ",".join(COLUMNS_BEFORE_NOW)
+                   + "\n4.0000,0.0000,hr,PPG,72.000,0.9000,0.8000,4.0000,,show\n")
+    ref = tmp_path / "ref.csv"
+    ref.write_text("time_s,rate_per_min\n0,72\n10,72\n")
+    code = cli.main(["compare", str(old), "--against", str(ref), "--use", "now"])
+    err = capfd.readouterr().err
+    assert code == 2
+    assert err.strip() == (f"ridgewatch: error: {old} has no rate-now column (written before "
+                           "ridgewatch logged it); compare its window-centre rate with --use "
+                           "centre")

@@ -535,6 +535,8 @@ class RateMonitor:
                 path.keep_columns = bool(self.motion)
         self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
         self._now_states: dict = {}  # (quantity, source) -> rate_now.NowState
+        self._references_missing = False  # motion references lost (exercise profiles)
+        self._untrusted_hops = 0  # hops left in which the motion stage trusts no track
         self._gap_s = gap_threshold_s(self.fs)
         self.last_gaps: list[Gap] = []
         self.pulse_breathing: dict[str, PulseBreathing] = {
@@ -577,6 +579,7 @@ class RateMonitor:
         for breathing in self.pulse_breathing.values():
             breathing.reset()
         self._now_states = {}
+        self._references_missing, self._untrusted_hops = False, 0
 
     def reset(self) -> None:
         """As after construction: :meth:`restart`, and no timestamp seen (for a stream
@@ -610,7 +613,7 @@ class RateMonitor:
         trust = self.profile.hr.motion_trust
         if trust == "everywhere":
             return np.ones((1, len(tracker.posterior)))
-        if trust == "nowhere" or tracker.hops_seen == 0:
+        if trust == "nowhere" or tracker.hops_seen == 0 or self._untrusted_hops > 0:
             return None
         return motion_mod.expected_pulse(tracker.posterior, tracker.params.halfwidth_bins)
 
@@ -642,23 +645,39 @@ class RateMonitor:
         n_hops = len(blocks[next(iter(self.motion))])
         reference = (np.min([motion_blocks[name].integrity for name in self.motion_paths],
                             axis=0) if self.motion_paths else np.zeros(n_hops))
+        window_hops = int(round(self.profile.hr.window_s / self.profile.hr.hop_s))
         tracked, hops = {key: [] for key in hr_keys}, {key: [] for key in hr_keys}
         for p in range(n_hops):
+            # References back after an absence: the track was made without them (it may
+            # sit on the cadence), so for one window the motion stage trusts no track,
+            # as at start-up.
+            if self.motion_paths and reference[p] < calibration_mod.REFERENCE_MISSING:
+                self._references_missing = True
+            elif self._references_missing:
+                self._references_missing = False
+                self._untrusted_hops = window_hops
+                for key in hr_keys:
+                    self.outputs[key].tracker.reset()
             hop = {key: take_hops(blocks[key], slice(p, p + 1)) for key in hr_keys
                    if key in blocks}
             for key, suppressor in self.motion.items():
                 spectra, lines = suppressor.update(
                     hop[key].columns, None if acc is None else acc[p:p + 1],
                     self._expected_pulse(key))
-                hop[key] = dataclasses.replace(hop[key], spectra=spectra, magnitude=spectra,
-                                               columns=None, motion_lines=lines,
-                                               reference_integrity=reference[p:p + 1])
+                # While the stage warms up again its output is not what the motion
+                # calibration was fitted on: the evidence says the references are
+                # missing (the blind family) until a window has passed.
+                hop[key] = dataclasses.replace(
+                    hop[key], spectra=spectra, magnitude=spectra, columns=None,
+                    motion_lines=lines, reference_integrity=(
+                        np.zeros(1) if self._untrusted_hops > 0 else reference[p:p + 1]))
             if ("hr", FUSED) in self.outputs:
                 hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in hr_keys
                                                   if key[1] != FUSED])
             for key in hr_keys:
                 tracked[key].append(self.outputs[key].track(hop[key]))
                 hops[key].append(hop[key])
+            self._untrusted_hops = max(0, self._untrusted_hops - 1)
         if n_hops == 0:
             return [], {}
         estimates = self._report(hr_keys, {key: Tracked.concat(parts)

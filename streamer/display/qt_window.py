@@ -806,9 +806,10 @@ class MonitorWindow(QtWidgets.QMainWindow):
                                                    else "\u25cb")
         if self._final:
             symbol = "\u25a0"
-        text = self._final or state.stream
+        text = self._final or state.stream_words()
         self.stream_label.setText(f"{symbol} {text}")
-        alarm = state.stream == "stream lost" or self._final.startswith("engine stopped")
+        alarm = (state.stream == "stream lost" or bool(state.lost_streams)
+                 or self._final.startswith("engine stopped"))
         if alarm != self._alarm_shown:
             self._alarm_shown = alarm
             self.stream_label.setStyleSheet(

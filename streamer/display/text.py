@@ -159,7 +159,8 @@ class TextDisplay:
     def header(self) -> str:
         """The first line: caution, stream status, session and wall-clock time, and the
         last notice."""
-        line = f"ridgewatch ({CAUTION}) - {self.state.stream} - {self.clock.text(sep=' at ')}"
+        line = (f"ridgewatch ({CAUTION}) - {self.state.stream_words()} - "
+                f"{self.clock.text(sep=' at ')}")
         if self.state.status not in (self.state.stream, "running", "waiting for data"):
             line += f" - {self.state.status}"
         if self.state.dropped:

@@ -26,8 +26,8 @@ from estimators.monitor import RateMonitor
 from streamer.display.buffers import (BAND_FLOOR, DisplayBuffers, DisplayLayout, FramePacer,
                                       RateHistory, RawTraceRing, SpectrogramRing, UpdateFeed,
                                       confidence_band, rate_axis_range)
-from streamer.display.state import (DisplayState, format_rate, quality_word, quantity_name,
-                                    unit_of)
+from streamer.display.state import (DisplayState, SessionClock, format_rate, quality_word,
+                                    quantity_name, unit_of)
 from streamer.display.text import TextDisplay, format_line
 from streamer.runner import Runner, RunStats, Update
 from streamer.sinks.estimate_log import COLUMNS, EstimateLog, read_log, rows_text
@@ -138,6 +138,40 @@ def test_stream_status_follows_the_events():
     assert live.notice == "stream 's' skipped 1.000 s of samples"
     live.apply(_event("resumed", "stream 's' is back"))
     assert live.stream == "connected"
+
+
+def test_one_stream_of_a_session_lost_is_not_the_whole_session_lost():
+    """A session's accelerometer (or marker) stream lost while the others run: the
+    status stays connected and names the lost stream; only a loss with nothing left
+    running says "stream lost"."""
+    state = DisplayState()
+    state.apply(Update([], Chunk(np.zeros((3, 1)), np.arange(3.0)), {}))
+    message = ("stream 'arm-acc' lost; continuing without it (its channels read NaN) and "
+               "waiting for it to come back")
+    state.apply(_event("lost", message, stream="arm-acc", others_running=True))
+    assert state.stream == "connected"
+    assert state.stream_words() == "connected ('arm-acc' lost)"
+    assert state.notice == message
+    state.apply(_event("lost", "marker stream 'lab' lost; waiting for it to come back",
+                       stream="lab", others_running=True))
+    assert state.stream_words() == "connected ('arm-acc', 'lab' lost)"
+    state.apply(_event("resumed", "stream 'arm-acc' is back", stream="arm-acc"))
+    assert state.stream_words() == "connected ('lab' lost)"
+    state.apply(_event("lost", "stream 'band-ppg' lost; waiting for it to come back",
+                       stream="band-ppg", others_running=False))
+    assert state.stream_words() == "stream lost ('lab' lost)"
+    assert state.stream == "stream lost"
+
+
+def test_text_header_names_the_lost_stream_of_a_session():
+    out = io.StringIO()
+    display = TextDisplay(stream=out, clock=SessionClock(wall=lambda: 65.0, started=0.0))
+    display.state.apply(Update([], Chunk(np.zeros((3, 1)), np.arange(3.0)), {}))
+    display.state.apply(_event("lost", "stream 'arm-acc' lost; continuing without it",
+                               stream="arm-acc", others_running=True))
+    assert display.header().startswith(
+        "ridgewatch (research tool, not a medical device) - connected ('arm-acc' lost) - "
+        "session 0:01:05 at ")
 
 
 def test_state_tells_warming_up_from_no_estimate():
@@ -477,6 +511,23 @@ def test_window_shows_a_dash_and_greys_without_a_rate(qt, fed):
         window.draw(force=True)
         assert "stream lost" in window.stream_label.text()
         assert "stream lost" in window.cards[("rr", "RESP")].detail.text()
+    finally:
+        window.close()
+
+
+@pytest.mark.gui
+def test_window_keeps_the_cards_live_when_one_stream_of_a_session_is_lost(qt, fed):
+    monitor, updates, _, _ = fed
+    window = _window(qt, monitor, list(updates))
+    try:
+        window.feed.listener(Update([], None, {}, SourceEvent(
+            "lost", "stream 'arm-acc' lost; continuing without it", 0.0,
+            {"stream": "arm-acc", "others_running": True})))
+        window.refresh()
+        window.draw(force=True)
+        assert window.stream_label.text() == "\u25cf connected ('arm-acc' lost)"
+        for card in window.cards.values():
+            assert "stream lost" not in card.detail.text()
     finally:
         window.close()
 

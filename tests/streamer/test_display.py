@@ -204,8 +204,12 @@ def test_text_display_drops_instead_of_blocking_and_says_so():
 
 def test_text_line_shows_a_dash_without_rate():
     line = format_line(("rr", "RESP"), Estimate("rr", "RESP", 1.0, 17.0, math.nan, 0.2, 0.1))
-    assert "--" in line and "breaths/min" in line and "(unusable)" in line
-    assert "delay 16.0 s" in line
+    assert line == ("breathing  RESP          -- breaths/min  confidence   --  quality 0.10 "
+                    "(unusable)  delay 16.0 s  (no estimate)")
+    # A lost PPG: the engine's rows carry no rate but a confidence from before; the line
+    # must not print a confidence beside the dash.
+    line = format_line(("hr", "PPG"), Estimate("hr", "PPG", 1.0, 5.0, math.nan, 0.95, 0.0))
+    assert "0.95" not in line
 
 
 @pytest.mark.parametrize("rate, confidence, quality, shown, note", [
@@ -213,7 +217,7 @@ def test_text_line_shows_a_dash_without_rate():
     (72.0, 0.65, 0.85, " 72.0 bpm", "  (uncertain)"),
     (174.0, 0.9, 0.18, "174.0 bpm", "  (uncertain)"),
     (174.0, 0.3, 0.7, "   -- bpm", "  (not shown: likely outside tolerance)"),
-    (math.nan, 0.9, 0.9, "   -- bpm", ""),
+    (math.nan, 0.9, 0.9, "   -- bpm", "  (no estimate)"),
 ])
 def test_text_line_follows_the_display_rule(rate, confidence, quality, shown, note):
     line = format_line(("hr", "PPG"), Estimate("hr", "PPG", 1.0, 5.0, rate, confidence, quality))

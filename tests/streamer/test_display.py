@@ -537,6 +537,29 @@ def test_window_keeps_the_cards_live_when_one_stream_of_a_session_is_lost(qt, fe
 
 
 @pytest.mark.gui
+def test_a_long_notice_never_cuts_the_caution_in_the_status_bar(qt, fed):
+    monitor, updates, _, _ = fed
+    window = _window(qt, monitor, list(updates))
+    try:
+        window.resize(1280, 800)
+        message = ("stream 'arm-acc' lost; continuing without it (its channels read NaN) and "
+                   "waiting for it to come back")
+        window.feed.listener(Update([], None, {}, SourceEvent(
+            "lost", message, 0.0, {"stream": "arm-acc", "others_running": True})))
+        window.refresh()
+        window.draw(force=True)
+        qt.application().processEvents()
+        caution = window.caution_label
+        assert caution.text() == ("ridgewatch is a research tool, not a medical device: not "
+                                  "for diagnosis or treatment")
+        assert caution.width() >= caution.sizeHint().width()
+        assert window.notice_label.toolTip() == message
+        assert not caution.geometry().intersects(window.notice_label.geometry())
+    finally:
+        window.close()
+
+
+@pytest.mark.gui
 @pytest.mark.parametrize("rate, confidence, quality, text, grey, detail", [
     (72.0, 0.93, 0.85, "72", False, "confidence 93 %"),
     (72.0, 0.65, 0.85, "72", True, "confidence 65 %: uncertain"),

@@ -725,8 +725,14 @@ class MonitorWindow(QtWidgets.QMainWindow):
         caution = QtWidgets.QLabel(f"ridgewatch is a {CAUTION}: not for diagnosis or "
                                    f"treatment")
         caution.setStyleSheet("font-weight: bold;")
+        # The caution never shrinks; a long notice (a lost stream's message) is cut
+        # instead, its whole text in the tooltip.
+        caution.setMinimumWidth(caution.sizeHint().width())
+        self.caution_label = caution
         bar.addWidget(caution)
         self.notice_label = QtWidgets.QLabel("")
+        self.notice_label.setSizePolicy(QtWidgets.QSizePolicy.Policy.Ignored,
+                                        QtWidgets.QSizePolicy.Policy.Preferred)
         bar.addWidget(self.notice_label, 1)
         self.timing_label = QtWidgets.QLabel("")
         bar.addPermanentWidget(self.timing_label)
@@ -834,15 +840,17 @@ class MonitorWindow(QtWidgets.QMainWindow):
                                                    else "\u25cb")
         if self._final:
             symbol = "\u25a0"
-        text = self._final or state.stream
+        text = self._final or state.stream_words()
         self.stream_label.setText(f"{symbol} {text}")
-        alarm = state.stream == "stream lost" or self._final.startswith("engine stopped")
+        alarm = (state.stream == "stream lost" or bool(state.lost_streams)
+                 or self._final.startswith("engine stopped"))
         if alarm != self._alarm_shown:
             self._alarm_shown = alarm
             self.stream_label.setStyleSheet(
                 "font-size: 22px; font-weight: bold;" + (" color: #FF8A80;" if alarm else ""))
         if state.notice:
             self.notice_label.setText(state.notice)
+            self.notice_label.setToolTip(state.notice)
 
     def _draw_channel_labels(self) -> None:
         state = self.buffers.state

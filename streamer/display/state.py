@@ -146,6 +146,9 @@ class DisplayState:
     newest_sample_s : timestamp of the newest sample seen (NaN before the first).
     markers : the newest :data:`MARKERS_KEPT` markers (oldest first).
     markers_seen : how many markers came in all (tells a redraw that one came).
+    lost_streams : names of the streams of a session that are lost while the others
+        run (``detail["others_running"]`` of their ``lost`` event); ``stream`` stays
+        ``connected`` for them, since the estimates go on (:meth:`stream_words`).
     """
 
     latest: dict = field(default_factory=dict)
@@ -159,6 +162,20 @@ class DisplayState:
     markers: collections.deque = field(
         default_factory=lambda: collections.deque(maxlen=MARKERS_KEPT))
     markers_seen: int = 0
+    lost_streams: set = field(default_factory=set)
+
+    def stream_words(self) -> str:
+        """The stream status as the displays write it: :attr:`stream`, and the streams
+        of a session lost while the others run.
+
+        >>> state = DisplayState(stream="connected", lost_streams={"arm-acc"})
+        >>> state.stream_words()
+        "connected ('arm-acc' lost)"
+        """
+        if not self.lost_streams:
+            return self.stream
+        names = ", ".join(f"'{name}'" for name in sorted(self.lost_streams))
+        return f"{self.stream} ({names} lost)"
 
     def apply(self, update) -> None:
         """Take one runner update (estimates, chunk, event, markers)."""
@@ -184,9 +201,14 @@ class DisplayState:
                 words = _speed_words(event.detail.get("speed"))
                 self.stream = f"replaying {words}".strip()
             elif event.kind == "lost":
-                self.stream = "stream lost"
+                if event.detail.get("others_running"):
+                    # One device of a session: the estimates go on without it.
+                    self.lost_streams.add(event.detail.get("stream", "?"))
+                else:
+                    self.stream = "stream lost"
                 self.notice = event.message
             elif event.kind == "resumed":
+                self.lost_streams.discard(event.detail.get("stream", "?"))
                 self.stream = "connected"
                 self.notice = event.message
             elif event.kind == "end":

@@ -27,12 +27,16 @@ GREY_NOTE = "  (uncertain)"
 grey that survives a log file."""
 WITHHELD_NOTE = "  (not shown: likely outside tolerance)"
 """Said when the display rule withholds a rate the engine did find."""
+NO_RATE_NOTE = "  (no estimate)"
+"""Said when the engine found no rate (quality too low, a lost stream): no confidence is
+printed then, since it would describe a rate that is not there."""
 
 
 def format_line(key, est) -> str:
     """One line for the newest estimate ``est`` of ``key = (quantity, source)``, as the
     display rule decides (:mod:`estimators.display_rule`): the rate when shown, the rate
-    and :data:`GREY_NOTE` when greyed, a dash when withheld.
+    and :data:`GREY_NOTE` when greyed, a dash when withheld; a dash for the confidence
+    too when there is no rate at all.
 
     Examples
     --------
@@ -41,6 +45,8 @@ def format_line(key, est) -> str:
     heart rate PPG         72.0 bpm          confidence 0.90  quality 0.80 (good)  delay  4.0 s
     >>> print(format_line(("hr", "PPG"), Estimate("hr", "PPG", 10.0, 14.0, 71.96, 0.6, 0.8)))
     heart rate PPG         72.0 bpm          confidence 0.60  quality 0.80 (good)  delay  4.0 s  (uncertain)
+    >>> print(format_line(("hr", "PPG"), Estimate("hr", "PPG", 10.0, 14.0, math.nan, 0.95, 0.0)))
+    heart rate PPG           -- bpm          confidence   --  quality 0.00 (unusable)  delay  4.0 s  (no estimate)
 
     A live estimate also carries the rate now (the rate at its newest sample,
     :mod:`estimators.rate_now`), said after the window-centre rate with its own
@@ -55,8 +61,10 @@ def format_line(key, est) -> str:
     label = "heart rate" if quantity == "hr" else "breathing"
     decision = est.display
     rate = "   --" if decision == WITHHOLD else f"{est.rate_per_min:5.1f}"
-    note = {GREY: GREY_NOTE, WITHHOLD: WITHHELD_NOTE if est.has_rate else ""}.get(decision, "")
-    return (f"{label:<10} {source:<10} {rate} {unit:<11}  confidence {est.confidence:4.2f}  "
+    confidence = f"{est.confidence:4.2f}" if est.has_rate else "  --"
+    note = {GREY: GREY_NOTE,
+            WITHHOLD: WITHHELD_NOTE if est.has_rate else NO_RATE_NOTE}.get(decision, "")
+    return (f"{label:<10} {source:<10} {rate} {unit:<11}  confidence {confidence}  "
             f"quality {est.quality:4.2f} ({quality_word(est.quality)})  "
             f"delay {est.delay_s:4.1f} s{now_part(est)}{note}")
 
@@ -178,7 +186,8 @@ class TextDisplay:
     def header(self) -> str:
         """The first line: caution, stream status, session and wall-clock time, and the
         last notice."""
-        line = f"ridgewatch ({CAUTION}) - {self.state.stream} - {self.clock.text(sep=' at ')}"
+        line = (f"ridgewatch ({CAUTION}) - {self.state.stream_words()} - "
+                f"{self.clock.text(sep=' at ')}")
         if self.state.status not in (self.state.stream, "running", "waiting for data"):
             line += f" - {self.state.status}"
         if self.state.dropped:

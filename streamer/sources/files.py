@@ -898,9 +898,11 @@ def _choose_xdf_streams(loaded: list, given: str, streams: Sequence[str] | None)
             if not numeric:
                 kind = ("text markers, which are always read"
                         if not any(_is_numeric(s) for s in matches) else "no samples")
+                numbers = "; ".join(_describe_stream(s) for s in loaded
+                                    if _is_numeric(s) and len(s["time_stamps"]) > 0)
                 raise InputError(
                     f"{given}: stream {name!r} holds no numeric samples ({kind}); --stream "
-                    f"chooses among the numeric streams: {described}"
+                    f"chooses among the numeric streams: {numbers or 'none'}"
                 )
             chosen += numeric
         return chosen

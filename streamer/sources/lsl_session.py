@@ -25,7 +25,8 @@ then interpolates each stream on its own corrected timestamps.
 Loss and return, per stream
 ---------------------------
 * A numeric stream lost while others run: a ``"lost"`` event naming it
-  (``detail["stream"]``), the merger stops waiting for it and its channels read NaN,
+  (``detail["stream"]``, and ``detail["others_running"]`` True, so the displays do not
+  call the whole session lost), the merger stops waiting for it and its channels read NaN,
   which the engine treats as rejected samples (held at the last good value, lower
   quality) while every other channel carries on. When it comes back, a ``"resumed"``
   event; ``detail["restart"]`` is False for a stream of accelerometer channels only, so
@@ -35,8 +36,8 @@ Loss and return, per stream
   buffering sender's rhythm) stops holding the others back; a stream that has sent
   nothing at all that long after the first samples of another gets an ``"irregular"``
   event saying so. Its samples are used again as soon as they flow.
-* A marker stream lost: a ``"lost"`` event, and it is looked for again; markers are
-  never held back.
+* A marker stream lost: a ``"lost"`` event (``detail["others_running"]`` True: the
+  numbers go on), and it is looked for again; markers are never held back.
 """
 
 from __future__ import annotations
@@ -210,7 +211,7 @@ class MarkerReader:
                         self._inlet = None
                         put(SourceEvent("lost", f"marker stream '{self.name}' lost; "
                                         f"waiting for it to come back", math.nan,
-                                        {"stream": self.name}))
+                                        {"stream": self.name, "others_running": True}))
                         resolver = pylsl.ContinuousResolver(pred=predicate,
                                                             forget_after=PRESENCE_S)
                         continue
@@ -403,6 +404,7 @@ class LslSession:
             self._lost[k] = True
             others = [s.info.name for j, s in enumerate(self.streams)
                       if j != k and not self._lost[j]]
+            detail["others_running"] = bool(others)
             if others and message.endswith("waiting for it to come back"):
                 message = (f"stream '{name}' lost; continuing without it (its channels read "
                            f"NaN) and waiting for it to come back")

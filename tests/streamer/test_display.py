@@ -26,8 +26,8 @@ from estimators.monitor import RateMonitor
 from streamer.display.buffers import (BAND_FLOOR, DisplayBuffers, DisplayLayout, FramePacer,
                                       RateHistory, RawTraceRing, SpectrogramRing, UpdateFeed,
                                       confidence_band, rate_axis_range)
-from streamer.display.state import (DisplayState, format_rate, quality_word, quantity_name,
-                                    unit_of)
+from streamer.display.state import (DisplayState, SessionClock, format_rate, quality_word,
+                                    quantity_name, unit_of)
 from streamer.display.text import TextDisplay, format_line
 from streamer.runner import Runner, RunStats, Update
 from streamer.sinks.estimate_log import COLUMNS, EstimateLog, read_log, rows_text
@@ -140,6 +140,40 @@ def test_stream_status_follows_the_events():
     assert live.stream == "connected"
 
 
+def test_one_stream_of_a_session_lost_is_not_the_whole_session_lost():
+    """A session's accelerometer (or marker) stream lost while the others run: the
+    status stays connected and names the lost stream; only a loss with nothing left
+    running says "stream lost"."""
+    state = DisplayState()
+    state.apply(Update([], Chunk(np.zeros((3, 1)), np.arange(3.0)), {}))
+    message = ("stream 'arm-acc' lost; continuing without it (its channels read NaN) and "
+               "waiting for it to come back")
+    state.apply(_event("lost", message, stream="arm-acc", others_running=True))
+    assert state.stream == "connected"
+    assert state.stream_words() == "connected ('arm-acc' lost)"
+    assert state.notice == message
+    state.apply(_event("lost", "marker stream 'lab' lost; waiting for it to come back",
+                       stream="lab", others_running=True))
+    assert state.stream_words() == "connected ('arm-acc', 'lab' lost)"
+    state.apply(_event("resumed", "stream 'arm-acc' is back", stream="arm-acc"))
+    assert state.stream_words() == "connected ('lab' lost)"
+    state.apply(_event("lost", "stream 'band-ppg' lost; waiting for it to come back",
+                       stream="band-ppg", others_running=False))
+    assert state.stream_words() == "stream lost ('lab' lost)"
+    assert state.stream == "stream lost"
+
+
+def test_text_header_names_the_lost_stream_of_a_session():
+    out = io.StringIO()
+    display = TextDisplay(stream=out, clock=SessionClock(wall=lambda: 65.0, started=0.0))
+    display.state.apply(Update([], Chunk(np.zeros((3, 1)), np.arange(3.0)), {}))
+    display.state.apply(_event("lost", "stream 'arm-acc' lost; continuing without it",
+                               stream="arm-acc", others_running=True))
+    assert display.header().startswith(
+        "ridgewatch (research tool, not a medical device) - connected ('arm-acc' lost) - "
+        "session 0:01:05 at ")
+
+
 def test_state_tells_warming_up_from_no_estimate():
     state = DisplayState()
     nan = Estimate("hr", "PPG", 4.0, 8.0, math.nan, 0.1, 0.1)
@@ -170,8 +204,12 @@ def test_text_display_drops_instead_of_blocking_and_says_so():
 
 def test_text_line_shows_a_dash_without_rate():
     line = format_line(("rr", "RESP"), Estimate("rr", "RESP", 1.0, 17.0, math.nan, 0.2, 0.1))
-    assert "--" in line and "breaths/min" in line and "(unusable)" in line
-    assert "delay 16.0 s" in line
+    assert line == ("breathing  RESP          -- breaths/min  confidence   --  quality 0.10 "
+                    "(unusable)  delay 16.0 s  (no estimate)")
+    # A lost PPG: the engine's rows carry no rate but a confidence from before; the line
+    # must not print a confidence beside the dash.
+    line = format_line(("hr", "PPG"), Estimate("hr", "PPG", 1.0, 5.0, math.nan, 0.95, 0.0))
+    assert "0.95" not in line
 
 
 @pytest.mark.parametrize("rate, confidence, quality, shown, note", [
@@ -179,7 +217,7 @@ def test_text_line_shows_a_dash_without_rate():
     (72.0, 0.65, 0.85, " 72.0 bpm", "  (uncertain)"),
     (174.0, 0.9, 0.18, "174.0 bpm", "  (uncertain)"),
     (174.0, 0.3, 0.7, "   -- bpm", "  (not shown: likely outside tolerance)"),
-    (math.nan, 0.9, 0.9, "   -- bpm", ""),
+    (math.nan, 0.9, 0.9, "   -- bpm", "  (no estimate)"),
 ])
 def test_text_line_follows_the_display_rule(rate, confidence, quality, shown, note):
     line = format_line(("hr", "PPG"), Estimate("hr", "PPG", 1.0, 5.0, rate, confidence, quality))
@@ -477,6 +515,46 @@ def test_window_shows_a_dash_and_greys_without_a_rate(qt, fed):
         window.draw(force=True)
         assert "stream lost" in window.stream_label.text()
         assert "stream lost" in window.cards[("rr", "RESP")].detail.text()
+    finally:
+        window.close()
+
+
+@pytest.mark.gui
+def test_window_keeps_the_cards_live_when_one_stream_of_a_session_is_lost(qt, fed):
+    monitor, updates, _, _ = fed
+    window = _window(qt, monitor, list(updates))
+    try:
+        window.feed.listener(Update([], None, {}, SourceEvent(
+            "lost", "stream 'arm-acc' lost; continuing without it", 0.0,
+            {"stream": "arm-acc", "others_running": True})))
+        window.refresh()
+        window.draw(force=True)
+        assert window.stream_label.text() == "\u25cf connected ('arm-acc' lost)"
+        for card in window.cards.values():
+            assert "stream lost" not in card.detail.text()
+    finally:
+        window.close()
+
+
+@pytest.mark.gui
+def test_a_long_notice_never_cuts_the_caution_in_the_status_bar(qt, fed):
+    monitor, updates, _, _ = fed
+    window = _window(qt, monitor, list(updates))
+    try:
+        window.resize(1280, 800)
+        message = ("stream 'arm-acc' lost; continuing without it (its channels read NaN) and "
+                   "waiting for it to come back")
+        window.feed.listener(Update([], None, {}, SourceEvent(
+            "lost", message, 0.0, {"stream": "arm-acc", "others_running": True})))
+        window.refresh()
+        window.draw(force=True)
+        qt.application().processEvents()
+        caution = window.caution_label
+        assert caution.text() == ("ridgewatch is a research tool, not a medical device: not "
+                                  "for diagnosis or treatment")
+        assert caution.width() >= caution.sizeHint().width()
+        assert window.notice_label.toolTip() == message
+        assert not caution.geometry().intersects(window.notice_label.geometry())
     finally:
         window.close()
 

@@ -990,9 +990,12 @@ def test_xdf_stream_by_name_and_unknown_stream(tmp_path, rng):
         read_recording(tmp_path / "r.xdf", stream="EEG")
     with pytest.raises(InputError, match=r"r\.xdf: no stream named 'EEG'; streams are: "):
         read_recording(tmp_path / "r.xdf", stream=["Wrist", "EEG"])
+    # Only the numeric streams are offered, not the marker stream that was refused.
+    numeric = (r"Temperature \(type Temp, 1 x double64, 3 samples\); Wrist \(type PPG, 3 x "
+               r"float32, 400 samples\)$")
     with pytest.raises(InputError, match=r"r\.xdf: stream 'Markers' holds no numeric samples "
                                          r"\(text markers, which are always read\); --stream "
-                                         r"chooses among the numeric streams: " + streams):
+                                         r"chooses among the numeric streams: " + numeric):
         read_recording(tmp_path / "r.xdf", stream="Markers")
     # Several streams in the order named; a name given twice counts once.
     rec = read_recording(tmp_path / "r.xdf", stream=["Wrist", "Temperature", "Wrist"])

@@ -238,6 +238,7 @@ def test_session_reports_the_lost_stream_and_runs_on(lab):
     items = lab["items"]
     lost = [i for i in items if isinstance(i, SourceEvent) and i.kind == "lost"]
     assert [e.detail["stream"] for e in lost] == [lab["acc"]]
+    assert lost[0].detail["others_running"] is True  # the displays keep the session on
     assert lost[0].message == (f"stream '{lab['acc']}' lost; continuing without it (its "
                                f"channels read NaN) and waiting for it to come back")
     after = items[items.index(lost[0]) + 1:]
@@ -307,6 +308,7 @@ def test_a_lost_marker_stream_is_reported_and_estimation_goes_on():
     events = [i for i in items if isinstance(i, SourceEvent)]
     assert [(e.kind, e.message) for e in events] == [
         ("lost", f"marker stream '{markers}' lost; waiting for it to come back")]
+    assert events[0].detail == {"stream": markers, "others_running": True}
 
 
 def test_errors_name_every_missing_stream_and_a_markers_only_session():

@@ -467,11 +467,11 @@ def test_window_curves_hold_the_estimates_fed(qt, fed):
             band = window.band_items[key]
             np.testing.assert_array_equal(band.lower, lower)
             np.testing.assert_array_equal(band.upper, upper)
-            # The readout shows the newest estimate in whole units, or a dash when the
-            # display rule withholds it.
-            shown = est[-1].display != "withhold"
-            assert window.cards[key].value.text() == format_rate(rates[-1] if shown
-                                                                 else math.nan)
+            # The readout shows the newest estimate's rate now (the default headline) in
+            # whole units, or a dash when the display rule withholds it.
+            shown = est[-1].now_display != "withhold"
+            assert window.cards[key].value.text() == format_rate(
+                est[-1].rate_now_per_min if shown else math.nan)
             if key not in window.image_items:
                 continue
             for line in window.ridge_curves[key]:  # the ridge is the same track

@@ -281,7 +281,7 @@ def _candidates(detect: np.ndarray, lo: int, hi: int, r: int) -> np.ndarray:
     windows = np.lib.stride_tricks.sliding_window_view(padded, r)
     u = np.arange(lo - base, hi - base)
     # Slices of the window view, not fancy indexing: reduced in place, never copied
-    # into a (len(u), r) array (4.6 GB for 4 h at 125 Hz).
+    # into a (len(u), r) array (0.4 GB each for 4 h of PPG at 125 Hz).
     before = windows[lo - base:hi - base].max(axis=1)  # seg[u - r : u]
     after = windows[lo - base + r + 1:hi - base + r + 1].max(axis=1)  # seg[u + 1 : u + r + 1]
     keep = (seg[u] > before) & (seg[u] >= after)

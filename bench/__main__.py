@@ -38,7 +38,7 @@ from pathlib import Path
 from bench import REPO_ROOT, RESULTS_DIR, jsonable, measure, section, worker_env
 
 OWN_PARTS = ("cost", "streaming_batch", "throughput", "step_response", "rate_now", "latency",
-             "memory", "accuracy")
+             "memory", "offline_memory", "accuracy")
 EXTERNAL_PARTS = {
     # name: (module, results file, section title)
     "exercise": ("bench.exercise_table", "exercise.json", "Exercise heart-rate table (SPC 2015)"),
@@ -64,7 +64,8 @@ def run_own(name: str, quick: bool) -> dict:
     runners = {"cost": cost.run_cost, "streaming_batch": cost.run_streaming_batch,
                "throughput": throughput.run, "step_response": step_response.run,
                "rate_now": rate_now.run,
-               "latency": latency.run, "memory": memory.run, "accuracy": accuracy.run}
+               "latency": latency.run, "memory": memory.run,
+               "offline_memory": memory.run_offline, "accuracy": accuracy.run}
     return runners[name](quick)
 
 

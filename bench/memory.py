@@ -1,4 +1,16 @@
-"""Resident memory over a long simulated stream.
+"""Resident memory: a long simulated stream, and ``ridgewatch offline`` of long records.
+
+``python -m bench.memory`` runs the offline part alone and prints its rows
+(``--quick``: 15 and 30 minute records); ``python -m bench --only offline_memory`` runs
+it inside the suite.
+
+**Offline** (:func:`run_offline`): ``ridgewatch offline`` with the default profile on a
+synthetic single-PPG record at 125 Hz written as CSV.gz (1 h and 4 h), each in its own
+child interpreter; its peak resident memory is the child's ``ru_maxrss`` (from
+``os.wait4``, so no other process counts), its wall time includes reading the file and
+writing the log. Target: 4 h within 1.5 GB.
+
+**Live stream** (:func:`run`):
 
 A :class:`RateMonitor` with one PPG and one respiration channel at 125 Hz (the usual
 wearable pair: heart rate and breathing rate) runs at full speed in its own interpreter,
@@ -122,8 +134,134 @@ def run(quick: bool) -> dict:
     return section("Memory over a long stream", measures, method, r)
 
 
+
+# ------------------------------------------------------------------ offline memory
+
+OFFLINE_TARGET_MB = 1536.0
+"""Peak resident memory allowed for ``ridgewatch offline`` of a 4 h single-PPG record
+at 125 Hz, default profile (1.5 GB)."""
+OFFLINE_HOURS = (1.0, 4.0)
+OFFLINE_QUICK_HOURS = (0.25, 0.5)
+
+
+def write_ppg_record(path, duration_s: float, fs: float = FS, seed: int = 5) -> None:
+    """A synthetic single-PPG record as a gzip-compressed CSV (``time_s,PPG``).
+
+    The heart rate wanders between 60 and 90 bpm over ten minutes and the pulse is
+    scaled by a 15 breaths/min modulation, so both heart rate and breathing from the
+    pulse have something to track. Written in one-minute pieces so the writer never
+    holds the text of the whole file.
+    """
+    import gzip
+
+    from streamer.simulation import pulse_train
+
+    n = int(round(duration_s * fs))
+    t = np.arange(n) / fs
+    rate = 75.0 + 15.0 * np.sin(2 * np.pi * t / 600.0)
+    ppg = pulse_train(fs, rate, seed=seed) * (1.0 + 0.15 * np.sin(2 * np.pi * t * 0.25))
+    piece = int(round(60 * fs))
+    with gzip.open(path, "wt", compresslevel=1) as f:
+        f.write("time_s,PPG\n")
+        for a in range(0, n, piece):
+            rows = np.column_stack((t[a:a + piece], ppg[a:a + piece]))
+            f.write("\n".join(f"{x:.3f},{y:.6f}" for x, y in rows.tolist()) + "\n")
+
+
+def offline_peak(record, log, profile: str = "wrist", root=None) -> dict:
+    """Run ``ridgewatch offline record --log log`` in a child interpreter; its peak
+    resident memory (``ru_maxrss`` of that child alone, from ``os.wait4``) and wall time.
+    ``root``: the source tree to run (default this one), e.g. an export of an earlier
+    commit for a before/after comparison in one run."""
+    import os
+    import subprocess
+
+    from bench import REPO_ROOT
+
+    root = REPO_ROOT if root is None else root
+    env = dict(os.environ)
+    env["PYTHONPATH"] = os.pathsep.join(filter(None, [str(root), env.get("PYTHONPATH")]))
+    command = [sys.executable, "-c", "import sys; from streamer.cli import main; "
+               "sys.exit(main())", "offline", str(record), "--log", str(log),
+               "--profile", profile, "-q"]
+    started = time.perf_counter()
+    child = subprocess.Popen(command, cwd=root, env=env,
+                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    stderr = child.stderr.read()
+    _, status, usage = os.wait4(child.pid, 0)
+    child.returncode = os.waitstatus_to_exitcode(status)
+    wall_s = time.perf_counter() - started
+    if child.returncode != 0:
+        tail = (stderr.decode("utf-8", "replace").strip().splitlines() or ["(no output)"])[-1]
+        raise RuntimeError(f"ridgewatch offline failed (exit {child.returncode}): {tail}")
+    return {"peak_rss_mb": usage.ru_maxrss / 1024.0, "wall_s": wall_s}
+
+
+def run_offline(quick: bool, before=None) -> dict:
+    """Peak memory and time of ``ridgewatch offline`` on synthetic single-PPG records;
+    with ``before`` (another source tree), the same records through it too, and the
+    ratios of this tree's figures to its."""
+    import tempfile
+    from pathlib import Path
+
+    hours = OFFLINE_QUICK_HOURS if quick else OFFLINE_HOURS
+    runs, earlier = {}, {}
+    with tempfile.TemporaryDirectory() as folder:
+        for h in hours:
+            record = Path(folder) / f"ppg-{h:g}h.csv.gz"
+            write_ppg_record(record, h * 3600.0)
+            runs[h] = offline_peak(record, Path(folder) / f"ppg-{h:g}h-offline.csv")
+            runs[h]["record_mb"] = record.stat().st_size / 2 ** 20
+            if before is not None:
+                earlier[h] = offline_peak(record, Path(folder) / f"ppg-{h:g}h-before.csv",
+                                          root=before)
+    short, long = hours
+    measures = []
+    for h in hours:
+        last = h == long and not quick
+        measures.append(measure(f"offline peak RSS, {h:g} h single PPG", runs[h]["peak_rss_mb"],
+                                "MB", f"<= {OFFLINE_TARGET_MB:g} MB" if last else None,
+                                "<=" if last else None, OFFLINE_TARGET_MB if last else None))
+        measures.append(measure(f"offline wall time, {h:g} h single PPG", runs[h]["wall_s"],
+                                "s", note=f"{h * 3600 / runs[h]['wall_s']:.0f}x real time"))
+    measures.append(measure(f"peak RSS ratio {long:g} h / {short:g} h",
+                            runs[long]["peak_rss_mb"] / runs[short]["peak_rss_mb"], ""))
+    for h, then in earlier.items():
+        measures.append(measure(f"{h:g} h: peak RSS, this tree / before",
+                                runs[h]["peak_rss_mb"] / then["peak_rss_mb"], "",
+                                note=f"before {then['peak_rss_mb']:.0f} MB"))
+        measures.append(measure(f"{h:g} h: wall time, this tree / before",
+                                runs[h]["wall_s"] / then["wall_s"], "",
+                                note=f"before {then['wall_s']:.1f} s"))
+    method = (f"`ridgewatch offline` (profile wrist) on a synthetic single-PPG CSV.gz at "
+              f"{FS:g} Hz (time_s,PPG; heart rate 60-90 bpm, breathing modulation) in a child "
+              f"interpreter; peak RSS = ru_maxrss of that child (os.wait4), wall time "
+              f"includes reading the file and writing the log.")
+    return section("Offline memory (4 h record)", measures, method,
+                   {"this": {f"{h:g}h": r for h, r in runs.items()},
+                    "before": {f"{h:g}h": r for h, r in earlier.items()}})
+
+
+def main(argv: list[str]) -> int:
+    import argparse
+
+    parser = argparse.ArgumentParser(prog="python -m bench.memory",
+                                     description="peak memory of ridgewatch offline")
+    parser.add_argument("--quick", action="store_true", help="15 and 30 minute records")
+    parser.add_argument("--before", metavar="DIR",
+                        help="also run another source tree (e.g. 'git archive' of an "
+                             "earlier commit) on the same records and print the ratios")
+    args = parser.parse_args(argv)
+    result = run_offline(args.quick, args.before)
+    for row in result["measures"]:
+        note = f" ({row['note']})" if row["note"] else ""
+        target = f"  target {row['target']}: {'met' if row['met'] else 'not met'}" \
+            if row["target"] else ""
+        print(f"{row['measure']}: {row['value']:.4g} {row['unit']}{note}{target}")
+    return 0
+
 if __name__ == "__main__":
     if len(sys.argv) > 1 and sys.argv[1] == "--worker":
         _worker(sys.argv[2:])
     else:
-        sys.exit("usage: python -m bench.memory --worker BUDGET_S CHECKPOINT_S...")
+        sys.exit(main(sys.argv[1:]))

@@ -116,6 +116,51 @@ def backward_pass(emissions, weights, transition, mix, out_beta):
 
 
 @kernel
+def backward_mass(emissions, weights, transition, mix, alphas, centre, halfwidth, out_mass):
+    """Posterior mass within ``halfwidth`` bins of ``centre[p]`` at every hop, from the
+    forward posteriors ``alphas`` (P, F) and a backward recursion run here (as
+    :func:`backward_pass`) that keeps only the current backward vector: the same
+    numbers as ``alphas * betas`` normalised per hop and summed near the centre,
+    without holding the (P, F) betas. ``out_mass`` (P,) receives the masses (NaN where
+    the posterior of a hop is all zero).
+    """
+    n_hops, n_bins = emissions.shape
+    beta = np.empty(n_bins)
+    tmp = np.empty(n_bins)
+    for f in range(n_bins):
+        beta[f] = 1.0 / n_bins
+    for p in range(n_hops - 1, -1, -1):
+        total = 0.0
+        near = 0.0
+        for f in range(n_bins):
+            v = alphas[p, f] * beta[f]
+            total += v
+            if abs(f - centre[p]) <= halfwidth:
+                near += v
+        out_mass[p] = near / total if total > 0.0 else np.nan
+        if p == 0:
+            break
+        w = weights[p]
+        total_in = 0.0
+        for f in range(n_bins):
+            e = emissions[p, f]
+            if w != 1.0:
+                e = e ** w
+            tmp[f] = e * beta[f]
+            total_in += tmp[f]
+        if total_in > 0.0:
+            for f in range(n_bins):
+                tmp[f] /= total_in
+        predict(tmp, transition, mix, beta)
+        total = 0.0
+        for f in range(n_bins):
+            total += beta[f]
+        if total > 0.0:
+            for f in range(n_bins):
+                beta[f] /= total
+
+
+@kernel
 def viterbi(log_emissions, log_transition, log_jump, out_path):
     """Globally optimal ridge through ``log_emissions`` (P, F) by dynamic programming.
 
@@ -127,7 +172,7 @@ def viterbi(log_emissions, log_transition, log_jump, out_path):
     half = (log_transition.shape[0] - 1) // 2
     score = np.empty(n_bins)
     new = np.empty(n_bins)
-    back = np.empty((n_hops, n_bins), dtype=np.int64)
+    back = np.empty((n_hops, n_bins), dtype=np.int32)  # bins: far below 2**31
     for f in range(n_bins):
         score[f] = log_emissions[0, f]
         back[0, f] = f

@@ -47,7 +47,8 @@ from estimators.errors import ParameterError
 from estimators.estimate import Estimate
 from estimators.preprocess import Analysis, Limiter, Preprocessor, STUCK_RUN_S
 from estimators.respiration import MIN_FS_HZ, PulseBreathing
-from estimators.stft import Columns, SlidingSTFT, stft_batch
+from estimators.stft import (Columns, HopGatherer, SlidingSTFT, batch_hop_count,
+                             gather_hops, stft_blocks)
 
 FUSED = "fused"
 
@@ -206,13 +207,33 @@ class ChannelPath:
                         columns.spectra if self.keep_columns else None)
 
     def batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> HopBlock:
-        """The whole record in one call (causal twin, or zero-phase for offline)."""
+        """The whole record in one call (causal twin, or zero-phase for offline).
+
+        The columns are formed block by block (:meth:`batch_blocks`) and only what is
+        made of them is kept, so a long record never holds every complex column."""
+        n_hops, blocks = self.batch_blocks(x, t, zero_phase)
+        return gather_hops(n_hops, blocks, self._block(Columns(
+            np.empty((0, self.geometry.n_fft // 2 + 1), complex), None, np.empty(0),
+            np.empty(0), np.empty(0, np.int64), np.empty(0, np.int64), np.empty((2, 0)),
+            np.empty((2, 0)))))
+
+    def batch_blocks(self, x: np.ndarray, t: np.ndarray, zero_phase: bool,
+                     block_hops: int | None = None):
+        """The hops of :meth:`batch` in consecutive blocks of at most ``block_hops``
+        (default :data:`estimators.stft.BATCH_BLOCK_HOPS`): ``(n_hops, generator of
+        HopBlock)``. Pre-processing runs over the whole record first (its filters see
+        every sample, as in :meth:`batch`); each block's complex columns are freed once
+        its spectra are made (kept only with ``keep_columns``, for the motion stage)."""
         g = self.geometry
         analysis: Analysis = self.pre.batch(x, t, zero_phase)
-        columns = stft_batch(analysis.values, analysis.timestamps, g.window, g.min_window,
-                             g.hop, g.n_fft, self.settings.sharpen,
-                             (analysis.cum_rejected, analysis.cum_stuck))
-        integrity = window_integrity(columns, g.decimation)
+        n_hops = batch_hop_count(len(analysis.values), g.min_window, g.hop)
+        columns = stft_blocks(analysis.values, analysis.timestamps, g.window, g.min_window,
+                              g.hop, g.n_fft, self.settings.sharpen,
+                              (analysis.cum_rejected, analysis.cum_stuck), block_hops)
+        return n_hops, (self._block(c) for c in columns)
+
+    def _block(self, columns: Columns) -> HopBlock:
+        integrity = window_integrity(columns, self.geometry.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
         return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
                         columns.spectra if self.keep_columns else None)
@@ -782,41 +803,65 @@ def offline_estimates(samples, timestamps, channels, fs: float, profile="wrist")
             for e in estimates]
 
 
+def _offline_motion(monitor: RateMonitor, samples: np.ndarray,
+                    timestamps: np.ndarray) -> dict[tuple[str, str], HopBlock]:
+    """The heart-rate blocks of one stretch after the motion stage (and the fused block
+    when there is one), for :func:`_offline_stretch`.
+
+    The motion stage needs a track to know where to trust its canceller: a causal
+    forward pass over the zero-phase columns gives it (its estimates are dropped); the
+    Viterbi ridge then runs on the spectra that pass made. The pass goes block by block
+    (:meth:`ChannelPath.batch_blocks`; heart-rate and reference paths share one
+    geometry, so their blocks hold the same hops) and carries its state between blocks
+    as a live run carries it between chunks, so the complex columns it needs exist one
+    block at a time."""
+    monitor.restart()
+    keys = [key for key in monitor.paths if key[0] == "hr"]
+    plans = [monitor.paths[key].batch_blocks(samples[:, monitor._index[key[1]]],
+                                             timestamps, True) for key in keys]
+    plans += [path.batch_blocks(samples[:, monitor._index[name]], timestamps, True)
+              for name, path in monitor.motion_paths.items()]
+    n_hops = plans[0][0]
+    out_keys = keys + ([("hr", FUSED)] if ("hr", FUSED) in monitor.outputs else [])
+    gatherers = {key: HopGatherer(n_hops) for key in out_keys}
+    for parts in zip(*[blocks for _, blocks in plans]):
+        _, tracked = monitor.track_with_motion(
+            dict(zip(keys, parts[:len(keys)])),
+            dict(zip(monitor.motion_paths, parts[len(keys):])))
+        for key, gatherer in gatherers.items():
+            gatherer.add(tracked[key])
+    n_bins = len(monitor.paths[keys[0]].grid.freqs_hz)
+    none = np.empty(0)
+    empty = HopBlock(np.empty((0, n_bins)), none, none, none, np.empty((0, n_bins)))
+    return {key: gatherer.result(empty) for key, gatherer in gatherers.items()}
+
+
 def _offline_stretch(monitor: RateMonitor, samples: np.ndarray,
                      timestamps: np.ndarray) -> list[Estimate]:
     """:func:`offline_estimates` of one stretch without a gap."""
     end = float(timestamps[-1])
+    # Breathing from the pulse first: its spectra are freed before the paths' are made,
+    # so the two never take memory at once.
+    estimates = []
+    for name, breathing in monitor.pulse_breathing.items():
+        estimates.extend(breathing.offline(samples[:, monitor._index[name]], timestamps))
     blocks = {key: path.batch(samples[:, monitor._index[key[1]]], timestamps, True)
-              for key, path in monitor.paths.items()}
+              for key, path in monitor.paths.items()
+              if not (monitor.motion and key[0] == "hr")}
     if monitor.motion:
-        # The motion stage needs a track to know where to trust its canceller: a causal
-        # forward pass over the zero-phase columns gives it (its estimates are dropped);
-        # the Viterbi ridge below then runs on the spectra that pass made.
-        monitor.restart()
-        _, tracked = monitor.track_with_motion(blocks, {
-            name: path.batch(samples[:, monitor._index[name]], timestamps, True)
-            for name, path in monitor.motion_paths.items()})
-        blocks.update(tracked)
+        blocks.update(_offline_motion(monitor, samples, timestamps))
     elif ("hr", FUSED) in monitor.outputs:
         blocks[("hr", FUSED)] = fuse_blocks([b for (q, _), b in blocks.items() if q == "hr"])
-    estimates = []
     channel_rates = []
     for key, out in monitor.outputs.items():
         block = blocks[key]
         if len(block) == 0:
             continue
-        params = out.tracker.params
-        emissions = tracker_mod.emissions_from_spectra(block.spectra, out.tracker.power)
         weights = block.integrity * out.tracker.rhythm(block.spectra, block.magnitude)
-        path = tracker_mod.viterbi_path(emissions, weights, params)
-        post = tracker_mod.smooth_all(emissions, weights, params)
-        idx = np.arange(post.shape[1])
-        near = np.abs(idx[None, :] - path[:, None]) <= params.halfwidth_bins
-        mass = np.where(near, post, 0.0)
-        conf = np.clip(mass.sum(axis=1), 0.0, 1.0)
         # Rate at the spectral peak near the Viterbi ridge (as live reads it near the mode).
-        readout = block.spectra if block.magnitude is None else block.magnitude
-        rate = tracker_mod.refine_peak(readout, path, params.halfwidth_bins, out.rates)
+        rate, conf, _ = tracker_mod.offline_track(block.spectra, weights, out.tracker.params,
+                                                  out.tracker.power, out.rates,
+                                                  block.magnitude)
         new = estimates_from_track(key[0], key[1], block, rate, conf, out.rates, out.settings,
                                    np.full(len(block), end),
                                    channel_rates=_stacked(channel_rates)
@@ -824,8 +869,6 @@ def _offline_stretch(monitor: RateMonitor, samples: np.ndarray,
         if key[0] == "hr" and key[1] != FUSED:
             channel_rates.append([e.rate_per_min for e in new])
         estimates.extend(new)
-    for name, breathing in monitor.pulse_breathing.items():
-        estimates.extend(breathing.offline(samples[:, monitor._index[name]], timestamps))
     return estimates
 
 

@@ -21,6 +21,7 @@ estimate before any tracker lag.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -195,10 +196,20 @@ class SlidingSTFT:
                        aux_before, aux_last)
 
 
-def stft_batch(values: np.ndarray, times: np.ndarray, window_samples: int,
-               min_window_samples: int, hop_samples: float, n_fft: int,
-               with_derivative: bool = False, aux=()) -> Columns:
-    """All columns of a whole signal in one call (the batch twin of :class:`SlidingSTFT`)."""
+BATCH_BLOCK_HOPS = 1024
+"""Hops per block of :func:`stft_blocks`. A block of complex columns holds
+``BATCH_BLOCK_HOPS * (n_fft // 2 + 1)`` complex values (17 MB for the heart-rate grid's
+2048-point FFT), however long the record; a caller keeps only what it makes of each
+block (band spectra), so the whole-record columns (about 1 GB per hour of
+heart-rate hops at 0.25 s) never exist at once. Columns are computed row by row, so
+the block size does not change any value. Our own choice: large enough that the
+per-block Python overhead is negligible (about 4 minutes of hops per block)."""
+
+
+def _batch_plan(values, times, window_samples: int, min_window_samples: int,
+                hop_samples: float, n_fft: int, with_derivative: bool, aux):
+    """The validated :class:`SlidingSTFT`, the signal buffer and the hop counts and
+    window lengths of every column of a whole record."""
     sliding = SlidingSTFT(window_samples, min_window_samples, hop_samples, n_fft,
                           with_derivative)  # validates the parameters first
     counts = hop_counts(0, len(values), hop_samples)
@@ -207,4 +218,84 @@ def stft_batch(values: np.ndarray, times: np.ndarray, window_samples: int,
     buf = np.vstack([np.asarray(values, dtype=np.float64), np.asarray(times, dtype=np.float64),
                      *[np.asarray(a, dtype=np.float64) for a in aux]]) if len(values) else \
         np.empty((2 + len(aux), 0))
+    return sliding, buf, counts, lengths
+
+
+def batch_hop_count(n_values: int, min_window_samples: int, hop_samples: float) -> int:
+    """How many columns :func:`stft_batch` forms from ``n_values`` analysis samples."""
+    counts = hop_counts(0, n_values, hop_samples)
+    return int(np.count_nonzero(counts >= min_window_samples))
+
+
+def stft_blocks(values: np.ndarray, times: np.ndarray, window_samples: int,
+                min_window_samples: int, hop_samples: float, n_fft: int,
+                with_derivative: bool = False, aux=(), block_hops: int | None = None):
+    """The columns of :func:`stft_batch` in consecutive blocks of at most
+    ``block_hops`` hops (default :data:`BATCH_BLOCK_HOPS`): a generator of
+    :class:`Columns`, in hop order. Concatenated, the blocks are :func:`stft_batch`'s
+    columns exactly (each column is its own FFT). Nothing is yielded when the record
+    has no column."""
+    block_hops = BATCH_BLOCK_HOPS if block_hops is None else int(block_hops)
+    if block_hops < 1:
+        raise ParameterError(f"block_hops={block_hops} must be >= 1")
+    sliding, buf, counts, lengths = _batch_plan(values, times, window_samples,
+                                                min_window_samples, hop_samples, n_fft,
+                                                with_derivative, aux)
+    for a in range(0, len(counts), block_hops):
+        part = slice(a, a + block_hops)
+        yield sliding._columns(buf, counts[part], lengths[part], counts[part])
+
+
+def stft_batch(values: np.ndarray, times: np.ndarray, window_samples: int,
+               min_window_samples: int, hop_samples: float, n_fft: int,
+               with_derivative: bool = False, aux=()) -> Columns:
+    """All columns of a whole signal in one call (the batch twin of :class:`SlidingSTFT`).
+
+    It holds every complex column at once; :func:`stft_blocks` gives the same columns
+    block by block for long records."""
+    sliding, buf, counts, lengths = _batch_plan(values, times, window_samples,
+                                                min_window_samples, hop_samples, n_fft,
+                                                with_derivative, aux)
     return sliding._columns(buf, counts, lengths, counts)
+
+
+class HopGatherer:
+    """Consecutive blocks of per-hop records (frozen dataclasses whose array fields
+    have the hop on their first axis; None fields stay None) written into arrays of
+    ``n_hops`` hops allocated at the first block: the record is held once, where a
+    list of blocks and its concatenation would hold it twice.
+
+    ``add(block)`` for each block in hop order, then ``result(empty)`` (``empty``: what
+    to return when no block came)."""
+
+    def __init__(self, n_hops: int):
+        self.n_hops, self._filled, self._out = int(n_hops), 0, None
+
+    def add(self, block) -> None:
+        if self._out is None:
+            self._out = {}
+            for field in dataclasses.fields(block):
+                part = getattr(block, field.name)
+                self._out[field.name] = None if part is None else np.empty(
+                    (self.n_hops,) + part.shape[1:], part.dtype)
+        p, n = self._filled, len(block)
+        for name, array in self._out.items():
+            if array is not None:
+                array[p:p + n] = getattr(block, name)
+        self._filled += n
+
+    def result(self, empty):
+        if self._out is None:
+            return empty
+        if self._filled != self.n_hops:  # an inconsistent plan would leave garbage rows
+            raise RuntimeError(f"{self._filled} hops gathered where {self.n_hops} were "
+                               "planned")
+        return type(empty)(**self._out)
+
+
+def gather_hops(n_hops: int, blocks, empty):
+    """The blocks of an iterable (consumed once) gathered by :class:`HopGatherer`."""
+    gatherer = HopGatherer(n_hops)
+    for block in blocks:
+        gatherer.add(block)
+    return gatherer.result(empty)

@@ -38,6 +38,10 @@ from estimators.errors import ParameterError
 
 EMISSION_FLOOR = 1e-2
 
+OFFLINE_BLOCK_HOPS = 4096
+"""Rows per block where :func:`offline_track` works row by row (peak read-out): its
+temporary masks stay at a few MB however long the record. Our own choice."""
+
 
 def transition_kernel(sigma_bins: float) -> np.ndarray:
     """Normalised Gaussian step kernel over ``+-ceil(3 sigma)`` bins (at least +-1)."""
@@ -181,13 +185,61 @@ def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerPara
     n_hops, n_bins = emissions.shape
     if n_hops == 0:
         return np.empty(0, dtype=np.int64)
-    log_e = np.ascontiguousarray(np.log(emissions) * np.clip(weights, 0, 1)[:, None])
+    weights = np.clip(weights, 0, 1)
+    log_e = np.empty((n_hops, n_bins))
+    for a in range(0, n_hops, OFFLINE_BLOCK_HOPS):  # row by row: no (P, F) temporaries
+        part = slice(a, a + OFFLINE_BLOCK_HOPS)
+        log_e[part] = np.log(emissions[part]) * weights[part, None]
     mix = params.jump_probability
     log_t = np.log((1.0 - mix) * params.transition + mix / n_bins)
     log_jump = np.log(mix / n_bins) if mix > 0 else -np.inf
     path = np.empty(n_hops, dtype=np.int64)
     _kernels.viterbi(log_e, log_t, float(log_jump), path)
     return path
+
+
+def offline_track(spectra: np.ndarray, weights: np.ndarray, params: TrackerParams,
+                  power: float, rates: np.ndarray, readout: np.ndarray | None = None):
+    """The offline twin of the tracker over a whole record: the Viterbi ridge and the
+    forward-backward posterior mass within the half-width of it.
+
+    Returns ``(rate, confidence, path)`` per hop: the rate of the highest peak of
+    ``readout`` (default ``spectra``) near the ridge (:func:`refine_peak`), the mass
+    near the ridge clipped to [0, 1], and the ridge's bins.
+
+    Notes
+    -----
+    The same numbers as :func:`viterbi_path`, :func:`smooth_all` and a mask of the
+    posteriors near the path, in bounded memory: the Viterbi pass runs first and frees
+    its log-emissions; the backward recursion (``_kernels.backward_mass``) keeps one
+    backward vector and reads the forward posteriors as it goes, so besides the
+    spectra at most three (P, F) arrays exist at once (emissions, forward posteriors,
+    and during the Viterbi pass its log-emissions and back-pointers), against about
+    seven for the plain composition. The sums run in another order, so the masses agree
+    with it to rounding (tested to 1e-12).
+    """
+    emissions = np.empty(spectra.shape)
+    for a in range(0, len(spectra), OFFLINE_BLOCK_HOPS):  # row by row: no (P, F) temporaries
+        part = slice(a, a + OFFLINE_BLOCK_HOPS)
+        emissions[part] = emissions_from_spectra(spectra[part], power)
+    weights = np.ascontiguousarray(np.clip(weights, 0.0, 1.0), dtype=np.float64)
+    path = viterbi_path(emissions, weights, params)
+    if len(path) == 0:
+        empty = np.empty(0)
+        return empty, empty, path
+    _, alphas = forward_step(initial_posterior(emissions.shape[1]), emissions, weights,
+                             params)
+    mass = np.empty(len(path))
+    _kernels.backward_mass(emissions, weights, params.transition, params.jump_probability,
+                           alphas, path.astype(np.float64), float(params.halfwidth_bins),
+                           mass)
+    del alphas, emissions
+    readout = spectra if readout is None else readout
+    rate = np.empty(len(path))
+    for a in range(0, len(path), OFFLINE_BLOCK_HOPS):  # its masks are (P, F) too
+        part = slice(a, a + OFFLINE_BLOCK_HOPS)
+        rate[part] = refine_peak(readout[part], path[part], params.halfwidth_bins, rates)
+    return rate, np.clip(mass, 0.0, 1.0), path
 
 
 class RidgeTracker:

@@ -9,27 +9,21 @@ recordings.
 
 Running the same batch on a cluster
 -----------------------------------
-:func:`process_recording` is a plain, picklable function of (path, options) returning
-a list of summary rows, so any distributed engine that maps a function over inputs can
-run it. With Dask (``pip install "dask[distributed]"``, not a dependency of ridgewatch)::
-
-    from dask.distributed import Client
-    from streamer.batch import BatchOptions, find_recordings, process_recording
-    from streamer.report import write_batch_summary
-
-    client = Client("tcp://scheduler:8786")          # your cluster's scheduler
-    options = BatchOptions(out_dir="results", profile="wrist")
-    futures = client.map(process_recording, find_recordings("data/", "*.csv.gz"),
-                         options=options)
-    rows = [row for part in client.gather(futures) for row in part]
-    write_batch_summary(rows, "results")
-
-The recordings and ``out_dir`` must be on storage every worker can reach.
+With the ``dask`` extra (``pip install "ridgewatch[dask]"``), ``ridgewatch batch FOLDER
+--dask local`` runs the recordings on a ``dask.distributed`` local cluster (one
+single-threaded worker process per core, or ``--jobs``), and ``--dask ADDRESS`` on the
+workers of the scheduler at ``ADDRESS`` (e.g. ``tcp://scheduler:8786``).
+:func:`run_batch` hands the same :func:`process_recording` calls to the cluster's
+``concurrent.futures`` executor (:func:`dask_executor`) that it otherwise hands to a
+local process pool, and writes the same summary. The recordings and ``out_dir`` must
+be on storage every worker can reach, under the same paths.
 """
 
 from __future__ import annotations
 
+import contextlib
 import fnmatch
+import logging
 import math
 import os
 import re
@@ -318,10 +312,108 @@ def _compare_runs(stem, out, reference, quantity, live, offline, options) -> lis
     return rows
 
 
+DASK_CONNECT_TIMEOUT_S = 10.0
+"""How long ``--dask ADDRESS`` waits for the scheduler to answer (seconds). Dask's own
+default connect timeout is 30 s (from memory); a scheduler on a reachable network
+answers within milliseconds, and a typing error in the address should not cost half a
+minute. Our own choice."""
+
+DASK_MISSING = "--dask needs the dask extra: pip install 'ridgewatch[dask]'"
+
+
+@contextlib.contextmanager
+def dask_executor(dask, workers: int | None = None, timeout_s: float | None = None):
+    """A ``concurrent.futures`` executor on a Dask cluster, closed on exit.
+
+    ``dask`` is ``"local"`` (a ``dask.distributed.LocalCluster`` of ``workers`` worker
+    processes, default one per core, one thread each: a recording's run is one Python
+    thread, and numba kernels and the report's figures are not shared between
+    threads), a scheduler address, or a ``dask.distributed.Client`` the caller owns
+    (left open).
+
+    Raises
+    ------
+    InputError
+        dask is not installed (:data:`DASK_MISSING`), or the scheduler does not answer
+        within ``timeout_s`` (default :data:`DASK_CONNECT_TIMEOUT_S`).
+    """
+    timeout_s = DASK_CONNECT_TIMEOUT_S if timeout_s is None else timeout_s
+    try:
+        from dask.distributed import Client, LocalCluster
+    except ImportError:
+        raise InputError(DASK_MISSING) from None
+    if isinstance(dask, Client):
+        yield dask.get_executor()
+        return
+    # dask.distributed logs its cluster's life at INFO on its own loggers, which would
+    # reach ridgewatch's stderr line by line: only its warnings and errors do.
+    quiet = [logging.getLogger(name) for name in
+             ["distributed", *logging.root.manager.loggerDict]
+             if name.split(".")[0] == "distributed"]
+    levels = [logger.level for logger in quiet]
+    for logger in quiet:
+        logger.setLevel(max(logger.getEffectiveLevel(), logging.WARNING))
+    try:
+        with _dask_client(dask, workers, timeout_s, Client, LocalCluster) as client:
+            yield client.get_executor()
+    finally:
+        for logger, level in zip(quiet, levels):
+            logger.setLevel(level)
+
+
+@contextlib.contextmanager
+def _dask_client(dask, workers, timeout_s, Client, LocalCluster):
+    """A client of a new local cluster or of the scheduler at ``dask`` (see
+    :func:`dask_executor`), closed on exit with its cluster."""
+    cluster = None
+    if dask == "local":
+        cluster = LocalCluster(n_workers=workers or os.cpu_count() or 1, threads_per_worker=1,
+                               processes=True, dashboard_address=None)
+        client = Client(cluster)
+    else:
+        try:
+            client = Client(dask, timeout=timeout_s)
+        except ValueError as exc:  # dask's own words on what is wrong with it
+            raise InputError(f"--dask {dask}: not a scheduler address "
+                             f"({' '.join(str(exc).split())}); give local or an address "
+                             "such as tcp://HOST:8786") from None
+        except (OSError, TimeoutError) as exc:
+            reason = " ".join(str(exc).split()) or type(exc).__name__
+            raise InputError(f"--dask {dask}: no Dask scheduler answered within "
+                             f"{timeout_s:g} s ({reason}); check the address (e.g. "
+                             "tcp://HOST:8786) and that the scheduler is running") from None
+    try:
+        yield client
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+
+
+def _map_recordings(pool, recordings: list[Path], options: BatchOptions, progress
+                    ) -> list[dict]:
+    """:func:`process_recording` of every recording on ``pool`` (an executor); rows in
+    the order they finish."""
+    rows = []
+    futures = {pool.submit(process_recording, p, options): p for p in recordings}
+    for done, future in enumerate(as_completed(futures), start=1):
+        rows.extend(future.result())
+        if progress:
+            progress(done, len(recordings), futures[future])
+    return rows
+
+
 def run_batch(folder, options: BatchOptions, pattern: str | None = None, jobs: int | None = None,
-              progress=None) -> tuple[list[dict], dict]:
+              progress=None, dask=None) -> tuple[list[dict], dict]:
     """Process every recording of ``folder`` on ``jobs`` local processes (default: the
-    number of cores); write the summary table. Returns (rows, written paths)."""
+    number of cores), or on a Dask cluster (``dask``: ``"local"``, a scheduler address
+    or a ``Client``; see :func:`dask_executor`); write the summary table. Returns
+    (rows, written paths)."""
+    if dask is not None:  # one line before any work when the extra is missing
+        try:
+            from dask import distributed  # noqa: F401  (binds no name 'dask')
+        except ImportError:
+            raise InputError(DASK_MISSING) from None
     from streamer.report import write_batch_summary
 
     recordings = find_recordings(folder, pattern)
@@ -353,20 +445,19 @@ def run_batch(folder, options: BatchOptions, pattern: str | None = None, jobs: i
         raise InputError(f"{options.out_dir}: holds the logs of an earlier batch ({earlier[0]}"
                          f"{more}); give another --out folder, or add --overwrite to replace "
                          "them")
-    jobs = max(1, min(jobs or os.cpu_count() or 1, len(recordings)))
     rows: list[dict] = []
-    if jobs == 1:
+    if dask is not None:
+        workers = min(jobs, len(recordings)) if jobs else None
+        with dask_executor(dask, workers) as pool:
+            rows.extend(_map_recordings(pool, recordings, options, progress))
+    elif (jobs := max(1, min(jobs or os.cpu_count() or 1, len(recordings)))) == 1:
         for i, path in enumerate(recordings):
             rows.extend(process_recording(path, options))
             if progress:
                 progress(i + 1, len(recordings), path)
     else:
         with ProcessPoolExecutor(max_workers=jobs) as pool:
-            futures = {pool.submit(process_recording, p, options): p for p in recordings}
-            for done, future in enumerate(as_completed(futures), start=1):
-                rows.extend(future.result())
-                if progress:
-                    progress(done, len(recordings), futures[future])
+            rows.extend(_map_recordings(pool, recordings, options, progress))
     order = {recording_stem(p): i for i, p in enumerate(recordings)}
     rows.sort(key=lambda r: (order.get(r["recording"], 0), r.get("run", ""),
                              r.get("quantity", ""), r.get("source", "")))

@@ -250,7 +250,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--channel", action="append", metavar="NAME=KIND")
     _profile_options(p)
     _csv_time(p)
-    p.add_argument("--jobs", type=int, help="parallel processes (default: number of cores)")
+    p.add_argument("--jobs", type=int, help="parallel processes (default: number of cores); "
+                                            "with --dask local, the number of workers")
+    p.add_argument("--dask", metavar="local|ADDRESS",
+                   help="run the recordings on a Dask cluster: 'local' (one worker process "
+                        "per core) or a scheduler address such as tcp://HOST:8786; needs "
+                        "pip install 'ridgewatch[dask]'")
     p.add_argument("--no-report", action="store_true", help="summary table only")
     p.add_argument("--overwrite", action="store_true",
                    help="replace logs of an earlier batch in --out (ridgewatch logs only)")
@@ -780,7 +785,11 @@ def cmd_batch(args) -> int:
         if not args.quiet:
             print(f"[{done}/{total}] {Path(path).name}", file=sys.stderr)
 
-    rows, written = run_batch(args.folder, options, args.pattern, args.jobs, progress)
+    if args.dask is not None and args.dask != "local" and args.jobs is not None:
+        raise InputError(f"--jobs applies to local processes (and --dask local); the "
+                         f"scheduler at {args.dask} runs on its own workers: drop --jobs")
+    rows, written = run_batch(args.folder, options, args.pattern, args.jobs, progress,
+                              dask=args.dask)
     for row in rows:
         if "error" in row:
             print(f"{row['recording']}: {row['error']}", file=sys.stderr)

@@ -32,6 +32,7 @@ from estimators.config import Profile
 from estimators.estimate import Estimate
 from estimators.monitor import Gap, RateMonitor
 from streamer.channels import Selected
+from streamer.display.snapshot import DisplaySnapshot, take_snapshot
 from streamer.sources.base import Chunk, Marker, SourceEvent
 
 log = logging.getLogger("ridgewatch")
@@ -105,11 +106,15 @@ class RunStats:
 
 @dataclass(frozen=True)
 class Update:
-    """What listeners (the display) receive after each chunk."""
+    """What listeners (the display) receive after each chunk, an event or markers."""
 
     estimates: list
+    """The chunk's estimates, in the order they were logged."""
     chunk: Chunk | None
-    blocks: dict
+    """The chunk's samples of the selected channels (None for an event or markers)."""
+    snapshot: DisplaySnapshot | None
+    """What the engine made of the chunk (:mod:`streamer.display.snapshot`); None with
+    no chunk."""
     event: SourceEvent | None = None
     markers: tuple = ()
     """Markers just written to the log (in stream-time order)."""
@@ -266,7 +271,7 @@ class Runner:
                 self.log.write_marker(marker)
         if self.outlet is not None and hasattr(self.outlet, "push_markers"):
             self.outlet.push_markers(markers, self.stats.stream_end_s)
-        self._notify(Update([], None, {}, markers=tuple(markers)))
+        self._notify(Update([], None, None, markers=tuple(markers)))
 
     def _handle_chunk(self, chunk: Chunk) -> None:
         if len(chunk) == 0:
@@ -300,7 +305,7 @@ class Runner:
         st.estimates += len(estimates)
         if self.listeners:
             view = Chunk(samples, chunk.timestamps)
-            self._notify(Update(estimates, view, self.monitor.last_blocks))
+            self._notify(Update(estimates, view, take_snapshot(self.monitor, estimates)))
 
     def _write_estimates(self, estimates: list, compute_ms: float) -> None:
         start = 0
@@ -335,7 +340,7 @@ class Runner:
                           "restart": True})
         self._write_markers(self.markers.due(gap.after_s, inclusive=False))
         if gap.before_s <= self._announced_gap_s <= gap.after_s:
-            self._notify(Update([], None, {}, event))
+            self._notify(Update([], None, None, event))
         else:
             self._handle_event(event)
 
@@ -362,7 +367,7 @@ class Runner:
             # starts afresh, as the LSL source asks of its consumers (not when a
             # session's motion-reference stream comes back: the time axis ran on).
             self.monitor.reset()
-        self._notify(Update([], None, {}, event))
+        self._notify(Update([], None, None, event))
 
     def run(self) -> RunStats:
         """Process items until the source ends, a stop is requested or time is up."""

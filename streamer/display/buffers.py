@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from streamer.display.snapshot import OutputInfo, describe_outputs  # noqa: F401 (re-export)
 from streamer.display.state import DisplayState
 
 TRACE_SPAN_S = 10.0
@@ -382,38 +383,6 @@ class SpectrogramRing:
 
 
 @dataclass(frozen=True)
-class OutputInfo:
-    """One (quantity, source) the engine reports, and how to draw it.
-
-    Attributes
-    ----------
-    quantity, source : the pair in the estimates.
-    hop_s : time between estimates.
-    halfwidth_per_min : the confidence half-width of its settings.
-    first_estimate_s : seconds of signal before the first estimate.
-    band_per_min : lowest and highest rate its settings allow.
-    grid : rates per minute of its spectra's bins, or None when the engine exposes no
-        spectra for it (no time-frequency image then).
-    deshape : whether its spectra are de-shape spectra.
-    from_pulse : a breathing rate derived from the pulse of a PPG or ECG channel.
-    """
-
-    quantity: str
-    source: str
-    hop_s: float
-    halfwidth_per_min: float
-    first_estimate_s: float
-    band_per_min: tuple = (0.0, 1.0)
-    grid: np.ndarray | None = None
-    deshape: bool = True
-    from_pulse: bool = False
-
-    @property
-    def key(self) -> tuple:
-        return (self.quantity, self.source)
-
-
-@dataclass(frozen=True)
 class DisplayLayout:
     """What the window lays out: the channels and the outputs of the engine.
 
@@ -439,24 +408,9 @@ class DisplayLayout:
 
     @classmethod
     def from_monitor(cls, monitor) -> "DisplayLayout":
-        """The layout of a :class:`~estimators.monitor.RateMonitor`."""
-        outputs = []
-        for (quantity, source), out in monitor.outputs.items():
-            s = out.settings
-            outputs.append(OutputInfo(quantity, source, s.hop_s,
-                                      s.confidence_halfwidth_per_min, s.min_window_s,
-                                      tuple(s.band_per_min),
-                                      np.asarray(out.rates, dtype=np.float64), s.deshape))
-        # Breathing rates from the pulse have no band spectrum of their own to show.
-        for name, breathing in getattr(monitor, "pulse_breathing", {}).items():
-            s = breathing.settings
-            outputs.append(OutputInfo("rr", name, s.hop_s, s.confidence_halfwidth_per_min,
-                                      s.min_window_s, tuple(s.band_per_min), None, s.deshape,
-                                      from_pulse=True))
-        order = {"hr": 0, "rr": 1}
-        outputs.sort(key=lambda o: (order.get(o.quantity, 2), o.source == "fused",
-                                    o.from_pulse))
-        return cls(tuple(monitor.channels), float(monitor.fs), tuple(outputs))
+        """The layout of a :class:`~estimators.monitor.RateMonitor`
+        (:func:`streamer.display.snapshot.describe_outputs`)."""
+        return cls(tuple(monitor.channels), float(monitor.fs), describe_outputs(monitor))
 
 
 class DisplayBuffers:
@@ -487,9 +441,10 @@ class DisplayBuffers:
         self.state.apply(update)
         if update.chunk is not None and len(update.chunk):
             self.raw.push(update.chunk.samples, update.chunk.timestamps)
-        for key, block in update.blocks.items():
-            if key in self.images and len(block):
-                self.images[key].push(block.time_s, block.spectra)
+        if update.snapshot is not None:
+            for key, band in update.snapshot.spectra.items():
+                if key in self.images and len(band):
+                    self.images[key].push(band.time_s, band.spectra)
         by_output: dict = {}
         for est in update.estimates:
             by_output.setdefault((est.quantity, est.source), []).append(est)

@@ -287,23 +287,33 @@ def _source_id(path: Path) -> str:
 # ---------------------------------------------------------------------------- CSV
 
 
-def _read_csv(path: Path, given: str, fs: float | None, time_column: str | None = None,
-              time_unit: str | None = None) -> Recording:
-    """CSV/TSV reader: a header row, then one numeric row per sample.
+CSV_PIECE_BYTES = 1 << 22
+"""Bytes of text parsed at a time (4 MiB, completed to the end of its last line): the
+CSV reader holds the parsed table and one piece of text, never the whole text. Our own
+choice: ``np.loadtxt`` runs at full speed on pieces this size."""
 
-    Fast path: the whole file is read into memory and parsed by ``np.loadtxt`` (its C
-    parser). Measured on a 2-core development machine for 1 h at 500 Hz x 8 channels
-    plus time (1.8 M rows, 149 MB): 1.4-2.3 s plain (65-105 MB/s, 0.8-1.25 M rows/s),
-    2.8-3.3 s gzip-compressed. Only when loadtxt refuses the body does a line-by-line
-    pass run (about 10 s for that file): it names the first bad line and column, and
-    reads empty cells as NaN, the one thing it accepts that the fast path does not.
-    """
+
+def _csv_pieces(path: Path, given: str):
+    """``(offset, piece)``: the file's bytes (decompressed) in pieces of about
+    :data:`CSV_PIECE_BYTES` ending at a line end, with a leading UTF-8 byte order mark
+    removed and line ends written as ``\\r`` alone (classic Mac OS) read as ``\\n``;
+    ``offset`` counts the bytes of the pieces before. The same file gives the same
+    pieces every time."""
     try:
-        if path.name.lower().endswith(".gz"):
-            with gzip.open(path, "rb") as f:
-                raw = f.read()
-        else:
-            raw = path.read_bytes()
+        with (gzip.open(path, "rb") if path.name.lower().endswith(".gz")
+              else open(path, "rb")) as f:
+            offset = 0
+            while True:
+                piece = f.read(CSV_PIECE_BYTES)
+                if not piece:
+                    return
+                piece += f.readline()
+                if offset == 0 and piece.startswith(b"\xef\xbb\xbf"):  # spreadsheet exports
+                    piece = piece[3:]
+                if b"\r" in piece and piece.count(b"\r") != piece.count(b"\r\n"):
+                    piece = piece.replace(b"\r\n", b"\n").replace(b"\r", b"\n")
+                yield offset, piece
+                offset += len(piece)
     except EOFError:
         raise InputError(
             f"{given}: the compressed file is truncated; decompress what is left with "
@@ -312,28 +322,73 @@ def _read_csv(path: Path, given: str, fs: float | None, time_column: str | None 
     except (OSError, gzip.BadGzipFile) as exc:
         reason = getattr(exc, "strerror", None) or str(exc)
         raise InputError(f"{given}: cannot read: {reason}") from None
-    if raw.startswith(b"\xef\xbb\xbf"):  # UTF-8 byte order mark from spreadsheet exports
-        raw = raw[3:]
-    raw = _plain_text(raw, given)
 
-    # Header: the first line that is neither empty nor a '#' comment.
-    pos, line_no = 0, 0
-    header_line = None
-    while pos < len(raw):
-        end = raw.find(b"\n", pos)
-        end = len(raw) if end < 0 else end
-        line_no += 1
-        line = raw[pos:end].decode("utf-8", "replace").strip()
-        pos = end + 1
-        if line and not line.startswith("#"):
-            header_line = line
-            break
+
+def _check_text(piece: bytes, offset: int, lines_before: int, given: str) -> None:
+    """:class:`InputError` when a piece of the file shows it is not text.
+
+    A text CSV holds no control characters other than tab, line ends and form feeds:
+    the first 64 KiB of the file are checked for them (a binary file shows them at
+    once), the whole file for NUL bytes (the holes a crashed writer can leave)."""
+    if offset == 0 and piece.startswith((b"\xff\xfe", b"\xfe\xff")):
+        raise InputError(f"{given}: the file is UTF-16 text; save it as UTF-8 (or ASCII) CSV")
+    bad = (_CONTROL_BYTES.search(piece, 0, _TEXT_CHECK_BYTES - offset)
+           if offset < _TEXT_CHECK_BYTES else None)
+    k = bad.start() if bad else piece.find(b"\0")
+    if k >= 0:
+        what = "a NUL byte" if piece[k] == 0 else f"the control character 0x{piece[k]:02x}"
+        line = lines_before + piece.count(b"\n", 0, k) + 1
+        raise InputError(
+            f"{given}: byte {offset + k} (line {line}) is {what}, which a CSV file never "
+            "holds; the file is binary or damaged: check that it is the right file"
+        )
+
+
+def _read_csv(path: Path, given: str, fs: float | None, time_column: str | None = None,
+              time_unit: str | None = None) -> Recording:
+    """CSV/TSV reader: a header row, then one numeric row per sample.
+
+    Two passes, so that the text and the table are never held together. The first
+    checks that the file is text and finds the header, the last line and the number of
+    lines; the second parses pieces of :data:`CSV_PIECE_BYTES` with ``np.loadtxt`` (its
+    C parser) straight into the sample and time arrays, allocated once. Peak memory is
+    the table plus one piece (a classic Mac OS file, lines ended by ``\\r`` alone, is
+    one piece). Measured on a 2-core development machine for 1 h at 500 Hz x 8
+    channels plus time (1.8 M rows, 149 MB) with the whole text in memory: 1.4-2.3 s
+    plain, 2.8-3.3 s gzip-compressed; the first pass adds one more read (and
+    decompression) of the file (``python -m bench.memory`` measures it). Only when
+    loadtxt refuses a piece does a line-by-line pass parse it: it names the first bad
+    line and column, and reads empty cells as NaN, the one thing it accepts that the
+    fast path does not.
+    """
+    # Pass 1: text check; header (the first line that is neither empty nor a '#'
+    # comment), where the body starts, how many lines it has and where its last line is.
+    header_line, header_line_no, body_start = None, 0, 0
+    newlines = 0  # line ends before the current piece
+    last_start, last_line_no, last_line = -1, 0, b""
+    for offset, piece in _csv_pieces(path, given):
+        _check_text(piece, offset, newlines, given)
+        pos = 0
+        while header_line is None and pos < len(piece):
+            end = piece.find(b"\n", pos)
+            end = len(piece) if end < 0 else end
+            line = piece[pos:end].decode("utf-8", "replace").strip()
+            if line and not line.startswith("#"):
+                header_line = line
+                header_line_no = newlines + piece.count(b"\n", 0, pos) + 1
+                body_start = offset + end + 1
+            pos = end + 1
+        content = len(piece.rstrip(b"\r\n \t"))
+        if header_line is not None and content > max(0, body_start - offset):
+            k = max(piece.rfind(b"\n", 0, content) + 1, body_start - offset)
+            last_start, last_line = offset + k, piece[k:content]
+            last_line_no = newlines + piece.count(b"\n", 0, k) + 1
+        newlines += piece.count(b"\n")
     if header_line is None:
         raise InputError(
             f"{given}: file is empty; expected a header row with column names, then one "
             "row per sample"
         )
-    header_line_no = line_no
     delimiter = max(",;\t", key=header_line.count) if any(d in header_line for d in ",;\t") else ","
     names = [n.strip() for n in next(csv.reader([header_line], delimiter=delimiter))]
     if all(_is_number(n) for n in names):
@@ -348,43 +403,53 @@ def _read_csv(path: Path, given: str, fs: float | None, time_column: str | None 
         names.pop()
     n_columns = len(names)
     names = [name or f"column{i + 1}" for i, name in enumerate(names)]
-    # The body is raw[pos:end]; slicing copies, so the common case hands loadtxt the
-    # whole buffer positioned at pos instead.
-    end = len(raw)
 
     # A recorder that was killed may leave a last line with fewer cells: drop it.
-    content_end = end
-    while content_end > pos and raw[content_end - 1] in b"\r\n \t":
-        content_end -= 1
-    last_start = max(raw.rfind(b"\n", pos, content_end) + 1, pos)
-    last_line = raw[last_start:content_end].decode("utf-8", "replace")
-    if last_line and not last_line.lstrip().startswith("#"):
-        n_last = len(next(csv.reader([last_line], delimiter=delimiter)))
+    body_end = math.inf
+    text = last_line.decode("utf-8", "replace")
+    if text and not text.lstrip().startswith("#"):
+        n_last = len(next(csv.reader([text], delimiter=delimiter)))
         if n_last < n_cells:
-            last_line_no = header_line_no + raw.count(b"\n", pos, last_start) + 1
             logger.warning(
                 "%s: line %d has %d of %d cells (truncated last line); dropped it",
                 given, last_line_no, n_last, n_cells,
             )
-            end = last_start
+            body_end = last_start
 
-    try:
-        stream = io.BytesIO(raw if end == len(raw) else raw[:end])
-        stream.seek(pos)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
-            data = np.loadtxt(stream, delimiter=delimiter, dtype=np.float64, ndmin=2,
-                              comments="#", quotechar='"', encoding="utf-8",
-                              usecols=range(n_columns) if n_cells > n_columns else None)
-        if data.size and data.shape[1] != n_columns:
-            raise ValueError("column count differs from the header")
-    except ValueError:
-        data = _parse_csv_slowly(raw[pos:end], given, names, n_cells, delimiter,
-                                 header_line_no)
-    if data.shape[0] == 0:
+    try:  # a wrong --time-column is reported after the emptiness of the body, as before
+        time_index, time_error = _find_time_column(names, given, time_column), None
+    except InputError as exc:
+        time_index, time_error = None, exc
+    channel_columns = [i for i in range(n_columns) if i != time_index]
+
+    # Pass 2: parse the body piece by piece into arrays of (at most) its line count.
+    capacity = max(newlines + 1 - header_line_no, 0)
+    values = np.empty((capacity, len(channel_columns)))
+    times = np.empty(capacity) if time_index is not None else None
+    rows = 0
+    newlines = 0
+    for offset, piece in _csv_pieces(path, given):
+        a = max(body_start - offset, 0)
+        b = int(min(body_end - offset, len(piece)))
+        if a < b:
+            data = _parse_csv_piece(piece, a, b, given, names, n_cells, n_columns, delimiter,
+                                    newlines + piece.count(b"\n", 0, a))
+            values[rows:rows + len(data)] = data[:, channel_columns]
+            if times is not None:
+                times[rows:rows + len(data)] = data[:, time_index]
+            rows += len(data)
+        newlines += piece.count(b"\n")
+        if offset + len(piece) >= body_end:
+            break
+    if rows == 0:
         raise InputError(f"{given}: no data rows after the header; the file holds no samples")
+    if time_error is not None:
+        raise time_error
+    # Comment or empty lines in the body leave rows unused: shrink in place, no copy.
+    values.resize((rows, len(channel_columns)), refcheck=False)
+    if times is not None:
+        times.resize(rows, refcheck=False)
 
-    time_index = _find_time_column(names, given, time_column)
     if time_index is None and time_unit is not None:
         raise InputError(
             f"{given}: --time-unit {time_unit} given, but no time column found (looked for a "
@@ -398,46 +463,39 @@ def _read_csv(path: Path, given: str, fs: float | None, time_column: str | None 
                 f"{', '.join(TIME_COLUMN_NAMES)} or starting with 'time') and no --fs given; "
                 "add a time column or pass --fs HZ"
             )
-        timestamps = np.arange(data.shape[0], dtype=np.float64) / fs
+        timestamps = np.arange(rows, dtype=np.float64) / fs
         nominal_fs = float(fs)
     else:
-        timestamps, nominal_fs = _time_axis(data[:, time_index], names[time_index], given, fs,
-                                            time_unit)
-    channel_columns = [i for i in range(n_columns) if i != time_index]
+        timestamps, nominal_fs = _time_axis(times, names[time_index], given, fs, time_unit)
     if not channel_columns:
         raise InputError(f"{given}: only a time column, no signal columns; nothing to read")
     channels = tuple(ChannelInfo(names[i], None, _bracket_unit(names[i])) for i in channel_columns)
     info = SourceInfo(name=given, fs=nominal_fs, channels=channels, source_id=_source_id(path))
-    return Recording(np.ascontiguousarray(data[:, channel_columns]), timestamps, info)
+    return Recording(values, timestamps, info)
+
+
+def _parse_csv_piece(piece: bytes, a: int, b: int, given: str, names: list[str],
+                     n_cells: int, n_columns: int, delimiter: str,
+                     lines_before: int) -> np.ndarray:
+    """Rows of ``piece[a:b]`` (whole lines; ``lines_before`` lines of the file come
+    before it), through ``np.loadtxt``, or line by line when it refuses them."""
+    try:
+        stream = io.BytesIO(piece if b == len(piece) else piece[:b])
+        stream.seek(a)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
+            data = np.loadtxt(stream, delimiter=delimiter, dtype=np.float64, ndmin=2,
+                              comments="#", quotechar='"', encoding="utf-8",
+                              usecols=range(n_columns) if n_cells > n_columns else None)
+        if data.size and data.shape[1] != n_columns:
+            raise ValueError("column count differs from the header")
+        return data.reshape(-1, n_columns) if data.size == 0 else data
+    except ValueError:
+        return _parse_csv_slowly(piece[a:b], given, names, n_cells, delimiter, lines_before)
 
 
 _CONTROL_BYTES = re.compile(rb"[\x00-\x08\x0e-\x1f]")
 _TEXT_CHECK_BYTES = 1 << 16
-
-
-def _plain_text(raw: bytes, given: str) -> bytes:
-    """The CSV bytes with lines ending in ``\\n``, or :class:`InputError` for a file
-    that is not text.
-
-    A text CSV holds no control characters other than tab, line ends and form feeds:
-    the first 64 KiB are checked for them (a binary file shows them at once), the whole
-    file for NUL bytes (the holes a crashed writer can leave). Line ends written as
-    ``\\r`` alone (classic Mac OS) are read as line ends.
-    """
-    if raw.startswith((b"\xff\xfe", b"\xfe\xff")):
-        raise InputError(f"{given}: the file is UTF-16 text; save it as UTF-8 (or ASCII) CSV")
-    bad = _CONTROL_BYTES.search(raw, 0, _TEXT_CHECK_BYTES)
-    k = bad.start() if bad else raw.find(b"\0")
-    if k >= 0:
-        what = "a NUL byte" if raw[k] == 0 else f"the control character 0x{raw[k]:02x}"
-        line = raw.count(b"\n", 0, k) + 1
-        raise InputError(
-            f"{given}: byte {k} (line {line}) is {what}, which a CSV file never holds; the "
-            "file is binary or damaged: check that it is the right file"
-        )
-    if b"\r" in raw and raw.count(b"\r") != raw.count(b"\r\n"):
-        raw = raw.replace(b"\r\n", b"\n").replace(b"\r", b"\n")
-    return raw
 
 
 def _is_number(text: str) -> bool:

@@ -35,7 +35,7 @@ def hmm_inputs(rng, n_hops=40):
     return spectra, em, np.ascontiguousarray(w)
 
 
-TESTED_KERNELS = {"forward_filter", "backward_pass", "viterbi", "squeeze_column",
+TESTED_KERNELS = {"forward_filter", "backward_pass", "backward_mass", "viterbi", "squeeze_column",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
                   "rhythm_scores", "hop_rhythm", "predict", "cancel_columns",
                   "normalise_or_prior", "spectral_margins", "kth_largest", "limit_sample",
@@ -79,6 +79,26 @@ def test_backward_pass(rng, mix):
     for label, fn in both(_kernels.backward_pass):
         out = np.empty_like(em)
         fn(em, w, kernel, mix, out)
+        np.testing.assert_allclose(out, want, rtol=1e-10, atol=1e-15, err_msg=label)
+
+
+@pytest.mark.parametrize("mix", [0.0, 1e-3, 0.3])
+def test_backward_mass(rng, mix):
+    # The posterior mass near a centre per hop, as the dense forward-backward twin's
+    # smoothed posteriors summed within the half-width of it.
+    _, em, w = hmm_inputs(rng)
+    kernel = tracker.transition_kernel(0.8)
+    a = dense_hmm.transition_matrix(kernel, N_BINS, mix)
+    post = dense_hmm.smoothed(em, w, a)
+    centre = rng.integers(0, N_BINS, len(em)).astype(np.float64)
+    halfwidth = 2.5
+    near = np.abs(np.arange(N_BINS)[None, :] - centre[:, None]) <= halfwidth
+    want = np.where(near, post, 0.0).sum(axis=1)
+    alphas = np.empty_like(em)
+    _kernels.forward_filter(np.full(N_BINS, 1.0 / N_BINS), em, w, kernel, mix, alphas)
+    for label, fn in both(_kernels.backward_mass):
+        out = np.empty(len(em))
+        fn(em, w, kernel, mix, alphas, centre, halfwidth, out)
         np.testing.assert_allclose(out, want, rtol=1e-10, atol=1e-15, err_msg=label)
 
 

@@ -283,6 +283,58 @@ def test_offline_is_at_least_as_good_as_live_on_a_ramp(rng):
     assert np.nanmean(offline_err) < 2.0
 
 
+def _offline_in_blocks(monkeypatch, samples, t, channels, profile, stft_hops, tracker_hops):
+    from estimators import stft, tracker
+
+    monkeypatch.setattr(stft, "BATCH_BLOCK_HOPS", stft_hops)
+    monkeypatch.setattr(tracker, "OFFLINE_BLOCK_HOPS", tracker_hops)
+    return offline_estimates(samples, t, channels, 125.0, profile)
+
+
+def assert_estimates_close(got, want, label, tol=1e-9):
+    assert len(got) == len(want) > 0, label
+    for i, (a, b) in enumerate(zip(got, want)):
+        assert (a.quantity, a.source, a.display) == (b.quantity, b.source, b.display), \
+            f"{label} #{i}"
+        for name in ("time_s", "emitted_s", "rate_per_min", "confidence", "quality"):
+            x, y = getattr(a, name), getattr(b, name)
+            assert (math.isnan(x) and math.isnan(y)) or abs(x - y) <= tol, \
+                f"{label} #{i} {name}: {x} vs {y}"
+        np.testing.assert_allclose(a.evidence, b.evidence, rtol=0, atol=tol,
+                                   err_msg=f"{label} #{i} evidence")
+
+
+@pytest.mark.parametrize("profile", ["wrist", "exercise-wrist"])
+def test_offline_in_small_blocks_equals_one_block(rng, monkeypatch, profile):
+    # Blocks of 37 STFT hops and 29 tracker rows split a 50 s record many times; one
+    # block per record is how the offline twin used to hold every column at once.
+    t, samples = multichannel(rng)
+    whole = _offline_in_blocks(monkeypatch, samples, t, CHANNELS, profile, 10 ** 9, 10 ** 9)
+    small = _offline_in_blocks(monkeypatch, samples, t, CHANNELS, profile, 37, 29)
+    assert {e.quantity for e in whole} == {"hr", "rr"}
+    assert_estimates_close(small, whole, profile)
+
+
+@pytest.mark.slow
+def test_offline_default_blocks_on_a_ten_minute_record(monkeypatch):
+    # 10 min of PPG: about 2,370 heart-rate hops, so the default 1,024-hop blocks split
+    # it twice; the default profile also runs breathing from the pulse.
+    fs = 125.0
+    t = np.arange(int(600 * fs)) / fs
+    rate = 75.0 + 15.0 * np.sin(2 * np.pi * t / 600.0)
+    ppg = (signals.rhythm(t, rate, signals.dicrotic_pulse, noise_std=0.05,
+                          rng=np.random.default_rng(3))
+           * (1.0 + 0.15 * np.sin(2 * np.pi * 0.25 * t)))
+    from estimators import stft
+
+    default = _offline_in_blocks(monkeypatch, ppg[:, None], t, [("x", "ppg")], "wrist",
+                                 stft.BATCH_BLOCK_HOPS, 4096)
+    whole = _offline_in_blocks(monkeypatch, ppg[:, None], t, [("x", "ppg")], "wrist",
+                               10 ** 9, 10 ** 9)
+    assert len(heart(whole)) > 2 * 1024
+    assert_estimates_close(default, whole, "10 min")
+
+
 @pytest.mark.parametrize("n", [1, 12])
 def test_offline_on_a_record_shorter_than_a_window_gives_no_estimates(n):
     t = np.arange(n) / 125.0

@@ -10,7 +10,8 @@ import pytest
 from scipy.signal import ShortTimeFFT, get_window
 
 from estimators.errors import ParameterError
-from estimators.stft import SlidingSTFT, analysis_window, hop_counts, stft_batch
+from estimators.stft import (SlidingSTFT, analysis_window, batch_hop_count, hop_counts,
+                             stft_batch, stft_blocks)
 from tests.reference import stft_loop
 
 FS = 25.0
@@ -189,6 +190,32 @@ def test_streaming_equals_batch_after_every_update(rng, window, min_window, hop,
         assert_columns_equal(so_far, prefix(batch, n_done), f"after {k} samples")
     assert sliding.count == n
     assert len(concat_columns(parts).time_s) == len(batch)
+
+
+@pytest.mark.parametrize("block_hops", [1, 3, 50, 10 ** 6])
+def test_blocks_are_the_batch_columns(rng, block_hops):
+    # The blocks, one after the other, are the columns of the one-call batch twin.
+    n, window, hop = 700, 60, 5.5
+    x = rng.standard_normal(n)
+    t = np.arange(n) / FS
+    aux = (np.cumsum(rng.random(n)),)
+    whole = stft_batch(x, t, window, 20, hop, 128, True, aux)
+    blocks = list(stft_blocks(x, t, window, 20, hop, 128, True, aux, block_hops))
+    assert [len(b) for b in blocks[:-1]] == [block_hops] * (len(blocks) - 1)
+    assert sum(len(b) for b in blocks) == len(whole) == batch_hop_count(n, 20, hop)
+    got = concat_columns(blocks)
+    for name in ("spectra", "spectra_dw", "time_s", "emitted_s", "first_count", "last_count"):
+        np.testing.assert_array_equal(getattr(got, name), getattr(whole, name), name)
+    np.testing.assert_array_equal(np.concatenate([b.aux_last for b in blocks], axis=1),
+                                  whole.aux_last)
+    np.testing.assert_array_equal(np.concatenate([b.aux_before for b in blocks], axis=1),
+                                  whole.aux_before)
+    assert list(stft_blocks(x[:10], t[:10], window, 20, hop, 128)) == []
+
+
+def test_blocks_refuse_an_empty_block():
+    with pytest.raises(ParameterError, match=r"^block_hops=0 must be >= 1$"):
+        list(stft_blocks(np.zeros(20), np.arange(20.0), 10, 5, 2.0, 16, block_hops=0))
 
 
 def test_empty_update_and_reset(rng):

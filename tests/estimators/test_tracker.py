@@ -293,6 +293,31 @@ def test_viterbi_equals_dense_viterbi(rng, mix):
     np.testing.assert_array_equal(got, want)
 
 
+@pytest.mark.parametrize("block_hops", [7, 4096])
+def test_offline_track_equals_the_plain_composition(rng, monkeypatch, block_hops):
+    # The bounded-memory offline twin against the dense forward-backward posteriors and
+    # the dense Viterbi path, composed the obvious way; blocks of 7 hops split the
+    # row-by-row steps many times, 4096 leaves them whole.
+    monkeypatch.setattr(tracker, "OFFLINE_BLOCK_HOPS", block_hops)
+    params = make(sigma=1.1, mix=1e-3)
+    spectra = ridge_spectra(rng, 80, noise=0.8)
+    readout = spectra + 0.1 * rng.random(spectra.shape)
+    w = random_weights(rng, 80)
+    w[w == 0] = 0.5  # all-flat hops would make Viterbi ties, whose winner is arbitrary
+    rate, conf, path = tracker.offline_track(spectra, w, params, 2.0, RATES, readout)
+    em = dense_hmm.emissions(spectra, 2.0)
+    want_path, _ = dense_hmm.viterbi(em, w, dense(params))
+    np.testing.assert_array_equal(path, want_path)
+    post = dense_hmm.smoothed(em, w, dense(params))
+    near = np.abs(np.arange(N_BINS)[None, :] - want_path[:, None]) <= params.halfwidth_bins
+    np.testing.assert_allclose(conf, np.clip(np.where(near, post, 0.0).sum(axis=1), 0, 1),
+                               rtol=1e-12, atol=1e-15)
+    np.testing.assert_array_equal(
+        rate, tracker.refine_peak(readout, want_path, params.halfwidth_bins, RATES))
+    empty = tracker.offline_track(spectra[:0], w[:0], params, 2.0, RATES)
+    assert [len(x) for x in empty] == [0, 0, 0]
+
+
 def test_viterbi_beats_the_filtered_argmax_path(rng):
     params = make(sigma=1.0, mix=1e-3)
     em = tracker.emissions_from_spectra(ridge_spectra(rng, 60, noise=1.0), 2.0)

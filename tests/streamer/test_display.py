@@ -29,6 +29,7 @@ from streamer.display.buffers import (BAND_FLOOR, DisplayBuffers, DisplayLayout,
 from streamer.display.state import (DisplayState, SessionClock, format_rate, quality_word,
                                     quantity_name, unit_of)
 from streamer.display.text import TextDisplay, format_line
+from streamer.display.snapshot import DisplaySnapshot, take_snapshot
 from streamer.runner import Runner, RunStats, Update
 from streamer.sinks.estimate_log import COLUMNS, EstimateLog, read_log, rows_text
 from streamer.sources.base import ChannelInfo, Chunk, Recording, SourceEvent, SourceInfo
@@ -62,7 +63,7 @@ def engine_updates(chunk_n: int = 17, duration_s: float = DURATION_S):
     for a in range(0, len(t), chunk_n):
         x, ts = samples[a:a + chunk_n], t[a:a + chunk_n]
         estimates = monitor.update(x, ts)
-        updates.append(Update(estimates, Chunk(x, ts), monitor.last_blocks))
+        updates.append(Update(estimates, Chunk(x, ts), take_snapshot(monitor, estimates)))
     return monitor, updates, samples, t
 
 
@@ -113,7 +114,7 @@ def test_units_names_and_dash():
 
 
 def _event(kind, message="msg", **detail):
-    return Update([], None, {}, SourceEvent(kind, message, 0.0, detail))
+    return Update([], None, None, SourceEvent(kind, message, 0.0, detail))
 
 
 def test_stream_status_follows_the_events():
@@ -128,7 +129,7 @@ def test_stream_status_follows_the_events():
     assert state.status == "end of x"
 
     live = DisplayState()
-    live.apply(Update([], Chunk(np.zeros((3, 1)), np.arange(3.0)), {}))
+    live.apply(Update([], Chunk(np.zeros((3, 1)), np.arange(3.0)), DisplaySnapshot.empty()))
     assert live.stream == "connected"
     assert live.newest_sample_s == 2.0
     live.apply(_event("lost", "stream 's' lost"))
@@ -177,10 +178,10 @@ def test_text_header_names_the_lost_stream_of_a_session():
 def test_state_tells_warming_up_from_no_estimate():
     state = DisplayState()
     nan = Estimate("hr", "PPG", 4.0, 8.0, math.nan, 0.1, 0.1)
-    state.apply(Update([nan], None, {}))
+    state.apply(Update([nan], None, None))
     assert ("hr", "PPG") not in state.ever_rated
     assert state.status == "running"
-    state.apply(Update([Estimate("hr", "PPG", 4.25, 8.25, 70.0, 0.9, 0.9), nan], None, {}))
+    state.apply(Update([Estimate("hr", "PPG", 4.25, 8.25, 70.0, 0.9, 0.9), nan], None, None))
     assert ("hr", "PPG") in state.ever_rated
     assert state.latest[("hr", "PPG")] is nan
     assert state.channel_estimate("PPG", "ppg") is nan
@@ -227,7 +228,7 @@ def test_text_line_follows_the_display_rule(rate, confidence, quality, shown, no
 
 def test_text_display_runs_until_done():
     display = TextDisplay(stream=io.StringIO(), refresh_s=0.0)
-    updates = [Update([Estimate("hr", "PPG", 1.0, 5.0, 72.0, 0.9, 0.8)], None, {})]
+    updates = [Update([Estimate("hr", "PPG", 1.0, 5.0, 72.0, 0.9, 0.8)], None, None)]
     for u in updates:
         display.listener(u)
     display.run_until(lambda: True)
@@ -394,7 +395,8 @@ def test_buffers_hold_what_the_engine_produced(fed):
             assert key not in buffers.images
             continue
         # The newest image column is the newest band spectrum scaled to a peak of 1.
-        last = next(u.blocks[key] for u in reversed(updates) if len(u.blocks.get(key, ())))
+        last = next(u.snapshot.spectra[key] for u in reversed(updates)
+                    if len(u.snapshot.spectra.get(key, ())))
         image, _, end_s = buffers.images[key].image()
         spectrum = last.spectra[-1]
         np.testing.assert_allclose(image[-1], spectrum / spectrum.max())
@@ -501,7 +503,7 @@ def test_window_shows_a_dash_and_greys_without_a_rate(qt, fed):
     monitor, updates, _, t = fed
     key = ("hr", "PPG")
     withheld = Estimate("hr", "PPG", t[-1] - 4, t[-1], math.nan, 0.1, 0.05)
-    window = _window(qt, monitor, list(updates) + [Update([withheld], None, {})])
+    window = _window(qt, monitor, list(updates) + [Update([withheld], None, None)])
     try:
         card = window.cards[key]
         assert card.value.text() == "\u2014"
@@ -510,7 +512,7 @@ def test_window_shows_a_dash_and_greys_without_a_rate(qt, fed):
         assert "color" in card.value.styleSheet()  # greyed
         assert "unusable" in window.channel_labels[0].text
         # The stream is lost: the last value stays, greyed, and the header says so.
-        window.feed.listener(Update([], None, {}, SourceEvent("lost", "stream 'x' lost")))
+        window.feed.listener(Update([], None, None, SourceEvent("lost", "stream 'x' lost")))
         window.refresh()
         window.draw(force=True)
         assert "stream lost" in window.stream_label.text()
@@ -571,7 +573,7 @@ def test_window_card_follows_the_display_rule(qt, fed, rate, confidence, quality
                                               detail):
     monitor, updates, _, t = fed
     newest = Estimate("hr", "PPG", t[-1] - 4, t[-1], rate, confidence, quality)
-    window = _window(qt, monitor, list(updates) + [Update([newest], None, {})])
+    window = _window(qt, monitor, list(updates) + [Update([newest], None, None)])
     try:
         card = window.cards[("hr", "PPG")]
         assert card.value.text() == text

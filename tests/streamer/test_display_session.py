@@ -15,6 +15,7 @@ from estimators.monitor import RateMonitor
 from streamer.display.buffers import DisplayLayout, UpdateFeed
 from streamer.display.state import SessionClock, format_duration
 from streamer.display.text import TextDisplay
+from streamer.display.snapshot import take_snapshot
 from streamer.runner import Update
 from streamer.sources.base import Chunk
 from tests.streamer.test_display import (_runner_on, check_complete_log, engine_updates,  # noqa: F401
@@ -245,7 +246,8 @@ def test_rows_fit_at_1280_by_800(qt, n_channels, rng):
     try:
         t = np.arange(500) / 50.0
         x = rng.standard_normal((len(t), n_channels))
-        feed(qt, window, [Update(monitor.update(x, t), Chunk(x, t), monitor.last_blocks)])
+        estimates = monitor.update(x, t)
+        feed(qt, window, [Update(estimates, Chunk(x, t), take_snapshot(monitor, estimates))])
         for frozen in (False, True):
             window.set_frozen(frozen)
             qt.application().processEvents()

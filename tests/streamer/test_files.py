@@ -1105,3 +1105,101 @@ def test_xdf_irregular_stream_rate_from_median_step(tmp_path):
     assert rec.info.channel_names == ["ch0"]
     np.testing.assert_array_equal(rec.samples[:, 0], np.arange(5.0))
 
+
+
+# ------------------------------------------------------------- CSV read in pieces
+
+
+def _pieces_text(rng, n_rows=400):
+    """A CSV exercising every path of the piece reader: comment and empty lines in the
+    body, CRLF line ends, an empty cell (line-by-line parse of its piece only) and a
+    truncated last line."""
+    x = np.round(rng.standard_normal((n_rows, 2)), 6).tolist()
+    lines = ["# exported", "time_s,a,b"]
+    for k, row in enumerate(x):
+        lines.append(f"{k / 100:.2f},{row[0]!r},{row[1]!r}")
+        if k in (50, 51, 300):
+            lines.append("# a note" if k != 51 else "")
+    lines[200] = lines[200].rsplit(",", 1)[0] + ","  # an empty cell: NaN
+    lines.append("4.00,1.5")  # truncated last line
+    return "\r\n".join(lines) + "\r\n"
+
+
+@pytest.mark.parametrize("piece_bytes", [1, 64, 1000, 1 << 22])
+def test_csv_in_pieces_equals_one_piece(tmp_path, rng, monkeypatch, caplog, piece_bytes):
+    # Pieces of 1 byte (one line each), 64 and 1000 bytes split the body everywhere;
+    # 4 MiB holds the file whole, as the reader used to.
+    from streamer.sources import files
+
+    text = _pieces_text(rng)
+    path = tmp_path / "r.csv.gz"
+    with gzip.open(path, "wt", newline="") as f:
+        f.write(text)
+    monkeypatch.setattr(files, "CSV_PIECE_BYTES", 1 << 22)
+    whole = read_recording(path)
+    monkeypatch.setattr(files, "CSV_PIECE_BYTES", piece_bytes)
+    with caplog.at_level(logging.WARNING, logger="ridgewatch"):
+        got = read_recording(path)
+    assert got.samples.shape == (400, 2) and got.samples.flags.c_contiguous
+    np.testing.assert_array_equal(got.samples, whole.samples)
+    np.testing.assert_array_equal(got.timestamps, whole.timestamps)
+    assert np.isnan(got.samples[:, 1]).sum() == 1
+    assert "r.csv.gz: line 406 has 2 of 3 cells (truncated last line); dropped it" in caplog.text
+
+
+@pytest.mark.parametrize("piece_bytes", [64, 1 << 22])
+def test_csv_errors_in_a_later_piece_name_their_line(tmp_path, rng, monkeypatch, piece_bytes):
+    from streamer.sources import files
+
+    monkeypatch.setattr(files, "CSV_PIECE_BYTES", piece_bytes)
+    lines = ["t,a"] + [f"{k / 10:.1f},{k}" for k in range(300)]
+    lines[250] = "24.9,abc"
+    with pytest.raises(InputError, match=r"/r\.csv: line 251, column 2 \('a'\): 'abc' is not "
+                                         r"a number; fix the cell"):
+        read_recording(write_text(tmp_path / "r.csv", "\n".join(lines) + "\n"))
+    lines[250] = "24.9,7"
+    lines[260] = "25.9"
+    with pytest.raises(InputError, match=r"/r\.csv: line 261 has 1 cells but the header has 2"):
+        read_recording(write_text(tmp_path / "r.csv", "\n".join(lines) + "\n"))
+    text = ("\n".join(lines[:260]) + "\n").encode()
+    (tmp_path / "n.csv").write_bytes(text + b"26.0,\x00\x00\n")
+    with pytest.raises(InputError, match=rf"/n\.csv: byte {len(text) + 5} \(line 261\) is a "
+                                         r"NUL byte, which a CSV file never holds"):
+        read_recording(tmp_path / "n.csv")
+
+
+def test_csv_lone_carriage_returns_read_as_line_ends(tmp_path):
+    rec = read_recording(write_text(tmp_path / "m.csv", "time,a\r0,1\r0.1,2\r0.2,3\r"))
+    np.testing.assert_array_equal(rec.samples[:, 0], [1.0, 2.0, 3.0])
+
+
+def test_csv_reader_never_holds_the_text_and_the_table_together(tmp_path, rng, monkeypatch):
+    # tracemalloc sees numpy's buffers and Python's bytes. 150,000 rows of two channels
+    # (no time column, so no time checks allocate beside the table): 2.4 MB of table
+    # from 5.7 MB of text. Reading the text whole, as before, peaks above text + table;
+    # in 256 KiB pieces the peak is the table plus a few pieces' worth of buffers.
+    import tracemalloc
+
+    from streamer.sources import files
+
+    n, piece = 150_000, 1 << 18
+    x = rng.standard_normal((n, 2))
+    values = x.tolist()
+    path = tmp_path / "big.csv"
+    with open(path, "w") as f:
+        f.write("a,b\n")
+        for k in range(0, n, 10_000):
+            f.write("".join(f"{values[j][0]!r},{values[j][1]!r}\n"
+                            for j in range(k, min(n, k + 10_000))))
+    text_bytes, table_bytes = path.stat().st_size, x.nbytes
+    monkeypatch.setattr(files, "CSV_PIECE_BYTES", piece)
+    tracemalloc.start()
+    try:
+        rec = read_recording(path, fs=100.0)
+        peak = tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+    np.testing.assert_array_equal(rec.samples, x)
+    bound = table_bytes + 8 * piece
+    assert bound < text_bytes + table_bytes
+    assert peak < bound, (peak, table_bytes, text_bytes)

@@ -27,6 +27,7 @@ from streamer.channels import Selected
 from streamer.display.buffers import DisplayLayout, UpdateFeed
 from streamer.display.state import DisplayState, marker_label
 from streamer.display.text import TextDisplay, format_marker_line, in_foreground
+from streamer.display.snapshot import DisplaySnapshot, take_snapshot
 from streamer.runner import USER_SOURCE, MarkerQueue, Runner, Update
 from streamer.simulation import pulse_train
 from streamer.sinks.estimate_log import (EstimateLog, parse_marker, read_log,
@@ -411,7 +412,7 @@ def test_lines_typed_into_the_text_display_become_markers(tmp_path, capsys, monk
 def test_text_display_lists_the_newest_markers():
     display = TextDisplay(stream=io.StringIO())
     markers = [Marker(float(k), f"m{k}", "lab") for k in range(5)]
-    display.listener(Update([], None, {}, markers=tuple(markers)))
+    display.listener(Update([], None, None, markers=tuple(markers)))
     display.drain()
     display.draw(force=True)
     out = display.stream.getvalue().splitlines()
@@ -422,7 +423,7 @@ def test_text_display_lists_the_newest_markers():
 
 def test_display_state_keeps_the_newest_markers():
     state = DisplayState()
-    state.apply(Update([], None, {}, markers=tuple(Marker(k, str(k)) for k in range(250))))
+    state.apply(Update([], None, None, markers=tuple(Marker(k, str(k)) for k in range(250))))
     assert state.markers_seen == 250
     assert [m.text for m in state.markers] == [str(k) for k in range(50, 250)]
 
@@ -456,7 +457,8 @@ def _session_updates(duration_s: float = 60.0):
     updates = []
     for a in range(0, n, 25):
         x, ts = samples[a:a + 25], t[a:a + 25]
-        updates.append(Update(monitor.update(x, ts), Chunk(x, ts), monitor.last_blocks))
+        estimates = monitor.update(x, ts)
+        updates.append(Update(estimates, Chunk(x, ts), take_snapshot(monitor, estimates)))
     return monitor, updates, t
 
 
@@ -478,7 +480,7 @@ def test_window_draws_markers_as_labelled_lines_and_saves_a_picture(qt, tmp_path
         feed.listener(u)
         for m in markers:  # each marker arrives with the chunk that reaches it
             if u.chunk.timestamps[0] <= m.time_s <= u.chunk.timestamps[-1]:
-                feed.listener(Update([], None, {}, markers=(m,)))
+                feed.listener(Update([], None, None, markers=(m,)))
     window.refresh()
     window.draw(force=True)
     qt.application().processEvents()
@@ -500,7 +502,8 @@ def test_window_draws_markers_as_labelled_lines_and_saves_a_picture(qt, tmp_path
         assert window.grab().save(str(path))
         # Scrolled out of the 5-minute history: the lines go.
         later = Estimate("hr", "PPG", now + 396.0, now + 400.0, 80.0, 0.9, 0.9)
-        feed.listener(Update([later], Chunk(np.zeros((1, 2)), np.array([now + 400.0])), {}))
+        feed.listener(Update([later], Chunk(np.zeros((1, 2)), np.array([now + 400.0])),
+                                   DisplaySnapshot.empty()))
         window.refresh()
         window.draw(force=True)
         assert len(window.marker_lines.shown) == 0

@@ -36,6 +36,7 @@ record) are twins, tested against each other.
 from __future__ import annotations
 
 import math
+from collections import deque
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -93,12 +94,64 @@ def params_for(quantity: str) -> NowParams:
 
 @dataclass
 class NowState:
-    """Recent (emitted_s, rate) pairs since the last jump, and the last finite rate."""
+    """The recent (emitted_s, rate) pairs since the last jump and their running sums
+    (times relative to ``anchor``, re-anchored as the window moves on), and the last
+    finite rate: each estimate costs a few float operations, not a fit."""
 
-    times: list = field(default_factory=list)
-    rates: list = field(default_factory=list)
+    times: deque = field(default_factory=deque)
+    rates: deque = field(default_factory=deque)
+    sums: list = field(default_factory=lambda: [0.0] * 5)  # t, r, tt, tr, rr
+    anchor: float = math.nan
     last_rate: float = math.nan
     last_time: float = math.nan
+
+    def clear(self) -> None:
+        self.times.clear()
+        self.rates.clear()
+        self.sums = [0.0] * 5
+        self.anchor = math.nan
+
+    def _account(self, t: float, r: float, sign: float) -> None:
+        u = t - self.anchor
+        s = self.sums
+        s[0] += sign * u
+        s[1] += sign * r
+        s[2] += sign * u * u
+        s[3] += sign * u * r
+        s[4] += sign * r * r
+
+    def add(self, t: float, r: float, window_s: float) -> None:
+        if not self.times or t - self.anchor > 4.0 * window_s:
+            self.times.append(t)
+            self.rates.append(r)
+            self._reanchor()
+        else:
+            self.times.append(t)
+            self.rates.append(r)
+            self._account(t, r, 1.0)
+        while self.times and self.times[0] <= t - window_s:
+            self._account(self.times.popleft(), self.rates.popleft(), -1.0)
+
+    def _reanchor(self) -> None:
+        self.anchor = self.times[0]
+        self.sums = [0.0] * 5
+        for t, r in zip(self.times, self.rates):
+            self._account(t, r, 1.0)
+
+    def slope(self, min_points: int) -> tuple[float, float]:
+        """The least-squares slope of the held pairs and its standard error (0, 0 with
+        fewer than ``min_points`` or 3)."""
+        n = len(self.times)
+        if n < max(min_points, 3):
+            return 0.0, 0.0
+        st, sr, stt, s_tr, srr = self.sums
+        sxx = stt - st * st / n
+        if sxx <= 1e-12:
+            return 0.0, 0.0
+        sxy = s_tr - st * sr / n
+        v = sxy / sxx
+        ss = max(srr - sr * sr / n - v * sxy, 0.0)
+        return v, math.sqrt(ss / (n - 2) / sxx)
 
 
 def _slope(times: list, rates: list, min_points: int) -> tuple[float, float]:
@@ -156,14 +209,10 @@ def rate_now_step(state: NowState, params: NowParams, emitted_s: float, rate: fl
     if math.isfinite(state.last_rate):
         step_s = max(emitted_s - state.last_time, 1e-9)
         if abs(rate - state.last_rate) > params.jump_per_s * max(step_s, 0.25):
-            state.times, state.rates = [], []
+            state.clear()
     state.last_rate, state.last_time = rate, emitted_s
-    state.times.append(emitted_s)
-    state.rates.append(rate)
-    while state.times and state.times[0] <= emitted_s - params.window_s:
-        state.times.pop(0)
-        state.rates.pop(0)
-    v, se = _slope(state.times, state.rates, params.min_points)
+    state.add(emitted_s, rate, params.window_s)
+    v, se = state.slope(params.min_points)
     return (rate + _shrunk(v, params, se) * delay_s,
             now_confidence(confidence, se if v != 0.0 else 0.0, delay_s, params))
 

@@ -34,7 +34,8 @@ def test_per_hop_forecast_equals_its_batch_twin(rng, quantity):
                      for e, r, d, c in zip(emitted, rate, delay, confidence)])
     now, conf = now_mod.rate_now_batch(emitted, rate, delay, confidence, params)
     np.testing.assert_allclose(step[:, 0], now, rtol=0, atol=1e-9, equal_nan=True)
-    np.testing.assert_allclose(step[:, 1], conf, rtol=0, atol=1e-12, equal_nan=True)
+    # running sums (per hop) against a direct fit (batch): round-off only
+    np.testing.assert_allclose(step[:, 1], conf, rtol=0, atol=1e-9, equal_nan=True)
     assert np.all(np.isnan(now) == np.isnan(rate))
 
 
@@ -43,7 +44,8 @@ def test_forecast_rules():
     # a clean 2 bpm/s ramp is carried forward by slope x delay
     t = np.arange(20) * 0.25
     now, _ = now_mod.rate_now_batch(t, 80 + 2 * t, np.full(20, 4.0), np.ones(20), params)
-    assert now[-1] == pytest.approx(80 + 2 * t[-1] + 2.0 ** 3 / (4 + 0.04) * 4.0)
+    delta2 = params.shrink_per_s ** 2  # an exact line: its slope's standard error is 0
+    assert now[-1] == pytest.approx(80 + 2 * t[-1] + 2.0 ** 3 / (4 + delta2) * 4.0)
     # a steady rate is left alone; a jump restarts the fit (no slope across it)
     steady, _ = now_mod.rate_now_batch(t, np.full(20, 72.0), np.full(20, 4.0), np.ones(20),
                                        params)

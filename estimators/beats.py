@@ -8,6 +8,27 @@ features (intensity, amplitude, interval; :data:`MODULATIONS` order); premature 
 missed beats drop their interval. :func:`detect_batch` is its twin over a whole record
 (causal, or zero-phase for the offline path).
 
+Fiducial points (where in a beat its time is read)
+--------------------------------------------------
+* **ECG: the R peak**, the largest absolute value of a 0.5-40 Hz band-pass of the ECG
+  within the QRS search window around the energy-envelope peak.
+* **PPG: the steepest point of the systolic upstroke**, the maximum of the first
+  derivative of a 0.5-8 Hz band-pass (a fiducial point that the foot's baseline and
+  the dicrotic wave move less than the foot or the peak do).
+
+Both are refined to sub-sample precision by the vertex of the parabola through the
+three samples around the extreme, and turned into seconds (``Beats.time_s``) by linear
+interpolation of the timestamps. Live filters are causal, so a live beat time lags the
+fiducial point by the filter's group delay near the beat's main frequencies (a few
+milliseconds for ECG: 6.5 ms median on MIT-BIH record 100; tens of milliseconds for PPG);
+this is nearly constant, so intervals keep it out. The offline twin (``zero_phase``) has
+no such lag.
+
+A beat is decided (confirmed) once ``lookahead`` samples after its candidate have been
+seen: ``ready_s`` is the timestamp of that sample and ``delay_s = ready_s - time_s`` the
+confirmation delay (about 0.3 s for ECG: the refractory half-window, plus the envelope's
+and filters' lag).
+
 Index vocabulary: ``k`` raw sample (count from the first sample, 0-based), ``i`` beat.
 """
 
@@ -125,10 +146,12 @@ class Beats:
     """Beats decided in one step, in order.
 
     ``index`` (n,) raw-sample index of the detection peak; ``position`` (n,) beat time
-    in raw samples (sub-sample); ``ready`` (n,) number of raw samples seen when the beat
-    was decided; ``ready_s`` (n,) timestamp of the newest of those; ``features`` (n, 3)
-    in :data:`MODULATIONS` order: intensity, amplitude, interval (seconds; NaN for the
-    first beat, after a gap, and for ectopic or missed beats).
+    in raw samples (sub-sample; the fiducial point, see the module notes); ``ready`` (n,)
+    number of raw samples seen when the beat was decided; ``ready_s`` (n,) timestamp of
+    the newest of those; ``features`` (n, 3) in :data:`MODULATIONS` order: intensity,
+    amplitude, interval (seconds; NaN for the first beat, after a gap, and for ectopic or
+    missed beats: the breathing chain's own screening); ``time_s`` (n,) the beat's time
+    in seconds, ``position`` on the timestamps (linear interpolation).
     """
 
     index: np.ndarray
@@ -136,6 +159,12 @@ class Beats:
     ready: np.ndarray
     ready_s: np.ndarray
     features: np.ndarray
+    time_s: np.ndarray
+
+    @property
+    def delay_s(self) -> np.ndarray:
+        """Confirmation delay of each beat: ``ready_s - time_s`` (seconds)."""
+        return self.ready_s - self.time_s
 
     def __len__(self) -> int:
         return len(self.index)
@@ -143,7 +172,7 @@ class Beats:
     @staticmethod
     def empty() -> "Beats":
         e = np.empty(0)
-        return Beats(np.empty(0, np.int64), e, np.empty(0, np.int64), e, np.empty((0, 3)))
+        return Beats(np.empty(0, np.int64), e, np.empty(0, np.int64), e, np.empty((0, 3)), e)
 
     @staticmethod
     def concat(parts: list["Beats"]) -> "Beats":
@@ -151,7 +180,8 @@ class Beats:
         if not parts:
             return Beats.empty()
         return Beats(*(np.concatenate([getattr(b, name) for b in parts])
-                       for name in ("index", "position", "ready", "ready_s", "features")))
+                       for name in ("index", "position", "ready", "ready_s", "features",
+                                    "time_s")))
 
 
 @dataclass
@@ -162,7 +192,8 @@ class BeatState:
     (``last_band``, for the slope) and the last accepted input; ``count`` raw samples
     seen; ``next_k`` the first candidate not yet decided; the signal history
     (``detect[0]`` is raw sample ``count - len(detect)``); recent beat heights and
-    intervals; the last beat's detection index, position and feature peak.
+    intervals; the last beat's detection index, position and feature peak; ``times``
+    the timestamps of the signal history (aligned with ``detect``).
     """
 
     zi_detect: np.ndarray
@@ -182,6 +213,7 @@ class BeatState:
     last_index: int = -(10 ** 12)
     last_position: float = np.nan
     last_peak: int = -(10 ** 12)
+    times: np.ndarray = field(default_factory=lambda: np.empty(0))
 
 
 def beat_initial_state(params: BeatParams) -> BeatState:
@@ -298,10 +330,23 @@ def _features(state: BeatState, params: BeatParams, k: int, kk: int, detect: np.
     return float(position), (float(intensity), float(amplitude), float(interval))
 
 
+def _time_at(times: np.ndarray, position: float, offset: int) -> float:
+    """Timestamp at sub-sample ``position`` (raw samples) by linear interpolation of
+    ``times`` (which start at raw index ``offset``); extrapolated by the neighbouring
+    step at the ends."""
+    u = position - offset
+    n = len(times)
+    if n == 1:
+        return float(times[0])
+    i = int(min(max(np.floor(u), 0), n - 2))
+    return float(times[i] + (u - i) * (times[i + 1] - times[i]))
+
+
 def _scan(state: BeatState, params: BeatParams, detect: np.ndarray, feature: np.ndarray,
           level: np.ndarray, offset: int, k_stop: int, t: np.ndarray, t_offset: int) -> Beats:
     """Decide the candidates ``state.next_k <= k < k_stop``. Signal arrays start at raw
-    index ``offset``, timestamps ``t`` at raw index ``t_offset``."""
+    index ``offset``, timestamps ``t`` at raw index ``t_offset`` (``t_offset <= offset``:
+    ``t`` covers the signal history)."""
     cands = _candidates(detect, state.next_k - offset, k_stop - offset, params.refractory)
     state.next_k = max(state.next_k, k_stop)
     rows = []
@@ -328,12 +373,13 @@ def _scan(state: BeatState, params: BeatParams, detect: np.ndarray, feature: np.
         position, features = _features(state, params, k, int(kk), detect, feature, level,
                                        offset)
         ready = k + params.lookahead + 1
-        rows.append((k, position, ready, t[ready - 1 - t_offset], features))
+        rows.append((k, position, ready, t[ready - 1 - t_offset], features,
+                     _time_at(t, position, t_offset)))
     if not rows:
         return Beats.empty()
-    k, position, ready, ready_s, features = zip(*rows)
+    k, position, ready, ready_s, features, time_s = zip(*rows)
     return Beats(np.array(k, np.int64), np.array(position), np.array(ready, np.int64),
-                 np.array(ready_s), np.array(features))
+                 np.array(ready_s), np.array(features), np.array(time_s))
 
 
 def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
@@ -365,14 +411,15 @@ def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
     all_detect = np.concatenate((state.detect, detect))
     all_feature = np.concatenate((state.feature, feature))
     all_level = np.concatenate((state.level, level))
-    chunk_start = state.count
+    all_times = np.concatenate((state.times, np.asarray(t, dtype=np.float64)))
     state.count += n
     beats = _scan(state, params, all_detect, all_feature, all_level, offset,
-                  state.count - params.lookahead, t, chunk_start)
+                  state.count - params.lookahead, all_times, offset)
     keep = min(len(all_detect), params.keep)
     state.detect = all_detect[len(all_detect) - keep:].copy()
     state.feature = all_feature[len(all_feature) - keep:].copy()
     state.level = all_level[len(all_level) - keep:].copy()
+    state.times = all_times[len(all_times) - keep:].copy()
     return state, beats
 
 
@@ -402,4 +449,5 @@ def detect_batch(x: np.ndarray, t: np.ndarray, params: BeatParams,
     feature = _zero_phase(params.feature_sos, x)
     level = _zero_phase(params.level_sos, x)
     state.count = len(x)
-    return _scan(state, params, detect, feature, level, 0, len(x) - params.lookahead, t, 0)
+    return _scan(state, params, detect, feature, level, 0, len(x) - params.lookahead,
+                 np.asarray(t, dtype=np.float64), 0)

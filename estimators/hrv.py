@@ -326,7 +326,8 @@ class HrvParams:
     memory). ``min_dfa_intervals`` = 64: four boxes of the largest size (our own
     choice). ``max_corrected_share`` = 5 %: Rogers et al. (Sensors 21, 2021) found 1-3 %
     artifacts bias alpha1 little and 6 % by up to 19 % (from memory). ``min_intervals``
-    = 20 is our own choice (a third of a minute at 20 beats per minute).
+    = 20 is our own choice (a minute of beats at 20 per minute, a third of the window
+    at 60).
     """
 
     hop_s: float = 5.0

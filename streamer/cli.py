@@ -91,7 +91,9 @@ def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> Non
                    help="replace the --log file if it exists and is a ridgewatch estimate log")
     p.add_argument("--no-log", action="store_true", help="write no estimate log")
     p.add_argument("--publish", action="store_true",
-                   help="publish the estimates as an LSL stream")
+                   help="publish the estimates as an LSL stream (and the beats and HRV "
+                        "when --beats or --hrv is given)")
+    _beat_options(p)
     p.add_argument("--headline", choices=("now", "centre"), default="now",
                    help="which heart/breathing rate the window shows in large digits: the "
                         "rate now (at the newest sample, the default) or the window-centre "
@@ -107,6 +109,16 @@ def _common(p: argparse.ArgumentParser, speed_default: str | None = None) -> Non
         p.add_argument("--publish-samples", action="store_true",
                        help="also publish the replayed samples as an LSL stream")
     p.add_argument("-q", "--quiet", action="store_true", help="no progress or summary lines")
+
+
+def _beat_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--beats", metavar="PATH",
+                   help="write every beat of the PPG/ECG channels (time, interval, artifact "
+                        "flag, corrected interval) to this CSV")
+    p.add_argument("--hrv", metavar="PATH",
+                   help="write heart-rate variability every 5 s (RMSSD, SDNN over 60 s, "
+                        "DFA alpha1 over 120 s) to this CSV; research measures, not a "
+                        "diagnosis")
 
 
 def _profile_options(p: argparse.ArgumentParser) -> None:
@@ -204,10 +216,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--log", metavar="PATH", required=True, help="where to write the log")
     p.add_argument("--overwrite", action="store_true",
                    help="replace the --log file if it exists and is a ridgewatch estimate log")
+    _beat_options(p)
     p.add_argument("-q", "--quiet", action="store_true")
 
-    p = sub.add_parser("compare", help="compare an estimate log with another log or a reference")
-    p.add_argument("log", help="estimate log written by replay, live, demo or offline")
+    p = sub.add_parser("compare", help="compare an estimate log with another log or a "
+                                       "reference, or a beats file with reference beats")
+    p.add_argument("log", help="estimate log written by replay, live, demo or offline, or a "
+                               "beats file (--beats)")
     p.add_argument("--against", required=True, metavar="OTHER",
                    help="another estimate log, beat/breath times (WFDB annotation or CSV "
                         "of times) or a CSV of time,rate")
@@ -436,6 +451,8 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
         runner = Runner(source, selected, profile, duration_s=args.duration)
     except ParameterError as exc:
         raise _engine_error(source.info.name, exc) from None
+    _check_beat_options(args, source.info.name, source.info.fs, selected,
+                        None if args.no_log else args.log)
     log_path = None
     if not args.no_log:
         if args.log:
@@ -447,6 +464,20 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
         log_path = runner.log.path
     if args.publish or getattr(args, "publish_samples", False):
         _quiet_liblsl()
+    beat_files = _open_beat_files(args, source.info.name, source.info.fs, selected, mode,
+                                  mapping, config, inputs, log_path)
+    if beat_files is not None:
+        from streamer.beat_session import BeatSession
+        channels, beats_out, hrv_out = beat_files
+        beat_outlet = None
+        if args.publish:
+            from streamer.sinks.beats_outlet import BeatOutlet
+            beat_outlet = BeatOutlet([c.name for c in channels],
+                                     name=f"ridgewatch {source.info.name}",
+                                     input_id=f"{input_id}|{profile.name}",
+                                     use_stream_time=(mode == "live"))
+        runner.beat_session = BeatSession(selected, source.info.fs, channels, beats_out,
+                                          hrv_out, beat_outlet)
     if args.publish:
         from streamer.sinks.outlet import EstimateOutlet, hops_by_stream
         runner.outlet = EstimateOutlet(runner.monitor.streams, hops_by_stream(runner.monitor),
@@ -475,8 +506,11 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
             print(f"ridgewatch: warning: {warning}", file=sys.stderr)
         print("channels: " + ", ".join(f"{s.name}={s.kind}" for s in selected)
               + f"; {_profile_words(args, profile)}" + (f"; log {log_path}" if log_path else "")
+              + _beat_words(beat_files)
               + ("; publishing LSL streams " + ", ".join(
-                  f"'{n}'" for n in [*runner.outlet.names.values(), runner.outlet.marker_name])
+                  f"'{n}'" for n in [*runner.outlet.names.values(), runner.outlet.marker_name,
+                                     *(runner.beat_session.outlet.names if runner.beat_session
+                                       and runner.beat_session.outlet else [])])
                   if runner.outlet else ""),
               file=sys.stderr)
     try:
@@ -495,6 +529,58 @@ def _run(args, source, mode: str, input_id: str, inputs=()) -> int:
               f"{stats.estimates} estimates, engine at {speed:.0f}x real time"
               + (f"; log complete: {log_path}" if log_path else ""), file=sys.stderr)
     return 0
+
+
+def _check_beat_options(args, stream: str, fs: float, selected, log_path):
+    """The beat channels for ``--beats``/``--hrv`` (None when neither is given), and
+    one path per output; called before any file is claimed."""
+    from streamer.beat_session import beat_channels
+
+    beats, hrv = getattr(args, "beats", None), getattr(args, "hrv", None)
+    if not beats and not hrv:
+        return None
+    options = " and ".join(o for o, v in (("--beats", beats), ("--hrv", hrv)) if v)
+    channels = beat_channels(selected, fs, stream, options)
+    named = [(o, Path(v)) for o, v in (("--log", log_path), ("--beats", beats),
+                                       ("--hrv", hrv)) if v]
+    for k, (option, path) in enumerate(named):
+        for other, other_path in named[:k]:
+            if path.resolve() == other_path.resolve():
+                raise InputError(f"{option} {path} is also the {other} file; give each "
+                                 "output its own path")
+    return channels
+
+
+def _open_beat_files(args, stream: str, fs: float, selected, mode: str, mapping: dict,
+                     config: dict, inputs, log_path):
+    """Claim the ``--beats`` and ``--hrv`` files (before any work, like the log);
+    returns (beat channels, beats file, HRV file) or None when neither is asked for."""
+    from streamer.sinks.beats_log import beats_file, hrv_file
+
+    beats, hrv = getattr(args, "beats", None), getattr(args, "hrv", None)
+    if not beats and not hrv:
+        return None
+    channels = _check_beat_options(args, stream, fs, selected, log_path)
+    beat_mapping = {c.name: c.kind for c in channels}
+    opened = []
+    try:
+        for path, make in ((beats, beats_file), (hrv, hrv_file)):
+            opened.append(None if not path else make(
+                path, mode, stream, beat_mapping, config, if_exists=_if_exists(args),
+                inputs=inputs))
+    except BaseException:
+        for f in opened:
+            if f is not None:
+                f.close()
+        raise
+    return channels, opened[0], opened[1]
+
+
+def _beat_words(beat_files) -> str:
+    if beat_files is None:
+        return ""
+    return "".join(f"; {what} {f.path}" for what, f in (
+        ("beats", beat_files[1]), ("HRV", beat_files[2])) if f is not None)
 
 
 def _full_chunk(update):
@@ -674,11 +760,19 @@ def cmd_offline(args) -> int:
         RateMonitor(paths, recording.info.fs, profile)
     except ParameterError as exc:
         raise _engine_error(recording.info.name, exc) from None
+    _check_beat_options(args, recording.info.name, recording.info.fs, selected, args.log)
     # Claimed before the work, so a refused --log costs nothing and no other run can
     # take the path meanwhile.
     out = EstimateLog(args.log, "offline", recording.info.name,
                       {s.name: s.kind for s in selected}, config, if_exists=_if_exists(args),
                       inputs=recording_files(args.file))
+    try:
+        beat_files = _open_beat_files(args, recording.info.name, recording.info.fs, selected,
+                                      "offline", {}, config, recording_files(args.file),
+                                      args.log)
+    except BaseException:
+        out.close()
+        raise
     with out:
         warning = missing_reference_warning(selected, profile)
         if warning:
@@ -691,9 +785,22 @@ def cmd_offline(args) -> int:
         elapsed = time.perf_counter() - start
         per_row = 1e3 * elapsed / max(1, len(estimates))
         write_offline_rows(out, estimates, recording.markers, per_row)
+    beat_words = ""
+    if beat_files is not None:
+        from streamer.beat_session import write_offline
+        channels, beats_out, hrv_out = beat_files
+        try:
+            n_beats, n_hrv = write_offline(samples, recording.timestamps, recording.info.fs,
+                                           selected, channels, beats_out, hrv_out)
+        finally:
+            for f in (beats_out, hrv_out):
+                if f is not None:
+                    f.close()
+        beat_words = "".join(f"; {what} {f.path} ({n} rows)" for what, f, n in (
+            ("beats", beats_out, n_beats), ("HRV", hrv_out, n_hrv)) if f is not None)
     if not args.quiet:
         print(f"offline: {len(estimates)} estimates over {recording.duration_s:.1f} s "
-              f"in {elapsed:.1f} s; log {args.log}", file=sys.stderr)
+              f"in {elapsed:.1f} s; log {args.log}{beat_words}", file=sys.stderr)
     _print_log_phases(args.log, recording.markers)
     return 0
 
@@ -724,9 +831,35 @@ def _log_windows(table) -> dict | None:
     return {q: float(profile[q]["window_s"]) for q in ("hr", "rr") if q in profile}
 
 
+def cmd_compare_beats(args) -> int:
+    """``compare BEATS.csv --against REF``: beat-by-beat scores and HRV agreement."""
+    from streamer.beat_compare import compare_beats, format_result
+    from streamer.compare import EventTimes, load_other
+    from streamer.sinks.beats_log import read_beats
+
+    table = read_beats(args.log)
+    other = load_other(args.against, fs=args.against_fs, column=args.against_column)
+    if not isinstance(other, EventTimes):
+        raise InputError(f"{args.against} is {'an' if other.kind[0] in 'aeiou' else 'a'} "
+                         f"{other.kind}; a beats file is compared with reference beat times "
+                         "(WFDB annotations or a CSV of times)")
+    if args.source is not None and args.source not in table.sources():
+        raise InputError(f"{args.log} has no beats of source '{args.source}'; it has "
+                         f"{', '.join(table.sources()) or 'no beats'}")
+    if len(table) == 0:
+        raise InputError(f"{args.log} holds no beats")
+    for result in compare_beats(table, other.times_s, args.source):
+        print(format_result(result, Path(args.against).name))
+    return 0
+
+
 def cmd_compare(args) -> int:
     from streamer.compare import add_overlay, load_other, pair_up, summarize
+    from streamer.sinks.beats_log import is_beats_file
     from streamer.sinks.estimate_log import read_log
+
+    if is_beats_file(args.log):
+        return cmd_compare_beats(args)
 
     from streamer.compare import phases_of
     from streamer.report import format_phase_table, steady_note

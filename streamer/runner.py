@@ -118,6 +118,8 @@ class Update:
     event: SourceEvent | None = None
     markers: tuple = ()
     """Markers just written to the log (in stream-time order)."""
+    hrv: tuple = ()
+    """New ``(source, HrvRow)`` pairs of the beat session (``--beats``/``--hrv``)."""
 
 
 USER_SOURCE = "user"
@@ -209,6 +211,8 @@ class Runner:
         self._user_markers: queue.SimpleQueue = queue.SimpleQueue()
         self._user_count = 0
         self._source_lost = False
+        self.beat_session = None
+        """A :class:`streamer.beat_session.BeatSession` (beats and HRV) or None."""
 
     def add_user_marker(self, text: str = "") -> None:
         """Add a marker of the user's own (source :data:`USER_SOURCE`). Safe from any
@@ -281,6 +285,8 @@ class Runner:
         start = time.perf_counter()
         estimates: list[Estimate] = self.monitor.update(samples, chunk.timestamps)
         elapsed = time.perf_counter() - start
+        hrv = () if self.beat_session is None else tuple(
+            self.beat_session.update(samples, chunk.timestamps))
         st = self.stats
         st.chunks += 1
         st.samples += len(chunk)
@@ -305,7 +311,8 @@ class Runner:
         st.estimates += len(estimates)
         if self.listeners:
             view = Chunk(samples, chunk.timestamps)
-            self._notify(Update(estimates, view, take_snapshot(self.monitor, estimates)))
+            self._notify(Update(estimates, view, take_snapshot(self.monitor, estimates),
+                                hrv=hrv))
 
     def _write_estimates(self, estimates: list, compute_ms: float) -> None:
         start = 0
@@ -367,6 +374,8 @@ class Runner:
             # starts afresh, as the LSL source asks of its consumers (not when a
             # session's motion-reference stream comes back: the time axis ran on).
             self.monitor.reset()
+            if self.beat_session is not None:
+                self.beat_session.restart()
         self._notify(Update([], None, None, event))
 
     def run(self) -> RunStats:
@@ -414,7 +423,7 @@ class Runner:
             self._write_markers(self.markers.due(math.inf))
         except Exception as exc:
             log.warning("writing the last markers failed: %s", exc)
-        for sink in (self.log, self.outlet):
+        for sink in (self.log, self.outlet, self.beat_session):
             if sink is not None:
                 try:
                     sink.close()

@@ -437,6 +437,10 @@ class MonitorWindow(QtWidgets.QMainWindow):
         body.addWidget(scroll, 0)
         plots = QtWidgets.QVBoxLayout()
         body.addLayout(plots, 1)
+        self._plots_layout = plots
+        self.extra_views: list = []
+        """Optional views fed every update (``apply``) and drawn with the slow plots
+        (``draw(now_s)``): the HRV panel (:meth:`add_hrv`)."""
         # Every trace row keeps a readable height: more channels, more of the column.
         n = len(layout.channels)
         self.compact_traces = n > COMPACT_TRACES
@@ -494,8 +498,18 @@ class MonitorWindow(QtWidgets.QMainWindow):
         row.addWidget(self.freeze_button)
         return row
 
+    def add_hrv(self, sources) -> None:
+        """An HRV card under the rate cards and a DFA alpha1 trend under the plots
+        (:mod:`streamer.display.hrv_view`), for a run with ``--beats``/``--hrv``."""
+        from streamer.display.hrv_view import make_hrv_panel
+        panel = make_hrv_panel(sources, self.colours, CARD_WIDTH)
+        self._cards_column.insertWidget(len(self.cards), panel.card)
+        self._plots_layout.addWidget(panel.trend, 3)
+        self.extra_views.append(panel)
+
     def _build_cards(self):
         column = QtWidgets.QVBoxLayout()
+        self._cards_column = column
         column.setContentsMargins(0, 0, 0, 0)
         column.setSpacing(8)
         self.cards: dict = {}
@@ -744,6 +758,8 @@ class MonitorWindow(QtWidgets.QMainWindow):
         """Timer slot: drain the feed and redraw what changed."""
         for update in self.feed.drain():
             self.buffers.apply(update)
+            for view in self.extra_views:
+                view.apply(update)
         self.buffers.state.dropped = self.feed.dropped
         if self._draw_failed:
             return
@@ -811,6 +827,8 @@ class MonitorWindow(QtWidgets.QMainWindow):
                 line.setData(rel[keep], view.rate_per_min[keep])
         self.marker_lines.take(state.markers, state.markers_seen)
         self.marker_lines.draw(now)
+        for view in self.extra_views:
+            view.draw(now)
         for quantity, plot in self.rate_plots.items():
             shown = [b.rates[k].view().rate_per_min for k in self.rate_curves
                      if k[0] == quantity]
@@ -1076,6 +1094,8 @@ def run_with_window(runner, profile=None, duration_s: float | None = None,
     window = MonitorWindow(layout, feed, stats=getattr(runner, "stats", None), title=title,
                            headline=headline)
     window.marker_sink = getattr(runner, "add_user_marker", None)
+    if getattr(runner, "beat_session", None) is not None:
+        window.add_hrv(runner.beat_session.sources)
     if keep_open is None:
         keep_open = duration_s is None and app.platformName() != "offscreen"
 

@@ -17,6 +17,7 @@ import threading
 import time
 
 from estimators.display_rule import GREY, WITHHOLD
+from streamer.display.hrv_view import format_hrv_line
 from streamer.display.state import DisplayState, SessionClock, marker_label, quality_word, unit_of
 
 CAUTION = "research tool, not a medical device"
@@ -123,6 +124,7 @@ class TextDisplay:
         self.refresh_s = refresh_s
         self.queue: queue.Queue = queue.Queue(maxsize=maxsize)
         self.state = DisplayState()
+        self.hrv_latest: dict = {}  # source -> newest HrvRow (--beats/--hrv runs)
         self._lines_drawn = 0
         self._last_draw = 0.0
         self._tty = hasattr(self.stream, "isatty") and self.stream.isatty()
@@ -182,6 +184,8 @@ class TextDisplay:
             except queue.Empty:
                 return
             self.state.apply(update)
+            for source, row in getattr(update, "hrv", ()):
+                self.hrv_latest[source] = row
 
     def header(self) -> str:
         """The first line: caution, stream status, session and wall-clock time, and the
@@ -201,6 +205,7 @@ class TextDisplay:
         self._last_draw = now
         lines = [self.header()]
         lines += [format_line(k, e) for k, e in sorted(self.state.latest.items())]
+        lines += [format_hrv_line(s, row) for s, row in sorted(self.hrv_latest.items())]
         lines += [format_marker_line(m) for m in list(self.state.markers)[-MARKERS_LISTED:]]
         if self._tty and self._lines_drawn:
             self.stream.write(f"\x1b[{self._lines_drawn}F\x1b[J")

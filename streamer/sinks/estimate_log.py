@@ -328,10 +328,24 @@ except ImportError:  # pragma: no cover - not POSIX: exclusive creation still ho
     fcntl = None
 
 
-def _claim(log: EstimateLog, if_exists: str, inputs: list[Path]) -> int:
+@dataclass(frozen=True)
+class FileKind:
+    """What a file written like the estimate log is called in messages: its ``noun``,
+    the ``option`` that names it and the first line (``magic``) by which an existing
+    one is recognised (other writers: :mod:`streamer.sinks.beats_log`)."""
+
+    noun: str
+    option: str
+    magic: str
+
+
+ESTIMATE_LOG = FileKind("estimate log", "--log", MAGIC)
+
+
+def _claim(log, if_exists: str, inputs: list[Path], kind: FileKind = ESTIMATE_LOG) -> int:
     """Open ``log.path`` for writing as :class:`EstimateLog` describes; returns the
     file descriptor (locked, empty, positioned at 0). May change ``log.path`` when
-    ``if_exists == "number"``."""
+    ``if_exists == "number"``. ``kind`` names the file in messages."""
     base = log.path
     for n in range(1, 1000):
         if n > 1:
@@ -341,60 +355,63 @@ def _claim(log: EstimateLog, if_exists: str, inputs: list[Path]) -> int:
         except FileExistsError:
             if if_exists == "number":
                 continue
-            return _open_existing(log.path, if_exists, inputs)
+            return _open_existing(log.path, if_exists, inputs, kind)
         except OSError as exc:
-            raise InputError(f"cannot write the estimate log {log.path}: {exc.strerror}") from None
+            raise InputError(f"cannot write the {kind.noun} {log.path}: {exc.strerror}") from None
         try:
-            _lock(fd, log.path)
+            _lock(fd, log.path, kind)
         except BaseException:
             os.close(fd)
             raise
         return fd
-    raise InputError(f"cannot write the estimate log {base}: {base.stem}-2 to "
+    raise InputError(f"cannot write the {kind.noun} {base}: {base.stem}-2 to "
                      f"{base.stem}-999 exist too; clear the folder {base.parent}")
 
 
-def _open_existing(path: Path, if_exists: str, inputs: list[Path]) -> int:
+def _open_existing(path: Path, if_exists: str, inputs: list[Path],
+                   kind: FileKind = ESTIMATE_LOG) -> int:
     try:
         info = os.stat(path)
     except OSError as exc:  # e.g. a symbolic link to nowhere
-        raise InputError(f"cannot write the estimate log {path}: {exc.strerror}") from None
+        raise InputError(f"cannot write the {kind.noun} {path}: {exc.strerror}") from None
     if stat.S_ISDIR(info.st_mode):
-        raise InputError(f"cannot write the estimate log {path}: it is a folder; give a file "
+        raise InputError(f"cannot write the {kind.noun} {path}: it is a folder; give a file "
                          "name")
-    _refuse_inputs(path, info, inputs)
+    _refuse_inputs(path, info, inputs, kind)
     if not stat.S_ISREG(info.st_mode):  # a device or a pipe: nothing in it to destroy
         try:
             return os.open(path, os.O_WRONLY)
         except OSError as exc:
-            raise InputError(f"cannot write the estimate log {path}: {exc.strerror}") from None
+            raise InputError(f"cannot write the {kind.noun} {path}: {exc.strerror}") from None
     if if_exists != "overwrite":
         raise InputError(
-            f"the estimate log {path} already exists; give another --log path, or add "
-            "--overwrite to replace an earlier ridgewatch log")
+            f"the {kind.noun} {path} already exists; give another {kind.option} path, or "
+            f"add --overwrite to replace an earlier ridgewatch {_short(kind)}")
     try:
         fd = os.open(path, os.O_RDWR)
     except OSError as exc:
-        raise InputError(f"cannot write the estimate log {path}: {exc.strerror}") from None
+        raise InputError(f"cannot write the {kind.noun} {path}: {exc.strerror}") from None
     try:
-        _refuse_inputs(path, os.fstat(fd), inputs)  # the file opened, not the name looked up
-        _lock(fd, path)
-        first = os.pread(fd, len(MAGIC) + 1, 0)
-        if first and first.rstrip(b"\r\n") != MAGIC.encode():
+        _refuse_inputs(path, os.fstat(fd), inputs, kind)  # the file opened, not the name looked up
+        _lock(fd, path, kind)
+        first = os.pread(fd, len(kind.magic) + 1, 0)
+        if first and first.rstrip(b"\r\n") != kind.magic.encode():
             raise InputError(
-                f"{path} is not a ridgewatch estimate log (its first line is not "
-                f"'{MAGIC}'); --overwrite only replaces logs: give another --log path")
+                f"{path} is not a ridgewatch {kind.noun} (its first line is not "
+                f"'{kind.magic}'); --overwrite only replaces {_short(kind)}s: give another "
+                f"{kind.option} path")
         os.ftruncate(fd, 0)
     except OSError as exc:
         os.close(fd)
-        raise InputError(f"cannot write the estimate log {path}: {exc.strerror}") from None
+        raise InputError(f"cannot write the {kind.noun} {path}: {exc.strerror}") from None
     except BaseException:
         os.close(fd)
         raise
     return fd
 
 
-def _refuse_inputs(path: Path, info: os.stat_result, inputs: list[Path]) -> None:
+def _refuse_inputs(path: Path, info: os.stat_result, inputs: list[Path],
+                   kind: FileKind = ESTIMATE_LOG) -> None:
     for source in inputs:
         try:
             other = os.stat(source)
@@ -402,21 +419,27 @@ def _refuse_inputs(path: Path, info: os.stat_result, inputs: list[Path]) -> None
             continue
         if (other.st_dev, other.st_ino) == (info.st_dev, info.st_ino):
             raise InputError(
-                f"--log {path} is the input file {source}; the log would destroy it: give "
-                "another --log path")
+                f"{kind.option} {path} is the input file {source}; the {_short(kind)} would "
+                f"destroy it: give another {kind.option} path")
 
 
-def _lock(fd: int, path: Path) -> None:
+def _lock(fd: int, path: Path, kind: FileKind = ESTIMATE_LOG) -> None:
     if fcntl is None:
         return
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
     except BlockingIOError:
         raise InputError(
-            f"the estimate log {path} is being written by another ridgewatch run; give "
-            "another --log path") from None
+            f"the {kind.noun} {path} is being written by another ridgewatch run; give "
+            f"another {kind.option} path") from None
     except OSError:
         pass  # a file system without locks: exclusive creation still holds
+
+
+def _short(kind: FileKind) -> str:
+    """The word for the file in the middle of a sentence: 'log' for the estimate log
+    (as the messages always said), else the noun."""
+    return "log" if kind is ESTIMATE_LOG else kind.noun
 
 
 @dataclass

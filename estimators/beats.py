@@ -1,0 +1,455 @@
+"""Beat detection in a pulse (PPG or ECG): causal, with carried state, and its batch
+twin.
+
+:func:`detect_step` finds beats causally (:func:`beat_params`): a candidate is the
+largest value of the detection signal within +-0.25 s, accepted when it reaches a
+fraction of the recent beats' heights. Each beat gives a sub-sample position and three
+features (intensity, amplitude, interval; :data:`MODULATIONS` order); premature or
+missed beats drop their interval. :func:`detect_batch` is its twin over a whole record
+(causal, or zero-phase for the offline path).
+
+Fiducial points (where in a beat its time is read)
+--------------------------------------------------
+* **ECG: the R peak**, the largest absolute value of a 0.5-40 Hz band-pass of the ECG
+  within the QRS search window around the energy-envelope peak.
+* **PPG: the steepest point of the systolic upstroke**, the maximum of the first
+  derivative of a 0.5-8 Hz band-pass (a fiducial point that the foot's baseline and
+  the dicrotic wave move less than the foot or the peak do).
+
+Both are refined to sub-sample precision by the vertex of the parabola through the
+three samples around the extreme, and turned into seconds (``Beats.time_s``) by linear
+interpolation of the timestamps. Live filters are causal, so a live beat time lags the
+fiducial point by the filter's group delay near the beat's main frequencies (a few
+milliseconds for ECG: 6.5 ms median on MIT-BIH record 100; tens of milliseconds for PPG);
+this is nearly constant, so intervals keep it out. The offline twin (``zero_phase``) has
+no such lag.
+
+A beat is decided (confirmed) once ``lookahead`` samples after its candidate have been
+seen: ``ready_s`` is the timestamp of that sample and ``delay_s = ready_s - time_s`` the
+confirmation delay (about 0.3 s for ECG: the refractory half-window, plus the envelope's
+and filters' lag).
+
+Index vocabulary: ``k`` raw sample (count from the first sample, 0-based), ``i`` beat.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import signal
+
+from estimators.errors import ParameterError
+from estimators.preprocess import Limiter, causal_sos, limit_batch, limit_step
+
+MODULATIONS = ("intensity", "amplitude", "frequency")
+"""Names of the three respiratory modulations, in the column order used throughout."""
+
+PULSE_KINDS = ("ppg", "ecg")
+
+MIN_FS_HZ = 40.0
+"""Lowest raw sampling rate at which beats are located well enough for the
+modulations (our own choice); below it a pulse channel gives no breathing rate."""
+
+BEAT_LIMIT_WINDOW_S = 8.0
+"""The beat detector rejects samples outside the pulse's running range learnt over
+this long (:class:`estimators.preprocess.Limiter`), as the heart-rate path does over its
+8 s window: at least four beats at the slowest rate followed (30 per minute)."""
+
+
+# --------------------------------------------------------------------------- beats
+
+
+@dataclass(frozen=True)
+class BeatParams:
+    """Beat detection settings for one signal kind at raw rate ``fs`` (from
+    :func:`beat_params`); lengths are in raw samples.
+
+    ``detect_sos`` band-passes the signal whose slope is the detection signal (PPG:
+    the slope itself; ECG: the moving average of the squared slope over ``integrate``
+    samples). ``feature_sos`` shapes the signal the beat's amplitude (and for PPG its
+    intensity) is read from, ``level_sos`` the ECG level whose beat mean is the ECG
+    intensity. A candidate is the largest detection value within ``+-refractory``;
+    ``search`` bounds where the systolic peak (PPG, after the upstroke) or the R wave
+    (ECG, around the envelope peak) is looked for; ``qrs_half`` is the half-width of
+    the QRS window; beats more than ``max_gap`` apart leave a gap.
+    """
+
+    kind: str
+    fs: float
+    detect_sos: np.ndarray
+    feature_sos: np.ndarray
+    level_sos: np.ndarray
+    integrate: int
+    refractory: int
+    search: int
+    qrs_half: int
+    max_gap: int
+    threshold_fraction: float
+    history: int
+    interval_tolerance: float
+    limiter: Limiter
+
+    @property
+    def lookahead(self) -> int:
+        """Raw samples after a candidate needed before it is decided."""
+        return self.refractory
+
+    @property
+    def keep(self) -> int:
+        """Raw samples of signal history every step keeps."""
+        return self.max_gap + 2 * self.refractory + self.integrate + self.search + 4
+
+
+def beat_params(kind: str, fs: float) -> BeatParams:
+    """Beat detection settings for ``kind`` (``"ppg"`` or ``"ecg"``) at ``fs`` Hz.
+
+    Notes
+    -----
+    PPG: beats are the steepest points of the upstrokes of a 0.5-8 Hz band-pass (the
+    pulse and its first harmonics, common practice); the systolic upstroke is far
+    steeper than a dicrotic wave, so a candidate must reach half the upper quartile of
+    the slopes of the last 8 beats. Features come from an 8 Hz low-pass that keeps the
+    baseline. ECG: beats are peaks of the moving average (0.1 s) of the squared slope of
+    a 5-25 Hz band-pass, in the manner of Pan & Tompkins ("A real-time QRS detection
+    algorithm", IEEE TBME 32(3), 1985; cited from memory), reaching 30 % of the recent
+    upper quartile; the R wave and the QRS amplitude come from a 0.5-40 Hz band-pass.
+    A candidate is the largest value within +-0.25 s (beat rates up to 240 per minute);
+    beats more than 2 s apart (below 30 per minute) leave a gap, after which the
+    detection bar halves every 2 s until a beat is found; an interval more than 30 %
+    away from the median of the last 8 is an ectopic or missed beat and is dropped.
+    These numbers are our own choices.
+    """
+    if kind not in PULSE_KINDS:
+        raise ParameterError(f"kind={kind!r} must be one of {', '.join(PULSE_KINDS)}")
+    if not (np.isfinite(fs) and fs >= MIN_FS_HZ):
+        raise ParameterError(f"fs={fs} must be at least {MIN_FS_HZ:g} Hz for beat detection")
+    nyq = fs / 2.0
+
+    def band(lo, hi, order=2):
+        hi = min(hi, 0.9 * nyq)
+        if lo <= 0:
+            return signal.butter(order, hi, btype="lowpass", fs=fs, output="sos")
+        return signal.butter(order, [lo, hi], btype="bandpass", fs=fs, output="sos")
+
+    n = lambda seconds: int(round(seconds * fs))  # noqa: E731
+    limiter = Limiter.for_window(BEAT_LIMIT_WINDOW_S, fs)
+    if kind == "ppg":
+        return BeatParams(kind, float(fs), band(0.5, 8.0), band(0.0, 8.0), band(0.0, 8.0),
+                          0, n(0.25), n(0.25), 0, n(2.0), 0.5, 8, 0.3, limiter)
+    return BeatParams(kind, float(fs), band(5.0, 25.0), band(0.5, 40.0), band(0.0, 8.0),
+                      n(0.1), n(0.25), n(0.12), n(0.064), n(2.0), 0.3, 8, 0.3, limiter)
+
+
+@dataclass(frozen=True)
+class Beats:
+    """Beats decided in one step, in order.
+
+    ``index`` (n,) raw-sample index of the detection peak; ``position`` (n,) beat time
+    in raw samples (sub-sample; the fiducial point, see the module notes); ``ready`` (n,)
+    number of raw samples seen when the beat was decided; ``ready_s`` (n,) timestamp of
+    the newest of those; ``features`` (n, 3) in :data:`MODULATIONS` order: intensity,
+    amplitude, interval (seconds; NaN for the first beat, after a gap, and for ectopic or
+    missed beats: the breathing chain's own screening); ``time_s`` (n,) the beat's time
+    in seconds, ``position`` on the timestamps (linear interpolation).
+    """
+
+    index: np.ndarray
+    position: np.ndarray
+    ready: np.ndarray
+    ready_s: np.ndarray
+    features: np.ndarray
+    time_s: np.ndarray
+
+    @property
+    def delay_s(self) -> np.ndarray:
+        """Confirmation delay of each beat: ``ready_s - time_s`` (seconds)."""
+        return self.ready_s - self.time_s
+
+    def __len__(self) -> int:
+        return len(self.index)
+
+    @staticmethod
+    def empty() -> "Beats":
+        e = np.empty(0)
+        return Beats(np.empty(0, np.int64), e, np.empty(0, np.int64), e, np.empty((0, 3)), e)
+
+    @staticmethod
+    def concat(parts: list["Beats"]) -> "Beats":
+        parts = [b for b in parts if len(b)]
+        if not parts:
+            return Beats.empty()
+        return Beats(*(np.concatenate([getattr(b, name) for b in parts])
+                       for name in ("index", "position", "ready", "ready_s", "features",
+                                    "time_s")))
+
+
+@dataclass
+class BeatState:
+    """Everything :func:`detect_step` carries between chunks.
+
+    Filter states and the limiter's; the newest raw sample before the chunk
+    (``last_band``, for the slope) and the last accepted input; ``count`` raw samples
+    seen; ``next_k`` the first candidate not yet decided; the signal history
+    (``detect[0]`` is raw sample ``count - len(detect)``); recent beat heights and
+    intervals; the last beat's detection index, position and feature peak; ``times``
+    the timestamps of the signal history (aligned with ``detect``).
+    """
+
+    zi_detect: np.ndarray
+    zi_integrate: np.ndarray
+    zi_feature: np.ndarray
+    zi_level: np.ndarray
+    limiter: np.ndarray
+    last_band: float = 0.0
+    last_accepted: float = 0.0
+    count: int = 0
+    next_k: int = 0
+    detect: np.ndarray = field(default_factory=lambda: np.empty(0))
+    feature: np.ndarray = field(default_factory=lambda: np.empty(0))
+    level: np.ndarray = field(default_factory=lambda: np.empty(0))
+    heights: list = field(default_factory=list)
+    intervals: list = field(default_factory=list)
+    last_index: int = -(10 ** 12)
+    last_position: float = np.nan
+    last_peak: int = -(10 ** 12)
+    times: np.ndarray = field(default_factory=lambda: np.empty(0))
+
+
+def beat_initial_state(params: BeatParams) -> BeatState:
+    """Filters at rest, nothing seen."""
+    zeros = lambda sos: np.zeros((sos.shape[0], 2))  # noqa: E731
+    return BeatState(zeros(params.detect_sos), np.zeros(max(params.integrate - 1, 0)),
+                     zeros(params.feature_sos), zeros(params.level_sos),
+                     params.limiter.initial_state())
+
+
+def _hold_rejected(state: BeatState, x: np.ndarray, accepted: np.ndarray) -> np.ndarray:
+    """Rejected samples (non-finite, or outside the running range: spikes) hold the last
+    accepted value: a flat stretch has no beats, and the filters stay bounded."""
+    if accepted.all():
+        if len(x):
+            state.last_accepted = float(x[-1])
+        return x
+    idx = np.where(accepted, np.arange(len(x)), -1)
+    np.maximum.accumulate(idx, out=idx)
+    filled = np.where(idx >= 0, x[np.maximum(idx, 0)], state.last_accepted)
+    if accepted.any():
+        state.last_accepted = float(x[accepted][-1])
+    return filled
+
+
+def _detection_signal(params: BeatParams, state: BeatState, x: np.ndarray) -> np.ndarray:
+    band, state.zi_detect = causal_sos(params.detect_sos, x, state.zi_detect)
+    prev = np.concatenate(([state.last_band], band[:-1]))
+    state.last_band = float(band[-1])
+    slope = (band - prev) * params.fs
+    if params.integrate == 0:
+        return slope
+    taps = np.full(params.integrate, 1.0 / params.integrate)
+    energy, state.zi_integrate = signal.lfilter(taps, [1.0], slope ** 2,
+                                                zi=state.zi_integrate)
+    return energy
+
+
+def _parabolic(y: np.ndarray, i: int) -> float:
+    """Sub-sample offset in [-0.5, 0.5] of the peak at ``y[i]`` from the parabola
+    through ``y[i-1], y[i], y[i+1]``."""
+    if i <= 0 or i >= len(y) - 1:
+        return 0.0
+    a, b, c = y[i - 1], y[i], y[i + 1]
+    den = a - 2.0 * b + c
+    if not den < 0:
+        return 0.0
+    return float(np.clip(0.5 * (a - c) / den, -0.5, 0.5))
+
+
+def _candidates(detect: np.ndarray, lo: int, hi: int, r: int) -> np.ndarray:
+    """Indices ``lo <= u < hi`` where ``detect[u]`` is larger than the ``r`` values before
+    it and not smaller than the ``r`` after it (values outside the array count as -inf)."""
+    if hi <= lo:
+        return np.empty(0, np.int64)
+    base = max(lo - r, 0)
+    seg = detect[base:hi + r]
+    padded = np.concatenate((np.full(r, -np.inf), seg, np.full(r + 1, -np.inf)))
+    windows = np.lib.stride_tricks.sliding_window_view(padded, r)
+    u = np.arange(lo - base, hi - base)
+    # Slices of the window view, not fancy indexing: reduced in place, never copied
+    # into a (len(u), r) array (0.4 GB each for 4 h of PPG at 125 Hz).
+    before = windows[lo - base:hi - base].max(axis=1)  # seg[u - r : u]
+    after = windows[lo - base + r + 1:hi - base + r + 1].max(axis=1)  # seg[u + 1 : u + r + 1]
+    keep = (seg[u] > before) & (seg[u] >= after)
+    return u[keep] + base
+
+
+def _features(state: BeatState, params: BeatParams, k: int, kk: int, detect: np.ndarray,
+              feature: np.ndarray, level: np.ndarray, offset: int):
+    """Position and features of the accepted beat at raw index ``k`` (array index
+    ``kk = k - offset``); updates the last-beat state."""
+    s = params.search
+    if params.kind == "ppg":
+        peak = kk + int(np.argmax(feature[kk:kk + s + 1]))
+        foot_lo = min(max(state.last_peak - offset, kk - params.max_gap, 0), kk)
+        foot = feature[foot_lo:kk + 1].min()
+        position = k + _parabolic(detect, kk)
+        amplitude = feature[peak] - foot
+        # Mid-level of the beat: its baseline without most of the amplitude swing.
+        intensity = 0.5 * (feature[peak] + foot)
+    else:
+        # The moving average peaks about half its length after the QRS: search back.
+        lo, hi = max(kk - params.integrate - s, 0), kk + s // 2 + 1
+        peak = lo + int(np.argmax(np.abs(feature[lo:hi])))
+        around = np.abs(feature[max(peak - 1, 0):peak + 2])
+        position = peak + offset + _parabolic(around, min(peak, 1))
+        q = params.qrs_half
+        qrs = feature[max(peak - q, 0):peak + q + 1]
+        # RMS over the QRS: it integrates the whole complex, so it is steadier than the
+        # peak-to-peak value (smaller rate errors on BIDMC records 01-12).
+        amplitude = np.sqrt(np.mean(qrs ** 2))
+        beat_lo = state.last_peak - offset
+        if 0 <= beat_lo < peak and peak + offset - state.last_peak <= params.max_gap:
+            intensity = level[beat_lo + 1:peak + 1].mean()
+        else:
+            intensity = np.nan
+    gap = k - state.last_index
+    interval = np.nan
+    if gap > params.max_gap:
+        state.intervals.clear()
+    else:
+        interval = (position - state.last_position) / params.fs
+        typical = np.median(state.intervals) if len(state.intervals) >= 3 else interval
+        state.intervals.append(interval)
+        del state.intervals[:-params.history]
+        ratio = interval / typical
+        if abs(ratio - 1.0) > params.interval_tolerance:
+            # A premature (ectopic) or missed beat is not a breathing change: drop the
+            # interval, and the shape of a premature beat.
+            if ratio < 1.0:
+                intensity = amplitude = np.nan
+            interval = np.nan
+    state.last_index, state.last_position = int(k), float(position)
+    state.last_peak = int(peak + offset)
+    return float(position), (float(intensity), float(amplitude), float(interval))
+
+
+def _time_at(times: np.ndarray, position: float, offset: int) -> float:
+    """Timestamp at sub-sample ``position`` (raw samples) by linear interpolation of
+    ``times`` (which start at raw index ``offset``); extrapolated by the neighbouring
+    step at the ends."""
+    u = position - offset
+    n = len(times)
+    if n == 1:
+        return float(times[0])
+    i = int(min(max(np.floor(u), 0), n - 2))
+    return float(times[i] + (u - i) * (times[i + 1] - times[i]))
+
+
+def _scan(state: BeatState, params: BeatParams, detect: np.ndarray, feature: np.ndarray,
+          level: np.ndarray, offset: int, k_stop: int, t: np.ndarray, t_offset: int) -> Beats:
+    """Decide the candidates ``state.next_k <= k < k_stop``. Signal arrays start at raw
+    index ``offset``, timestamps ``t`` at raw index ``t_offset`` (``t_offset <= offset``:
+    ``t`` covers the signal history)."""
+    cands = _candidates(detect, state.next_k - offset, k_stop - offset, params.refractory)
+    state.next_k = max(state.next_k, k_stop)
+    rows = []
+    for kk in cands:
+        k = int(kk + offset)
+        height = detect[kk]
+        if not height > 0:
+            continue
+        since = k - state.last_index
+        if state.heights:
+            # Against the upper quartile, not the median: were dicrotic waves ever
+            # accepted, a median could settle between them and the beats and keep
+            # accepting both. After a gap the bar halves every ``max_gap`` samples, so
+            # a weaker pulse is learnt again while filter ringing (which dies away far
+            # faster) is not taken for beats.
+            bar = params.threshold_fraction * np.percentile(state.heights, 75.0)
+            bar *= 0.5 ** (max(since - params.max_gap, 0) / params.max_gap)
+            if height < bar:
+                continue
+        if since > params.max_gap:
+            state.heights.clear()  # a new stretch: learn its beat height afresh
+        state.heights.append(float(height))
+        del state.heights[:-params.history]
+        position, features = _features(state, params, k, int(kk), detect, feature, level,
+                                       offset)
+        ready = k + params.lookahead + 1
+        rows.append((k, position, ready, t[ready - 1 - t_offset], features,
+                     _time_at(t, position, t_offset)))
+    if not rows:
+        return Beats.empty()
+    k, position, ready, ready_s, features, time_s = zip(*rows)
+    return Beats(np.array(k, np.int64), np.array(position), np.array(ready, np.int64),
+                 np.array(ready_s), np.array(features), np.array(time_s))
+
+
+def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
+                params: BeatParams) -> tuple[BeatState, Beats]:
+    """Filter one chunk and decide every candidate it completes (``step(state, inputs,
+    params) -> (state, output)``).
+
+    Parameters
+    ----------
+    state : carried state from :func:`beat_initial_state` (updated in place, returned).
+    x, t : raw samples (non-finite ones and those outside the running range of
+        ``params.limiter`` are held at the last accepted value) and their timestamps,
+        1-D float64 of equal length.
+    params : from :func:`beat_params`.
+
+    Returns
+    -------
+    (state, the beats decided in this chunk).
+    """
+    n = len(x)
+    if n == 0:
+        return state, Beats.empty()
+    x = np.asarray(x, dtype=np.float64)
+    x = _hold_rejected(state, x, limit_step(params.limiter, state.limiter, x))
+    detect = _detection_signal(params, state, x)
+    feature, state.zi_feature = causal_sos(params.feature_sos, x, state.zi_feature)
+    level, state.zi_level = causal_sos(params.level_sos, x, state.zi_level)
+    offset = state.count - len(state.detect)
+    all_detect = np.concatenate((state.detect, detect))
+    all_feature = np.concatenate((state.feature, feature))
+    all_level = np.concatenate((state.level, level))
+    all_times = np.concatenate((state.times, np.asarray(t, dtype=np.float64)))
+    state.count += n
+    beats = _scan(state, params, all_detect, all_feature, all_level, offset,
+                  state.count - params.lookahead, all_times, offset)
+    keep = min(len(all_detect), params.keep)
+    state.detect = all_detect[len(all_detect) - keep:].copy()
+    state.feature = all_feature[len(all_feature) - keep:].copy()
+    state.level = all_level[len(all_level) - keep:].copy()
+    state.times = all_times[len(all_times) - keep:].copy()
+    return state, beats
+
+
+def _zero_phase(sos: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``sosfiltfilt`` with its edge padding shortened to what a short record holds."""
+    padlen = min(3 * (2 * len(sos) + 1), len(x) - 1)
+    return signal.sosfiltfilt(sos, x, padlen=max(padlen, 0))
+
+
+def detect_batch(x: np.ndarray, t: np.ndarray, params: BeatParams,
+                 zero_phase: bool = False) -> Beats:
+    """Beats of a whole record: causal (equal to any chunking of :func:`detect_step`),
+    or with ``zero_phase`` from forward-backward filtered signals (offline twin; the ECG
+    moving average is then centred)."""
+    state = beat_initial_state(params)
+    if not zero_phase:
+        return detect_step(state, x, t, params)[1]
+    if len(x) == 0:
+        return Beats.empty()
+    x = np.asarray(x, dtype=np.float64)
+    x = _hold_rejected(state, x, limit_batch(params.limiter, x))
+    band = _zero_phase(params.detect_sos, x)
+    detect = np.diff(band, prepend=band[0]) * params.fs
+    if params.integrate:
+        taps = np.full(params.integrate, 1.0 / params.integrate)
+        detect = np.convolve(detect ** 2, taps, mode="same")
+    feature = _zero_phase(params.feature_sos, x)
+    level = _zero_phase(params.level_sos, x)
+    state.count = len(x)
+    return _scan(state, params, detect, feature, level, 0, len(x) - params.lookahead,
+                 np.asarray(t, dtype=np.float64), 0)

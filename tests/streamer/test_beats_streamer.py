@@ -171,7 +171,7 @@ def test_text_display_lists_hrv():
     stream = io.StringIO()
     text = TextDisplay(stream=stream)
     row = HrvRow(60.0, 59.0, 31.25, 40.0, 800.0, 0.0125, 75, 0.82)
-    text.listener(Update([], None, {}, hrv=(("ECG", row),)))
+    text.listener(Update([], None, None, hrv=(("ECG", row),)))
     text.drain()
     text.draw(force=True)
     assert ("HRV        ECG        RMSSD 31.2 ms  SDNN 40.0 ms  DFA a1 0.82  corrected 1.2 %  "
@@ -205,8 +205,8 @@ def test_window_shows_the_hrv_card_and_alpha1_trend(qt, tmp_path):
     rows = [HrvRow(5.0 * k, 5.0 * k - 1, 30.0, 40.0, 800.0, 0.0, 70, 1.0 - 0.004 * k)
             for k in range(1, 120)]
     x = np.zeros((int(FS), 1))
-    feed.listener(Update([], None, {}, hrv=tuple(("ECG", r) for r in rows)))
-    feed.listener(Update([], _chunk(x, 595.0 + np.arange(len(x)) / FS), {}))
+    feed.listener(Update([], None, None, hrv=tuple(("ECG", r) for r in rows)))
+    feed.listener(Update([], _chunk(x, 595.0 + np.arange(len(x)) / FS), None))
     window.refresh()
     window.draw(force=True)
     qt.application().processEvents()

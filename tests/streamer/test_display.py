@@ -526,7 +526,7 @@ def test_window_keeps_the_cards_live_when_one_stream_of_a_session_is_lost(qt, fe
     monitor, updates, _, _ = fed
     window = _window(qt, monitor, list(updates))
     try:
-        window.feed.listener(Update([], None, {}, SourceEvent(
+        window.feed.listener(Update([], None, None, SourceEvent(
             "lost", "stream 'arm-acc' lost; continuing without it", 0.0,
             {"stream": "arm-acc", "others_running": True})))
         window.refresh()
@@ -546,7 +546,7 @@ def test_a_long_notice_never_cuts_the_caution_in_the_status_bar(qt, fed):
         window.resize(1280, 800)
         message = ("stream 'arm-acc' lost; continuing without it (its channels read NaN) and "
                    "waiting for it to come back")
-        window.feed.listener(Update([], None, {}, SourceEvent(
+        window.feed.listener(Update([], None, None, SourceEvent(
             "lost", message, 0.0, {"stream": "arm-acc", "others_running": True})))
         window.refresh()
         window.draw(force=True)

@@ -60,6 +60,15 @@ class RateSettings:
     min_agreeing : breathing from a pulse: the smallest group of agreeing modulations
         that may carry an estimate.
     min_support : breathing from a pulse: the smallest summed quality of that group.
+    modulation_tilt : breathing from a pulse: each modulation's band spectrum is
+        multiplied by ``(rate / 15 per minute) ** tilt`` before tracking, which evens out
+        the slow drift of beat-to-beat series (vasomotor and posture waves, whose power
+        grows towards low rates) against the breathing peak; 0 leaves it plain.
+    fusion_quality_power : breathing from a pulse: the agreeing modulations' rates are
+        averaged with weights ``quality ** power``.
+    beat_interval_tolerance : breathing from a pulse: a beat interval further than this
+        fraction from the median of the recent ones is taken for an ectopic or missed
+        beat and dropped (with the shape of a premature beat).
     motion : heart rate from PPG: run the motion stage (:mod:`estimators.motion`) on the
         plain STFT columns: accelerometer-coherent cancellation and a motion gain when
         accelerometer channels are present, harmonic support always; the tracked
@@ -74,7 +83,8 @@ class RateSettings:
         gain; 0 switches the gain off.
     motion_smoothing_s : time constant of the gain's running averages, seconds.
     harmonic_weight : weight of the second harmonic in the tracked spectrum
-        ``C(f) + w C(2 f)``; 0 tracks ``C`` alone.
+        ``C(f) + w C(2 f)``; 0 tracks ``C`` alone (heart rate with the motion stage, and
+        each modulation of breathing from a pulse).
     harmonic_cap : the second harmonic supports a fundamental up to this many times the
         fundamental's own level (``min(cap C(f), C(2 f))``), so a candidate needs a peak
         of its own.
@@ -107,6 +117,9 @@ class RateSettings:
     agreement_per_min: float = 4.0
     min_agreeing: int = 1
     min_support: float = 0.3
+    modulation_tilt: float = 0.0
+    beat_interval_tolerance: float = 0.3
+    fusion_quality_power: float = 1.0
     motion: bool = False
     motion_memory_s: float = 30.0
     motion_loading: float = 0.1
@@ -157,6 +170,12 @@ class RateSettings:
         _check(self.min_agreeing in (1, 2, 3),
                f"min_agreeing={self.min_agreeing} must be 1, 2 or 3")
         _check(0 <= self.min_support <= 3, f"min_support={self.min_support} must be in [0, 3]")
+        _check(0 <= self.modulation_tilt <= 2,
+               f"modulation_tilt={self.modulation_tilt} must be in [0, 2]")
+        _check(self.fusion_quality_power > 0,
+               f"fusion_quality_power={self.fusion_quality_power} must be > 0")
+        _check(0 < self.beat_interval_tolerance < 1,
+               f"beat_interval_tolerance={self.beat_interval_tolerance} must be in (0, 1)")
         _check(self.motion_memory_s == 0 or self.motion_memory_s >= 2 * self.hop_s,
                f"motion_memory_s={self.motion_memory_s} must be 0 (off) or >= 2 hops "
                f"({2 * self.hop_s} s)")
@@ -266,6 +285,23 @@ BREATHING_FROM_PULSE = replace(
     # Weak modulations still vote; what is shown is decided by the fusion's support
     # (min_support) of the agreeing modulations (estimators.respiration).
     min_quality=0.1,
+    # Window, tilt, harmonic weight and fusion power (and min_support, kept at 0.3) were
+    # chosen by leave-one-record-out cross-validation on BIDMC records 01-26 (python -m
+    # bench.breathing_table, which prints the choice of every fold), the interval
+    # tolerance by an earlier run of it: slow drift of the modulations outweighed
+    # breathing in plain spectra (tilt), a non-sinusoidal breathing modulation was
+    # followed at its second harmonic (BIDMC 08: harmonic support), an irregular rhythm
+    # (BIDMC 17, 26) dropped most beats' features at a 30 % interval tolerance, and a
+    # longer window steadies the breathing peak. With a fusion power of 1, a weak
+    # modulation biased near the Nyquist limit pulled the mean off.
+    window_s=48.0,
+    modulation_tilt=0.5,
+    beat_interval_tolerance=0.5,
+    fusion_quality_power=4.0,
+    harmonic_weight=0.5,
+    # A breathing rate's own peak must be at least as high as the support its second
+    # harmonic lends it (our own choice, not tuned).
+    harmonic_cap=1.0,
 )
 
 PROFILES = {

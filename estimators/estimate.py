@@ -23,7 +23,9 @@ class Estimate:
     rate_per_min : rate in events per minute; NaN when there is no estimate.
     confidence : in [0, 1]. Heart rate: the calibrated probability that the rate is
         within the heart-rate tolerance (:mod:`estimators.calibration`). Breathing rate:
-        the tracker's posterior mass near the reported rate (not calibrated).
+        the calibrated probability that the rate is within 2 breaths/min
+        (:mod:`estimators.breathing_confidence`, one map per signal kind: respiration,
+        PPG, ECG); an estimate without a rate keeps the raw value.
     quality : in [0, 1], the data-quality index of the window.
     evidence : heart rate: the raw measures behind the confidence, named by
         :data:`estimators.evidence.FEATURES` (for diagnostics); empty otherwise.

@@ -35,6 +35,7 @@ from typing import Sequence
 
 import numpy as np
 
+from estimators import breathing_confidence
 from estimators import calibration as calibration_mod
 from estimators import deshape as deshape_mod
 from estimators import evidence as evidence_mod
@@ -399,11 +400,17 @@ class _Output:
         output, the channels' rates of the same hops."""
         if len(tracked.rate) == 0:
             return []
-        return estimates_from_track(self.quantity, self.source, tracked.block, tracked.rate,
-                                    tracked.confidence, self.rates, self.settings,
-                                    tracked.emitted_s, tracked.concentration,
-                                    self._smoothing, channel_rates, self.calibrate,
-                                    self.filter_delay_s)
+        out = estimates_from_track(self.quantity, self.source, tracked.block, tracked.rate,
+                                   tracked.confidence, self.rates, self.settings,
+                                   tracked.emitted_s, tracked.concentration,
+                                   self._smoothing, channel_rates, self.calibrate,
+                                   self.filter_delay_s)
+        if self.quantity == "rr":  # a respiration channel: P(within 2 breaths/min)
+            conf = breathing_confidence.calibrated("resp", [e.confidence for e in out],
+                                                   [e.quality for e in out])
+            out = [dataclasses.replace(e, confidence=c) if e.has_rate else e
+                   for e, c in zip(out, conf.tolist())]
+        return out
 
     def update(self, block: HopBlock, channel_rates: np.ndarray | None = None
                ) -> list[Estimate]:

@@ -45,7 +45,7 @@ analysis sample, ``p`` hop, ``f`` frequency bin, ``i`` beat.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 
 import numpy as np
 

@@ -174,7 +174,8 @@ def test_frozen_plots_keep_still_then_catch_up(qt):
         assert same(plot_data(window), before)
         latest = window.buffers.state.latest[("hr", "PPG")]
         assert (card.value.text(), card.detail.text()) != card_before
-        assert f"delay {latest.delay_s:.1f} s" in card.detail.text()
+        # the card follows the newest estimate (its centre rate's age beside the rate now)
+        assert f"{latest.delay_s:.1f} s ago" in card.detail.text()
         window.set_frozen(False)
         assert not window.freeze_button.isChecked() and window.frozen_label.text() == ""
         assert not same(plot_data(window), before)

@@ -17,6 +17,15 @@ The window is symmetric, so a column describes the centre of its window:
 ``time_s = (t_first + t_last) / 2`` over the samples it used. ``emitted_s = t_last``
 is the newest sample it used. Their difference (half a window) is the delay of the
 estimate before any tracker lag.
+
+The newest part of the window
+-----------------------------
+With ``recent_samples = r > 0`` each hop also gets a second, end-weighted column: the
+newest ``min(r, L_p)`` samples of the same frame under their own periodic Hann (unit
+sum), zero-padded to the same ``n_fft`` (so it lies on the same frequency grid). It
+describes the centre of that short span, ``r / 2`` samples before the newest one
+instead of ``m / 2``: when the rate changes, its peak moves there seconds before the
+full column's does (:mod:`estimators.rate_now` uses it to see a new rate early).
 """
 
 from __future__ import annotations
@@ -39,7 +48,9 @@ class Columns:
     ``first_count`` and ``last_count`` (P,) the analysis-sample counts the frames
     span, ``(first, last]``. ``aux_before`` and ``aux_last`` (A, P) hold the values of
     carried auxiliary series (running counts) at the sample just before each frame (0
-    when the frame starts at the first sample) and at its last sample.
+    when the frame starts at the first sample) and at its last sample. ``recent``
+    (P, n_fft // 2 + 1) complex: the end-weighted columns of the newest part of each
+    frame (see the module notes), or None when not asked for.
     """
 
     spectra: np.ndarray
@@ -50,6 +61,7 @@ class Columns:
     last_count: np.ndarray
     aux_before: np.ndarray | None = None
     aux_last: np.ndarray | None = None
+    recent: np.ndarray | None = None
 
     def __len__(self) -> int:
         return len(self.time_s)
@@ -114,10 +126,12 @@ class SlidingSTFT:
     hop_samples : hop in analysis samples (may be fractional).
     n_fft : FFT length (>= ``window_samples``).
     with_derivative : also form the derivative-window columns (for reassignment).
+    recent_samples : also form the end-weighted column of the newest this many samples
+        of each frame (0: none; see the module notes).
     """
 
     def __init__(self, window_samples: int, min_window_samples: int, hop_samples: float,
-                 n_fft: int, with_derivative: bool = False):
+                 n_fft: int, with_derivative: bool = False, recent_samples: int = 0):
         # A periodic Hann of one sample is all zero, so frames need at least two.
         if not 2 <= min_window_samples <= window_samples:
             raise ParameterError(
@@ -126,6 +140,10 @@ class SlidingSTFT:
             raise ParameterError(f"n_fft={n_fft} must be >= window_samples={window_samples}")
         if hop_samples <= 0:
             raise ParameterError(f"hop_samples={hop_samples} must be > 0")
+        if recent_samples != 0 and not 2 <= recent_samples <= window_samples:
+            raise ParameterError(
+                f"recent_samples={recent_samples} must be 0 or in [2, {window_samples}]")
+        self.recent = int(recent_samples)
         self.m, self.m_min, self.hop = window_samples, min_window_samples, hop_samples
         self.n_fft, self.with_derivative = n_fft, with_derivative
         self._windows = _WindowCache()
@@ -182,10 +200,15 @@ class SlidingSTFT:
             e = np.empty(0)
             return Columns(np.empty((0, n_bins), complex),
                            np.empty((0, n_bins), complex) if self.with_derivative else None,
-                           e, e, counts, counts, np.empty((n_aux, 0)), np.empty((n_aux, 0)))
+                           e, e, counts, counts, np.empty((n_aux, 0)), np.empty((n_aux, 0)),
+                           np.empty((0, n_bins), complex) if self.recent else None)
         frames = [(buf[0, e - L:e], buf[1, e - L:e]) for e, L in zip(ends, lengths)]
         spectra, spectra_dw = frames_to_columns(frames, self.n_fft, self.with_derivative,
                                                 self._windows)
+        recent = None
+        if self.recent:
+            tails = [(values[-self.recent:], times[-self.recent:]) for values, times in frames]
+            recent, _ = frames_to_columns(tails, self.n_fft, False, self._windows)
         starts = ends - lengths
         t_first = buf[1, starts]
         t_last = buf[1, ends - 1]
@@ -193,7 +216,7 @@ class SlidingSTFT:
         aux_last = buf[2:, ends - 1]
         aux_before = np.where(first > 0, buf[2:, np.maximum(starts - 1, 0)], 0.0)
         return Columns(spectra, spectra_dw, 0.5 * (t_first + t_last), t_last, first, counts,
-                       aux_before, aux_last)
+                       aux_before, aux_last, recent)
 
 
 BATCH_BLOCK_HOPS = 1024
@@ -207,11 +230,12 @@ per-block Python overhead is negligible (about 4 minutes of hops per block)."""
 
 
 def _batch_plan(values, times, window_samples: int, min_window_samples: int,
-                hop_samples: float, n_fft: int, with_derivative: bool, aux):
+                hop_samples: float, n_fft: int, with_derivative: bool, aux,
+                recent_samples: int = 0):
     """The validated :class:`SlidingSTFT`, the signal buffer and the hop counts and
     window lengths of every column of a whole record."""
     sliding = SlidingSTFT(window_samples, min_window_samples, hop_samples, n_fft,
-                          with_derivative)  # validates the parameters first
+                          with_derivative, recent_samples)  # validates the parameters first
     counts = hop_counts(0, len(values), hop_samples)
     counts = counts[counts >= min_window_samples]
     lengths = np.minimum(window_samples, counts)
@@ -229,7 +253,8 @@ def batch_hop_count(n_values: int, min_window_samples: int, hop_samples: float) 
 
 def stft_blocks(values: np.ndarray, times: np.ndarray, window_samples: int,
                 min_window_samples: int, hop_samples: float, n_fft: int,
-                with_derivative: bool = False, aux=(), block_hops: int | None = None):
+                with_derivative: bool = False, aux=(), block_hops: int | None = None,
+                recent_samples: int = 0):
     """The columns of :func:`stft_batch` in consecutive blocks of at most
     ``block_hops`` hops (default :data:`BATCH_BLOCK_HOPS`): a generator of
     :class:`Columns`, in hop order. Concatenated, the blocks are :func:`stft_batch`'s
@@ -240,7 +265,7 @@ def stft_blocks(values: np.ndarray, times: np.ndarray, window_samples: int,
         raise ParameterError(f"block_hops={block_hops} must be >= 1")
     sliding, buf, counts, lengths = _batch_plan(values, times, window_samples,
                                                 min_window_samples, hop_samples, n_fft,
-                                                with_derivative, aux)
+                                                with_derivative, aux, recent_samples)
     for a in range(0, len(counts), block_hops):
         part = slice(a, a + block_hops)
         yield sliding._columns(buf, counts[part], lengths[part], counts[part])
@@ -248,14 +273,14 @@ def stft_blocks(values: np.ndarray, times: np.ndarray, window_samples: int,
 
 def stft_batch(values: np.ndarray, times: np.ndarray, window_samples: int,
                min_window_samples: int, hop_samples: float, n_fft: int,
-               with_derivative: bool = False, aux=()) -> Columns:
+               with_derivative: bool = False, aux=(), recent_samples: int = 0) -> Columns:
     """All columns of a whole signal in one call (the batch twin of :class:`SlidingSTFT`).
 
     It holds every complex column at once; :func:`stft_blocks` gives the same columns
     block by block for long records."""
     sliding, buf, counts, lengths = _batch_plan(values, times, window_samples,
                                                 min_window_samples, hop_samples, n_fft,
-                                                with_derivative, aux)
+                                                with_derivative, aux, recent_samples)
     return sliding._columns(buf, counts, lengths, counts)
 
 

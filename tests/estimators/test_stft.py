@@ -192,6 +192,48 @@ def test_streaming_equals_batch_after_every_update(rng, window, min_window, hop,
     assert len(concat_columns(parts).time_s) == len(batch)
 
 
+@pytest.mark.parametrize("window,min_window,hop,recent",
+                         [(100, 100, 6.25, 50), (100, 30, 2.5, 40), (60, 20, 13.7, 60)])
+def test_recent_columns_streaming_batch_and_explicit_loop(rng, window, min_window, hop,
+                                                          recent):
+    # The end-weighted column of the newest samples: the live update after every chunk,
+    # the batch twin and the explicit DFT loop agree (start-up frames shorter than
+    # ``recent`` use the whole frame); the full columns are unchanged by asking for it.
+    n, n_fft = 500, 128
+    x = rng.standard_normal(n)
+    t = np.arange(n) / FS
+    want = stft_loop.recent_columns(x, window, min_window, hop, n_fft, recent)
+    batch = stft_batch(x, t, window, min_window, hop, n_fft, recent_samples=recent)
+    np.testing.assert_allclose(batch.recent, want, rtol=0, atol=1e-12)
+    assert_columns_equal(batch, stft_batch(x, t, window, min_window, hop, n_fft))
+    assert stft_batch(x, t, window, min_window, hop, n_fft).recent is None
+    sliding = SlidingSTFT(window, min_window, hop, n_fft, recent_samples=recent)
+    got, k = [], 0
+    for size in random_chunks(rng, n, high=2 * window):
+        got.append(sliding.update(x[k:k + size], t[k:k + size]).recent)
+        k += size
+        so_far = np.concatenate(got)
+        np.testing.assert_allclose(so_far, want[:len(so_far)], rtol=0, atol=1e-12,
+                                   err_msg=f"after {k} samples")
+    assert len(np.concatenate(got)) == len(want)
+    blocks = stft_blocks(x, t, window, min_window, hop, n_fft, block_hops=7,
+                         recent_samples=recent)
+    np.testing.assert_array_equal(np.concatenate([b.recent for b in blocks]), batch.recent)
+
+
+def test_recent_column_peaks_at_the_newest_rate():
+    # A tone that changes frequency 2 s before the end: the 2 s end-weighted column
+    # peaks at the new frequency, the 8 s column still at the old one.
+    t = np.arange(int(16 * FS)) / FS
+    f = np.where(t < 14.0, 1.0, 2.0)
+    x = np.sin(2 * np.pi * np.cumsum(f) / FS)
+    columns = stft_batch(x, t, int(8 * FS), int(8 * FS), 0.25 * FS, 512,
+                         recent_samples=int(2 * FS))
+    freqs = np.fft.rfftfreq(512, 1 / FS)
+    assert freqs[np.argmax(np.abs(columns.spectra[-1]))] == pytest.approx(1.0, abs=0.05)
+    assert freqs[np.argmax(np.abs(columns.recent[-1]))] == pytest.approx(2.0, abs=0.05)
+
+
 @pytest.mark.parametrize("block_hops", [1, 3, 50, 10 ** 6])
 def test_blocks_are_the_batch_columns(rng, block_hops):
     # The blocks, one after the other, are the columns of the one-call batch twin.
@@ -235,6 +277,10 @@ def test_empty_update_and_reset(rng):
 
 
 def test_parameter_errors():
+    with pytest.raises(ParameterError, match=r"^recent_samples=1 must be 0 or in \[2, 10\]$"):
+        SlidingSTFT(10, 5, 1.0, 16, recent_samples=1)
+    with pytest.raises(ParameterError, match=r"^recent_samples=11 must be 0 or in \[2, 10\]$"):
+        stft_batch(np.zeros(20), np.arange(20.0), 10, 5, 1.0, 16, recent_samples=11)
     with pytest.raises(ParameterError, match=r"min_window_samples=1 must be in \[2, 10\]"):
         SlidingSTFT(10, 1, 1.0, 16)
     with pytest.raises(ParameterError, match=r"min_window_samples=11 must be in \[2, 10\]"):

@@ -87,3 +87,17 @@ def stft_columns(values: np.ndarray, times: np.ndarray, window_samples: int,
         "first_count": np.array(first, dtype=np.int64),
         "last_count": np.array(last, dtype=np.int64),
     }
+
+
+def recent_columns(values: np.ndarray, window_samples: int, min_window_samples: int,
+                   hop_samples: float, n_fft: int, recent_samples: int) -> np.ndarray:
+    """The end-weighted columns by a loop over hops: the newest
+    ``min(recent_samples, L_p)`` samples of each frame under their own periodic Hann
+    (divided by its sum), by the explicit DFT sum. (P, n_fft // 2 + 1)."""
+    out = []
+    for c in hop_schedule(len(values), hop_samples):
+        if c < min_window_samples:
+            continue
+        length = min(window_samples, c, recent_samples)
+        out.append(dft_one_sided(values[c - length:c] * periodic_hann(length), n_fft))
+    return np.array(out).reshape(-1, n_fft // 2 + 1)

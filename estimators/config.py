@@ -49,6 +49,10 @@ class RateSettings:
         tracker re-acquire after a wrong lock).
     emission_power : sharpness of the emission likelihood ``(S / max S) ** power``.
     lag_hops : fixed-lag smoothing of this many hops (delay grows by ``lag_hops * hop_s``).
+    recent_window_s : length of the end-weighted column over the newest part of each
+        window (:mod:`estimators.stft`), seconds; its peak shows the rate now a new rate
+        seconds before the tracker switches to it (:mod:`estimators.rate_now`). 0: off;
+        longer than ``window_s``: the whole window.
     confidence_halfwidth_per_min : confidence is the posterior mass within this
         distance of the reported rate.
     min_quality : below this quality index the estimate is withheld ('no estimate').
@@ -111,6 +115,7 @@ class RateSettings:
     jump_probability: float = 1e-3
     emission_power: float = 2.0
     lag_hops: int = 0
+    recent_window_s: float = 4.0
     confidence_halfwidth_per_min: float = 4.0
     min_quality: float = 0.25
     stuck_run_s: float = 0.12
@@ -161,6 +166,9 @@ class RateSettings:
         _check(self.emission_power > 0, f"emission_power={self.emission_power} must be > 0")
         _check(int(self.lag_hops) == self.lag_hops and self.lag_hops >= 0,
                f"lag_hops={self.lag_hops} must be a whole number >= 0")
+        _check(self.recent_window_s == 0 or self.recent_window_s >= 1.5 * 60.0 / lo,
+               f"recent_window_s={self.recent_window_s} must be 0 (off) or hold at least "
+               f"1.5 periods of the lowest rate {lo}/min (>= {1.5 * 60.0 / lo:.2f} s)")
         _check(self.confidence_halfwidth_per_min > 0,
                f"confidence_halfwidth_per_min={self.confidence_halfwidth_per_min} must be > 0")
         _check(0 <= self.min_quality <= 1, f"min_quality={self.min_quality} must be in [0, 1]")
@@ -268,6 +276,8 @@ BREATHING = RateSettings(
     gamma=0.2,
     max_change_per_min_per_s=0.5,
     confidence_halfwidth_per_min=2.0,
+    # Breathing changes slowly against its long window; no end-weighted column.
+    recent_window_s=0.0,
     # A breathing signal holds still at end-expiration, and an impedance signal clips at
     # its rails for seconds at a time (BIDMC record 05: runs of 2.4 s at both rails) while
     # its rate stays plain; only a stretch of half the 10 s apnoea definition (AASM
@@ -343,6 +353,10 @@ PROFILES = {
                 # the harmonic concentration of a correct pulse peak; the confidence and
                 # quality fields still say how much to trust each estimate.
                 min_quality=0.1,
+                # The end-weighted column gets no motion stage: on running wrist PPG its
+                # peak follows the cadence (SPC 2015 records 01-12: the rate now 16 bpm
+                # off with it, 2.6 without), so the rate now is the forecast alone.
+                recent_window_s=0.0,
             ),
             # Breathing from the pulse's modulations is not validated during exercise,
             # where motion swamps them; off (an acc-free respiration channel still works).

@@ -34,6 +34,10 @@ class Estimate:
         (:mod:`estimators.rate_now`); equal to ``rate_per_min`` offline (no delay).
     now_confidence : the confidence of ``rate_now_per_min`` (the confidence times the
         chance that the forecast's own error is within the tolerance).
+    recent_rate_per_min : the peak of the end-weighted column over the newest part of
+        the window (``recent_window_s``; :mod:`estimators.stft`), the rate the newest
+        samples carry; NaN when there is none or no rate. Not logged: the rate now
+        reads it (:mod:`estimators.rate_now`).
     """
 
     quantity: str
@@ -46,6 +50,7 @@ class Estimate:
     evidence: tuple = ()
     rate_now_per_min: float = math.nan
     now_confidence: float = math.nan
+    recent_rate_per_min: float = math.nan
 
     @property
     def delay_s(self) -> float:

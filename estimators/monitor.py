@@ -115,6 +115,8 @@ class PathGeometry:
     min_window: int
     hop: float
     n_fft: int
+    recent: int = 0
+    """Samples of the end-weighted column over the newest part of the window (0: none)."""
 
     @classmethod
     def of(cls, settings: RateSettings, fs: float) -> "PathGeometry":
@@ -123,7 +125,9 @@ class PathGeometry:
         window = max(4, int(round(settings.window_s * fs_a)))
         min_window = max(4, min(window, int(round(settings.min_window_s * fs_a))))
         n_fft = max(settings.n_fft(fs_a), 1 << int(np.ceil(np.log2(window))))
-        return cls(m_dec, fs_a, window, min_window, settings.hop_s * fs_a, n_fft)
+        recent = (0 if settings.recent_window_s == 0 else
+                  max(2, min(window, int(round(settings.recent_window_s * fs_a)))))
+        return cls(m_dec, fs_a, window, min_window, settings.hop_s * fs_a, n_fft, recent)
 
 
 @dataclass(frozen=True)
@@ -148,6 +152,10 @@ class HopBlock:
     each hop (0 when a profile with the motion stage has no reference channel). Low
     when the accelerometer is missing: the estimate then lacks the stage that makes
     running data trustworthy, and the confidence says so (:mod:`estimators.evidence`)."""
+    recent: np.ndarray | None = None
+    """Band spectra (P, F) of the end-weighted columns over the newest part of each
+    window (made like ``spectra``: de-shape or plain), or None when the settings ask for
+    none. Their peak is the rate the newest samples carry (:mod:`estimators.rate_now`)."""
 
     def __len__(self) -> int:
         return len(self.time_s)
@@ -170,6 +178,20 @@ def column_spectra(columns: Columns, grid: deshape_mod.DeshapeGrid,
     return band, band
 
 
+def recent_spectra(columns: Columns, grid: deshape_mod.DeshapeGrid,
+                   settings: RateSettings) -> np.ndarray | None:
+    """Band spectra of the end-weighted columns (de-shape by default, else plain), or
+    None when there are none. Never sharpened: the short column has no derivative twin,
+    and its peak only has to tell one rate from another several bpm away."""
+    if columns.recent is None:
+        return None
+    magnitude = np.abs(columns.recent)
+    if settings.deshape and len(columns):
+        return deshape_mod.deshape(magnitude, grid, settings.gamma)
+    return deshape_mod.plain(magnitude, grid) if len(columns) else \
+        np.empty((0, len(grid.freqs_hz)))
+
+
 def window_integrity(columns: Columns, decimation: int) -> np.ndarray:
     """Integrity per column from the running counts of rejected (non-finite or out of
     range) and stuck raw samples carried beside the frames (``aux`` rows 0 and 1)."""
@@ -190,7 +212,8 @@ class ChannelPath:
         self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation,
                                 Limiter.for_window(settings.window_s, fs))
         self.pre.min_run = max(3, int(round(settings.stuck_run_s * fs)))
-        self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen)
+        self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen,
+                                g.recent)
         self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.analysis_band_hz)
         self.keep_columns = False  # set by the monitor when the motion stage needs them
 
@@ -205,7 +228,8 @@ class ChannelPath:
         integrity = window_integrity(columns, self.geometry.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
         return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
-                        columns.spectra if self.keep_columns else None)
+                        columns.spectra if self.keep_columns else None,
+                        recent=recent_spectra(columns, self.grid, self.settings))
 
     def batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> HopBlock:
         """The whole record in one call (causal twin, or zero-phase for offline).
@@ -216,7 +240,8 @@ class ChannelPath:
         return gather_hops(n_hops, blocks, self._block(Columns(
             np.empty((0, self.geometry.n_fft // 2 + 1), complex), None, np.empty(0),
             np.empty(0), np.empty(0, np.int64), np.empty(0, np.int64), np.empty((2, 0)),
-            np.empty((2, 0)))))
+            np.empty((2, 0)), np.empty((0, self.geometry.n_fft // 2 + 1), complex)
+            if self.geometry.recent else None)))
 
     def batch_blocks(self, x: np.ndarray, t: np.ndarray, zero_phase: bool,
                      block_hops: int | None = None):
@@ -230,14 +255,16 @@ class ChannelPath:
         n_hops = batch_hop_count(len(analysis.values), g.min_window, g.hop)
         columns = stft_blocks(analysis.values, analysis.timestamps, g.window, g.min_window,
                               g.hop, g.n_fft, self.settings.sharpen,
-                              (analysis.cum_rejected, analysis.cum_stuck), block_hops)
+                              (analysis.cum_rejected, analysis.cum_stuck), block_hops,
+                              g.recent)
         return n_hops, (self._block(c) for c in columns)
 
     def _block(self, columns: Columns) -> HopBlock:
         integrity = window_integrity(columns, self.geometry.decimation)
         spectra, magnitude = column_spectra(columns, self.grid, self.settings)
         return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
-                        columns.spectra if self.keep_columns else None)
+                        columns.spectra if self.keep_columns else None,
+                        recent=recent_spectra(columns, self.grid, self.settings))
 
 
 def _peak_normalised(spectra: np.ndarray) -> np.ndarray:
@@ -263,12 +290,16 @@ def fuse_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
     magnitude = None
     if all(b.magnitude is not None for b in blocks):
         magnitude = fuse([b.magnitude for b in blocks])
+    recent = None
+    if all(b.recent is not None for b in blocks):
+        recent = fuse([b.recent for b in blocks])
     lines = [b.motion_lines for b in blocks if b.motion_lines is not None]
     references = [b.reference_integrity for b in blocks if b.reference_integrity is not None]
     return HopBlock(fuse([b.spectra for b in blocks]), blocks[0].time_s,
                     np.max([b.emitted_s for b in blocks], axis=0), weights.max(axis=0),
                     magnitude, motion_lines=np.max(lines, axis=0) if lines else None,
-                    reference_integrity=np.min(references, axis=0) if references else None)
+                    reference_integrity=np.min(references, axis=0) if references else None,
+                    recent=recent)
 
 
 def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.ndarray,
@@ -343,9 +374,17 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     if filter_delay_s is not None:
         at = np.where(np.isfinite(rate), rate, np.median(rates_grid))
         time_s = time_s - np.interp(at, rates_grid, filter_delay_s)
-    return [Estimate(quantity, source, t, e, r, c, q, v) for t, e, r, c, q, v in zip(
-        time_s.tolist(), emitted_s.tolist(), shown.tolist(),
-        np.asarray(confidence).tolist(), quality.tolist(), evidence)]
+    recent = np.full(len(shown), np.nan)
+    if block.recent is not None and len(shown):
+        # A maximum on the grid's first or last bin is no peak (the spectrum rises
+        # beyond the grid: slow drift, an ectopic beat's long interval): none.
+        top = np.argmax(block.recent, axis=1)
+        inner = (top > 0) & (top < block.recent.shape[1] - 1) & np.isfinite(shown)
+        recent = np.where(inner, np.clip(rates_grid[top], lo, hi), np.nan)
+    return [Estimate(quantity, source, t, e, r, c, q, v, recent_rate_per_min=n)
+            for t, e, r, c, q, v, n in zip(
+                time_s.tolist(), emitted_s.tolist(), shown.tolist(),
+                np.asarray(confidence).tolist(), quality.tolist(), evidence, recent.tolist())]
 
 
 class _Output:
@@ -759,7 +798,7 @@ class RateMonitor:
             state = self._now_states.setdefault((e.quantity, e.source), now_mod.NowState())
             now, conf = now_mod.rate_now_step(state, now_mod.params_for(e.quantity),
                                               e.emitted_s, e.rate_per_min, e.delay_s,
-                                              e.confidence)
+                                              e.confidence, e.recent_rate_per_min)
             out.append(dataclasses.replace(e, rate_now_per_min=now, now_confidence=conf))
         return out
 

@@ -385,6 +385,10 @@ def test_settings_errors():
     with pytest.raises(ParameterError, match=r"window_s=2.0 must hold at least 1.5 periods "
                                              r"of the lowest rate 40.0/min \(>= 2.25 s\)"):
         RateSettings(window_s=2.0, min_window_s=2.0)
+    with pytest.raises(ParameterError, match=r"^recent_window_s=2.0 must be 0 \(off\) or hold "
+                                             r"at least 1.5 periods of the lowest rate "
+                                             r"40.0/min \(>= 2.25 s\)$"):
+        RateSettings(recent_window_s=2.0)
     with pytest.raises(ParameterError, match=r"analysis_fs=6.0 must exceed twice the highest "
                                              r"rate \(6.67 Hz\)"):
         RateSettings(analysis_fs=6.0)

@@ -22,21 +22,31 @@ def _random_track(rng, n=400):
     rate[rng.random(n) < 0.05] = np.nan
     delay = 4.0 + rng.uniform(0.0, 0.4, n)
     confidence = rng.uniform(0.3, 1.0, n)
-    return emitted, rate, delay, confidence
+    # the newest samples' peak: near the rate, with stretches of 1-6 hops far from it
+    recent = rate + rng.normal(0.0, 2.0, n)
+    for at in rng.choice(n - 6, 12, replace=False):
+        recent[at:at + rng.integers(1, 7)] += rng.choice([-25.0, 30.0])
+    recent[rng.random(n) < 0.05] = np.nan
+    return emitted, rate, delay, confidence, recent
 
 
 @pytest.mark.parametrize("quantity", ["hr", "rr"])
 def test_per_hop_forecast_equals_its_batch_twin(rng, quantity):
     params = now_mod.params_for(quantity)
-    emitted, rate, delay, confidence = _random_track(rng)
+    emitted, rate, delay, confidence, recent = _random_track(rng)
+    if quantity == "rr":  # breathing has no end-weighted column
+        recent = np.full(len(rate), np.nan)
     state = now_mod.NowState()
-    step = np.array([now_mod.rate_now_step(state, params, e, r, d, c)
-                     for e, r, d, c in zip(emitted, rate, delay, confidence)])
-    now, conf = now_mod.rate_now_batch(emitted, rate, delay, confidence, params)
+    step = np.array([now_mod.rate_now_step(state, params, e, r, d, c, n)
+                     for e, r, d, c, n in zip(emitted, rate, delay, confidence, recent)])
+    now, conf = now_mod.rate_now_batch(emitted, rate, delay, confidence, params, recent)
     np.testing.assert_allclose(step[:, 0], now, rtol=0, atol=1e-9, equal_nan=True)
     # running sums (per hop) against a direct fit (batch): round-off only
     np.testing.assert_allclose(step[:, 1], conf, rtol=0, atol=1e-9, equal_nan=True)
     assert np.all(np.isnan(now) == np.isnan(rate))
+    if quantity == "hr":  # the newest samples' peak took over somewhere, not everywhere
+        taken = now == recent
+        assert 0 < taken.sum() < np.isfinite(rate).sum() // 2
 
 
 def test_forecast_rules():
@@ -56,6 +66,22 @@ def test_forecast_rules():
     # a slope beyond the physiological bound is limited to it
     now, _ = now_mod.rate_now_batch(t, 80 + 5.5 * t, np.full(20, 1.0), np.ones(20), params)
     assert now[-1] - (80 + 5.5 * t[-1]) == pytest.approx(params.max_slope_per_s, rel=1e-6)
+    # the newest samples' peak replaces the forecast only after recent_hops hops in a
+    # row more than the margin away from it, holding still within the spread; within the
+    # margin it is never used
+    hops, margin = params.recent_hops, params.recent_margin_per_min
+    flat = np.full(20, 80.0)
+    apart = 80.0 + margin + 0.5
+    recent = np.full(20, apart)
+    recent[hops - 1] = 80.0  # a run of hops - 1 apart, then one from hop `hops` on
+    now, _ = now_mod.rate_now_batch(t, flat, np.full(20, 4.0), np.ones(20), params, recent)
+    np.testing.assert_array_equal(now, np.where(np.arange(20) >= 2 * hops - 1, apart, 80.0))
+    wander = apart + np.where(np.arange(20) % 2, params.recent_spread_per_min + 0.5, 0.0)
+    now, _ = now_mod.rate_now_batch(t, flat, np.full(20, 4.0), np.ones(20), params, wander)
+    np.testing.assert_array_equal(now, flat)
+    close, _ = now_mod.rate_now_batch(t, flat, np.full(20, 4.0), np.ones(20), params,
+                                      np.full(20, 80.0 + margin))
+    np.testing.assert_array_equal(close, flat)
     # the forecast's own uncertainty lowers the confidence, never raises it
     assert now_mod.now_confidence(0.9, 0.0, 4.0, params) == 0.9
     assert now_mod.now_confidence(0.9, 1.0, 4.0, params) == pytest.approx(
@@ -122,11 +148,12 @@ def test_at_a_steady_rate_the_rate_now_is_no_noisier(scenarios, kind):
 
 @pytest.mark.parametrize("kind", ["ppg", "ecg"])
 @pytest.mark.parametrize("after", [120.0, 40.0])
-def test_after_a_step_the_rate_now_does_not_overshoot_nor_lag_the_centre_rate(
-        scenarios, kind, after):
-    """Overshoot <= 5 bpm (issue target; measured 1.5-3.1) and settling no later than the
-    centre rate's (both 5.2-6.7 s: the issue's 4.5 s is not met; the forecast cannot see
-    a step before the tracker switches to the new ridge, see bench.rate_now)."""
+def test_after_a_step_the_rate_now_settles_within_the_target(scenarios, kind, after):
+    """Issue targets: settled within 5 bpm in <= 4.5 s, overshoot <= 5 bpm. Measured when
+    written: 2.2 / 2.7 s (PPG, 80 -> 120 / 40), 2.5 / 3.2 s (ECG), overshoot 2.3 bpm;
+    the centre rate 5.2-6.7 s. Without the end-weighted column the rate now settled
+    with the centre rate (the forecast cannot see a step before the tracker switches)."""
     scores = scenarios.step_scores(scenarios.run_scenario(kind, f"step:{after:g}"), after)
     assert scores["now"]["overshoot"] <= 5.0
-    assert scores["now"]["settle_s"] <= scores["centre"]["settle_s"] + 1e-9
+    assert scores["now"]["settle_s"] <= 4.5
+    assert scores["centre"]["settle_s"] > 4.5  # the step is one the centre rate lags

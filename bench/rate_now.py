@@ -125,8 +125,40 @@ def run_all(quick: bool = False) -> dict:
     return results
 
 
+def cost_ratio(profile_name: str = "wrist", seconds: float = 120.0, repeats: int = 3) -> dict:
+    """Per-hop cost of the default profile with the end-weighted column against without
+    it, in one run: the same synthetic PPG fed hop by hop to both monitors, alternately,
+    the best of ``repeats`` timings each (a ratio, so the machine's speed cancels)."""
+    import dataclasses
+    import time
+
+    from estimators.config import get_profile
+    from estimators.monitor import RateMonitor
+    from streamer.simulation import pulse_train
+
+    t = np.arange(int(seconds * FS)) / FS
+    x = pulse_train(FS, np.full(len(t), 72.0), seed=3)
+    with_stage = get_profile(profile_name)
+    without = dataclasses.replace(with_stage, hr=dataclasses.replace(with_stage.hr,
+                                                                      recent_window_s=0.0))
+    step = int(round(with_stage.hr.hop_s * FS))
+    best = {"with": np.inf, "without": np.inf}
+    for _ in range(repeats):
+        for label, profile in (("with", with_stage), ("without", without)):
+            monitor = RateMonitor([("x", "ppg")], FS, profile)
+            start = time.perf_counter()
+            for a in range(0, len(t), step):
+                monitor.update(x[a:a + step, None], t[a:a + step])
+            best[label] = min(best[label], time.perf_counter() - start)
+    hops = len(t) // step
+    return {"with_ms_per_hop": 1e3 * best["with"] / hops,
+            "without_ms_per_hop": 1e3 * best["without"] / hops,
+            "ratio": best["with"] / best["without"]}
+
+
 def run(quick: bool) -> dict:
     results = run_all(quick)
+    results["cost"] = cost_ratio(repeats=1 if quick else 3)
     measures = []
     for label, r in results.items():
         if "ramp" in label:
@@ -138,6 +170,10 @@ def run(quick: bool) -> dict:
                                     r["centre at emitted_s"]["mae"], "bpm"))
             measures.append(measure(f"{label}: centre rate within 5 bpm",
                                     r["centre at emitted_s"]["within_5"], ""))
+        elif label == "cost":
+            measures.append(measure("per-hop cost with / without the end-weighted column "
+                                    "(profile wrist, one PPG channel)", r["ratio"], "x"))
+            continue
         elif "step" in label:
             measures.append(measure(f"{label}: rate now settles within 5 bpm",
                                     r["now"]["settle_s"], "s", "<= 4.5 s", "<=", 4.5))
@@ -160,3 +196,4 @@ if __name__ == "__main__":  # pragma: no cover
     import json
 
     print(json.dumps(run_all(), indent=1))
+    print(json.dumps(cost_ratio(), indent=1))

@@ -52,7 +52,8 @@ class RateSettings:
     recent_window_s : length of the end-weighted column over the newest part of each
         window (:mod:`estimators.stft`), seconds; its peak shows the rate now a new rate
         seconds before the tracker switches to it (:mod:`estimators.rate_now`). 0: off;
-        longer than ``window_s``: the whole window.
+        longer than ``window_s``: the whole window. Default (None): 4 s for heart rate,
+        off for breathing (its rates change too slowly for a step to matter).
     confidence_halfwidth_per_min : confidence is the posterior mass within this
         distance of the reported rate.
     min_quality : below this quality index the estimate is withheld ('no estimate').
@@ -115,7 +116,7 @@ class RateSettings:
     jump_probability: float = 1e-3
     emission_power: float = 2.0
     lag_hops: int = 0
-    recent_window_s: float = 4.0
+    recent_window_s: float | None = None
     confidence_halfwidth_per_min: float = 4.0
     min_quality: float = 0.25
     stuck_run_s: float = 0.12
@@ -138,6 +139,8 @@ class RateSettings:
     motion_trust: str = "track"
 
     def __post_init__(self):
+        if self.recent_window_s is None:
+            object.__setattr__(self, "recent_window_s", 4.0 if self.quantity == "hr" else 0.0)
         for f in fields(self):
             value = getattr(self, f.name)
             numbers = value if isinstance(value, tuple) else (value,)
@@ -395,6 +398,8 @@ def _typed(path: str, value, default):
     """``value`` as the type of ``default`` (a RateSettings or Profile default), or
     :class:`ParameterError` naming the dotted ``path``. Whole numbers are accepted where a
     number is expected, and a pair is a list or tuple of two numbers."""
+    if default is None:  # a number whose default depends on the quantity
+        default = 0.0
     def number(x) -> bool:
         return isinstance(x, (int, float)) and not isinstance(x, bool)
 

@@ -33,21 +33,14 @@ the run); a beats or HRV file is recognised by its first line.
 from __future__ import annotations
 
 import csv
-import io
-import json
 import math
-import os
-import time
 from dataclasses import dataclass
-from datetime import datetime, timezone
 from pathlib import Path
-from typing import Iterable
 
 import numpy as np
 
-from streamer import __version__
 from streamer.errors import InputError
-from streamer.sinks.estimate_log import FileKind, _claim, one_line
+from streamer.sinks.estimate_log import FileKind, TableFile
 
 BEATS_MAGIC = "# ridgewatch beats"
 HRV_MAGIC = "# ridgewatch hrv"
@@ -76,98 +69,6 @@ def hrv_cells(source: str, row) -> tuple:
     return (_fmt(row.emitted_s, 3), source, _fmt(row.window_end_s, 4), _fmt(row.rmssd_ms, 2),
             _fmt(row.sdnn_ms, 2), _fmt(row.mean_nn_ms, 1), _fmt(row.corrected_share, 4),
             str(row.n_intervals), _fmt(row.dfa_alpha1, 4))
-
-
-class TableFile:
-    """A CSV with the estimate log's header block, one flushed line per row.
-
-    Parameters
-    ----------
-    path : where to write.
-    kind : :data:`BEATS_FILE` or :data:`HRV_FILE`.
-    columns : the header row.
-    mode, source, channels, config, if_exists, inputs : as for
-        :class:`streamer.sinks.estimate_log.EstimateLog`.
-
-    Raises
-    ------
-    InputError
-        One line naming the path and the option (it exists, it is an input, another run
-        is writing it, or it cannot be created).
-    """
-
-    def __init__(self, path, kind: FileKind, columns: tuple, mode: str, source: str,
-                 channels: dict, config: dict, *, if_exists: str = "refuse",
-                 inputs: Iterable = (), started: datetime | None = None):
-        self.path, self.kind = Path(path), kind
-        try:
-            if self.path.parent and not self.path.parent.exists():
-                self.path.parent.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise InputError(f"cannot write the {kind.noun} {self.path}: {exc.strerror}") \
-                from None
-        fd = _claim(self, if_exists, [Path(p) for p in inputs], kind)
-        try:
-            self._file = open(fd, "w", encoding="utf-8", newline="")
-        except BaseException:
-            os.close(fd)
-            raise
-        self.rows_written = 0
-        self._last_sync = time.monotonic()
-        started = started or datetime.now(timezone.utc)
-        header = [
-            kind.magic,
-            f"# version: {__version__}",
-            f"# mode: {one_line(mode)}",
-            f"# started: {started.astimezone(timezone.utc).isoformat(timespec='milliseconds')}",
-            f"# source: {one_line(source)}",
-            f"# channels: {json.dumps(channels)}",
-            f"# config: {json.dumps(config, sort_keys=True)}",
-            ",".join(columns),
-        ]
-        self._write("\n".join(header) + "\n")
-
-    def _write(self, text: str) -> None:
-        try:
-            self._file.write(text)
-            self._file.flush()
-            now = time.monotonic()
-            if now - self._last_sync >= 1.0:
-                os.fsync(self._file.fileno())
-                self._last_sync = now
-        except OSError as exc:
-            raise InputError(
-                f"writing the {self.kind.noun} {self.path} failed ({exc.strerror}); the "
-                f"{self.rows_written} rows written before are complete") from None
-
-    def write_cells(self, cells: tuple) -> None:
-        buffer = io.StringIO()
-        csv.writer(buffer, lineterminator="\n").writerow(cells)
-        self._write(buffer.getvalue())
-        self.rows_written += 1
-
-    def write_event(self, kind: str, message: str, time_s: float = math.nan) -> None:
-        """A ``# event`` line, as in the estimate log."""
-        self._write(f"# event {_fmt(time_s, 4) or 'nan'} {one_line(kind)}: {one_line(message)}\n")
-
-    def close(self) -> None:
-        if self._file.closed:
-            return
-        try:
-            self._file.flush()
-            os.fsync(self._file.fileno())
-        except OSError:
-            pass
-        try:
-            self._file.close()
-        except OSError:
-            pass
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        self.close()
 
 
 def beats_file(path, mode, source, channels, config, **kwargs) -> TableFile:

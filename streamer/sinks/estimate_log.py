@@ -183,7 +183,99 @@ def _from_one_line(value: str) -> str:
     return value
 
 
-class EstimateLog:
+class TableFile:
+    """A CSV written like the estimate log: a ``#`` header block (``kind.magic``,
+    version, mode, start time, source, channels, configuration), a header row of
+    ``columns``, then rows and ``#`` status lines, each flushed as it is written (and
+    ``os.fsync``-ed every ``sync_every_s``), claimed as :func:`_claim` describes. The
+    estimate log, the beats file and the HRV file are table files
+    (:class:`EstimateLog`, :mod:`streamer.sinks.beats_log`)."""
+
+    def __init__(self, path, kind: "FileKind", columns: tuple, mode: str, source: str,
+                 channels: dict, config: dict, sync_every_s: float = 1.0, *,
+                 if_exists: str = "refuse", inputs: Iterable = (),
+                 started: datetime | None = None):
+        if if_exists not in ("refuse", "overwrite", "number"):
+            raise ValueError(f"{if_exists=} must be 'refuse', 'overwrite' or 'number'")
+        self.path, self.kind = Path(path), kind
+        try:
+            if self.path.parent and not self.path.parent.exists():
+                self.path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise InputError(f"cannot write the {kind.noun} {self.path}: {exc.strerror}") \
+                from None
+        fd = _claim(self, if_exists, [Path(p) for p in inputs], kind)
+        try:
+            self._file = open(fd, "w", encoding="utf-8", newline="")
+        except BaseException:
+            os.close(fd)
+            raise
+        self._sync_every_s = sync_every_s
+        self._last_sync = time.monotonic()
+        self.rows_written = 0
+        started = started or datetime.now(timezone.utc)
+        header = [
+            kind.magic,
+            f"# version: {__version__}",
+            f"# mode: {one_line(mode)}",
+            f"# started: {started.astimezone(timezone.utc).isoformat(timespec='milliseconds')}",
+            f"# source: {one_line(source)}",
+            f"# channels: {json.dumps(channels)}",
+            f"# config: {json.dumps(config, sort_keys=True)}",
+            ",".join(columns),
+        ]
+        self._write("\n".join(header) + "\n")
+
+    def _write(self, text: str) -> None:
+        try:
+            self._file.write(text)
+            self._file.flush()
+            now = time.monotonic()
+            if now - self._last_sync >= self._sync_every_s:
+                os.fsync(self._file.fileno())
+                self._last_sync = now
+        except OSError as exc:
+            raise InputError(
+                f"writing the {self.kind.noun} {self.path} failed ({exc.strerror}); "
+                f"the {self.rows_written} rows written before are complete"
+            ) from None
+
+    def write_cells(self, cells: tuple) -> None:
+        """One row of cells, written by the csv module."""
+        buffer = io.StringIO()
+        csv.writer(buffer, lineterminator="\n").writerow(cells)
+        self._write(buffer.getvalue())
+        self.rows_written += 1
+
+    def write_event(self, kind: str, message: str, time_s: float = float("nan")) -> None:
+        """A status line in the body (``# event ...``), e.g. a stream lost or resumed;
+        readers skip it like any ``#`` line."""
+        self._write(f"# event {_fmt(time_s, 4) or 'nan'} {one_line(kind)}: {one_line(message)}\n")
+
+    def close(self) -> None:
+        if self._file.closed:
+            return
+        try:
+            self._file.flush()
+            os.fsync(self._file.fileno())
+        except OSError:
+            pass
+        try:
+            self._file.close()
+        except OSError:
+            # Every line is flushed as it is written, so only text whose failed write
+            # was already reported (e.g. a full disk) can still be pending here;
+            # raising again would only repeat that error.
+            pass
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+class EstimateLog(TableFile):
     """Writes the estimate log, one flushed line per estimate.
 
     Parameters
@@ -220,86 +312,18 @@ class EstimateLog:
     def __init__(self, path, mode: str, source: str, channels: dict, config: dict,
                  sync_every_s: float = 1.0, *, if_exists: str = "refuse",
                  inputs: Iterable = (), started: datetime | None = None):
-        if if_exists not in ("refuse", "overwrite", "number"):
-            raise ValueError(f"{if_exists=} must be 'refuse', 'overwrite' or 'number'")
-        self.path = Path(path)
-        try:
-            if self.path.parent and not self.path.parent.exists():
-                self.path.parent.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:
-            raise InputError(f"cannot write the estimate log {self.path}: {exc.strerror}") from None
-        fd = _claim(self, if_exists, [Path(p) for p in inputs])
-        try:
-            self._file = open(fd, "w", encoding="utf-8", newline="")
-        except BaseException:
-            os.close(fd)
-            raise
-        self._sync_every_s = sync_every_s
-        self._last_sync = time.monotonic()
-        self.rows_written = 0
-        started = started or datetime.now(timezone.utc)
-        header = [
-            MAGIC,
-            f"# version: {__version__}",
-            f"# mode: {one_line(mode)}",
-            f"# started: {started.astimezone(timezone.utc).isoformat(timespec='milliseconds')}",
-            f"# source: {one_line(source)}",
-            f"# channels: {json.dumps(channels)}",
-            f"# config: {json.dumps(config, sort_keys=True)}",
-            ",".join(COLUMNS),
-        ]
-        self._write("\n".join(header) + "\n")
-
-    def _write(self, text: str) -> None:
-        try:
-            self._file.write(text)
-            self._file.flush()
-            now = time.monotonic()
-            if now - self._last_sync >= self._sync_every_s:
-                os.fsync(self._file.fileno())
-                self._last_sync = now
-        except OSError as exc:
-            raise InputError(
-                f"writing the estimate log {self.path} failed ({exc.strerror}); "
-                f"the {self.rows_written} rows written before are complete"
-            ) from None
+        super().__init__(path, ESTIMATE_LOG, COLUMNS, mode, source, channels, config,
+                         sync_every_s, if_exists=if_exists, inputs=inputs, started=started)
 
     def write(self, estimate: Estimate, compute_ms: float = float("nan")) -> None:
         self._write(format_row(estimate, compute_ms))
         self.rows_written += 1
-
-    def write_event(self, kind: str, message: str, time_s: float = float("nan")) -> None:
-        """A status line in the body (``# event ...``), e.g. a stream lost or resumed;
-        readers skip it like any ``#`` line."""
-        self._write(f"# event {_fmt(time_s, 4) or 'nan'} {one_line(kind)}: {one_line(message)}\n")
 
     def write_marker(self, marker) -> None:
         """A marker line in the body (``# marker <time_s> <source>: <text>``) for a
         :class:`streamer.sources.base.Marker`; :func:`read_log` gives them back in
         :attr:`LogTable.markers`."""
         self._write(format_marker(marker))
-
-    def close(self) -> None:
-        if self._file.closed:
-            return
-        try:
-            self._file.flush()
-            os.fsync(self._file.fileno())
-        except OSError:
-            pass
-        try:
-            self._file.close()
-        except OSError:
-            # Every line is flushed as it is written, so only text whose failed write
-            # was already reported (e.g. a full disk) can still be pending here;
-            # raising again would only repeat that error.
-            pass
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, *exc):
-        self.close()
 
 
 def write_offline_rows(log: EstimateLog, estimates, markers, compute_ms: float) -> None:

@@ -56,7 +56,8 @@ from estimators import tracker as tracker_mod
 from estimators.config import RateSettings
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
-from estimators.preprocess import design_chain, initial_state, preprocess_batch, preprocess_step
+from estimators.preprocess import (chain_group_delay_s, design_chain, initial_state,
+                                   preprocess_batch, preprocess_step)
 from estimators.stft import SlidingSTFT, batch_hop_count, gather_hops, stft_blocks
 
 # Beat detection lives in estimators.beats; its names stay importable from here.
@@ -390,6 +391,10 @@ class ModulationBank:
         self.chain = design_chain("resp", "rr", fs_analysis, fs_analysis)
         self.min_run = max(3, int(round(MODULATION_STUCK_S * fs_analysis)))
         self.grid = deshape_mod.make_grid(fs_analysis, n_fft, settings.band_hz)
+        # The causal modulation filters' group delay at each rate of the grid: a live
+        # estimate describes its window centre less this delay at its rate.
+        self.filter_delay_s = chain_group_delay_s(self.chain, fs_analysis,
+                                                  self.grid.rates_per_min / 60.0)
         self.stfts = [SlidingSTFT(window, min_window, self.hop, n_fft) for _ in MODULATIONS]
         self.reset()
 
@@ -748,8 +753,12 @@ class PulseBreathing:
         shown = np.where((quality >= self.settings.min_quality) & np.isfinite(rate), rate,
                          np.nan)
         self.last_modulations = (shown, conf, quality)
-        return fused_estimates(self.name, self.kind, self.settings, hops.time_s, emitted_s,
-                               rate, conf, quality)
+        estimates = fused_estimates(self.name, self.kind, self.settings, hops.time_s,
+                                    emitted_s, rate, conf, quality)
+        grid = self.bank.grid.rates_per_min
+        return [replace(e, time_s=e.time_s - float(np.interp(
+            e.rate_per_min if np.isfinite(e.rate_per_min) else np.median(grid), grid,
+            self.bank.filter_delay_s))) for e in estimates]
 
     def hops_batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> ModulationHops:
         """Modulation hops of a whole record in one call: the batch twin of the first

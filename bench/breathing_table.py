@@ -76,6 +76,7 @@ from pathlib import Path
 import numpy as np
 
 from bench import REPO_ROOT, RESULTS_DIR, SHARED_DATA, jsonable, measure, write_json
+from bench.calibration import reliability_table
 
 RECORDS = tuple(range(1, 27))
 FS = 125.0
@@ -475,12 +476,7 @@ def calibration_text(cal: dict) -> str:
                      f"{c['share_confident']:.3f} | {c['precision_confident']:.3f} |")
     for n, c in cal.items():
         lines.append(f"\nreliability, {n} ({BINS} bins)")
-        lines.append("| confidence | count | mean confidence | within 2/min |")
-        lines.append("|---|---|---|---|")
-        for row in c["reliability"]:
-            mc = "-" if not row["count"] else f"{row['mean_confidence']:.3f}"
-            ob = "-" if not row["count"] else f"{row['observed']:.3f}"
-            lines.append(f"| {row['low']:.1f}-{row['high']:.1f} | {row['count']} | {mc} | {ob} |")
+        lines.extend(reliability_table(c["reliability"], "within 2/min"))
     return "\n".join(lines)
 
 

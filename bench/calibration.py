@@ -283,7 +283,6 @@ def out_of_fold(table: Table, isotonic: bool = True) -> np.ndarray:
 def raw_confidence(table: Table) -> np.ndarray:
     """The tracker's confidence before calibration (posterior mass times the motion
     penalty of the profile), for the before/after comparison."""
-    from estimators.config import get_profile
     from estimators.evidence import FEATURES
 
     mass = table.evidence[:, FEATURES.index("posterior_mass")]
@@ -354,16 +353,23 @@ def text(result: dict, title: str) -> str:
     return "\n".join(lines)
 
 
+def reliability_table(reliability: list, outcome: str = "within tolerance") -> list[str]:
+    """Markdown lines of a reliability table (rows of
+    :func:`estimators.calibration.reliability`-style dicts); ``outcome`` heads the
+    observed column."""
+    lines = [f"| confidence | count | mean confidence | {outcome} |", "|---|---|---|---|"]
+    for row in reliability:
+        mc = "-" if not row["count"] else f"{row['mean_confidence']:.3f}"
+        ob = "-" if not row["count"] else f"{row['observed']:.3f}"
+        lines.append(f"| {row['low']:.1f}-{row['high']:.1f} | {row['count']} | {mc} | {ob} |")
+    return lines
+
+
 def reliability_text(result: dict) -> str:
     lines = []
     for group, r in result.items():
         lines.append(f"\nreliability, {group} (out of fold, {BINS} bins)")
-        lines.append("| confidence | count | mean confidence | within tolerance |")
-        lines.append("|---|---|---|---|")
-        for row in r["reliability"]:
-            mc = "-" if not row["count"] else f"{row['mean_confidence']:.3f}"
-            ob = "-" if not row["count"] else f"{row['observed']:.3f}"
-            lines.append(f"| {row['low']:.1f}-{row['high']:.1f} | {row['count']} | {mc} | {ob} |")
+        lines.extend(reliability_table(r["reliability"]))
     return "\n".join(lines)
 
 

@@ -242,13 +242,148 @@ def offline_track(spectra: np.ndarray, weights: np.ndarray, params: TrackerParam
     return rate, np.clip(mass, 0.0, 1.0), path
 
 
+@dataclass(frozen=True)
+class TrackInput:
+    """Input of the tracker stage for C channels: ``spectra`` and ``readout`` (C, P, F)
+    (the tracked spectra, and where the rate is read off), ``weights`` (C, P) the
+    emission tempering (the windows' signal integrity)."""
+
+    spectra: np.ndarray
+    weights: np.ndarray
+    readout: np.ndarray
+
+    def __len__(self) -> int:
+        return self.weights.shape[1]
+
+
+@dataclass(frozen=True)
+class TrackOutput:
+    """Output of the tracker stage: ``rate`` (C, P) per minute, ``confidence`` (C, P)
+    the posterior mass within the half-width of the mode, ``concentration`` (C, P) the
+    harmonic concentration score at the rate (for the quality index)."""
+
+    rate: np.ndarray
+    confidence: np.ndarray
+    concentration: np.ndarray
+
+
+@dataclass
+class TrackState:
+    """The posterior of each channel (C, F) and the hops seen."""
+
+    posterior: np.ndarray
+    hops_seen: int = 0
+
+
+def _split_hops(x, bounds) -> list:
+    """Cut a dataclass of (C, P, ...) arrays at hop ``bounds``."""
+    n = x.confidence.shape[1] if hasattr(x, "confidence") else x.weights.shape[1]
+    edges = [0, *[int(b) for b in bounds], n]
+    return [type(x)(*(getattr(x, f)[:, lo:hi] for f in x.__dataclass_fields__))
+            for lo, hi in zip(edges[:-1], edges[1:])]
+
+
+def _join_hops(parts):
+    first = parts[0]
+    return type(first)(*(np.concatenate([getattr(p, f) for p in parts], axis=1)
+                         for f in first.__dataclass_fields__))
+
+
+@dataclass(frozen=True, eq=False)
+class RidgeTrack:
+    """Stage (:mod:`estimators.stage`): the causal tracker without lag for C channels on
+    one grid, all of them in one compiled call (:func:`estimators._kernels.track_channels`).
+
+    Input :class:`TrackInput`, output :class:`TrackOutput`, state :class:`TrackState`.
+    Per hop: the rhythm score tempers the emission (with ``check_rhythm``), one forward
+    step, the confidence and the rate read at the highest ``readout`` peak near the mode
+    (parabolic interpolation), the concentration score there. :meth:`batch` is the
+    numpy composition of the same steps (:func:`emissions_from_spectra`,
+    :func:`forward_step`, :func:`read_posterior` and the concentration score), the twin
+    the compiled kernel is tested against.
+    """
+
+    rates: np.ndarray
+    params: TrackerParams
+    power: float
+    check_rhythm: bool = False
+    chance_factor: float = 1.5
+    span: float = 0.3
+    n_channels: int = 1
+
+    @property
+    def step_per_min(self) -> float:
+        return float(self.rates[1] - self.rates[0])
+
+    @property
+    def offset_bins(self) -> float:
+        return float(self.rates[0] / self.step_per_min)
+
+    def initial_state(self) -> TrackState:
+        return TrackState(np.tile(initial_posterior(len(self.rates)), (self.n_channels, 1)))
+
+    def step(self, state: TrackState, x: TrackInput) -> tuple[TrackState, TrackOutput]:
+        spectra = np.ascontiguousarray(x.spectra, dtype=np.float64)
+        readout = np.ascontiguousarray(x.readout, dtype=np.float64)
+        weights = np.ascontiguousarray(np.clip(x.weights, 0.0, 1.0), dtype=np.float64)
+        posterior = np.array(state.posterior, dtype=np.float64, order="C")
+        shape = weights.shape
+        position, confidence, concentration = np.empty(shape), np.empty(shape), np.empty(shape)
+        _kernels.track_channels(spectra, readout, weights, posterior, self.params.transition,
+                                self.params.jump_probability, float(self.power),
+                                EMISSION_FLOOR, float(self.params.halfwidth_bins),
+                                self.offset_bins, self.chance_factor, self.span,
+                                bool(self.check_rhythm), position, confidence, concentration)
+        rate = self.rates[0] + position * self.step_per_min
+        return (TrackState(posterior, state.hops_seen + shape[1]),
+                TrackOutput(rate, confidence, concentration))
+
+    def batch(self, x: TrackInput) -> TrackOutput:
+        rows = [self._batch_channel(x.spectra[c], np.asarray(x.weights[c], dtype=np.float64),
+                                    x.readout[c]) for c in range(len(x.spectra))]
+        return TrackOutput(*(np.array([r[i] for r in rows]).reshape(len(rows), -1)
+                             for i in range(3)))
+
+    def _batch_channel(self, spectra, weights, readout):
+        n_bins = len(self.rates)
+        if len(spectra) == 0:
+            return np.empty(0), np.empty(0), np.empty(0)
+        halfwidth = float(self.params.halfwidth_bins)
+        rhythm = np.ones(len(spectra))
+        if self.check_rhythm:
+            _kernels.rhythm_scores(np.ascontiguousarray(spectra, dtype=np.float64),
+                                   np.ascontiguousarray(readout, dtype=np.float64),
+                                   self.offset_bins, halfwidth, self.chance_factor, self.span,
+                                   rhythm)
+        weights = np.clip(weights, 0.0, 1.0) * rhythm
+        _, posts = forward_step(initial_posterior(n_bins),
+                                emissions_from_spectra(spectra, self.power), weights,
+                                self.params)
+        rate, confidence = read_posterior(posts, self.rates, halfwidth, readout)
+        position = (rate - self.rates[0]) / self.step_per_min
+        concentration = np.zeros(len(rate))
+        for p, centre in enumerate(position.tolist()):
+            # A rate on the grid's first or last bin is a slope, not a peak: no rhythm.
+            if 0 < int(round(centre)) < n_bins - 1:
+                concentration[p] = _kernels.harmonic_score(
+                    np.ascontiguousarray(readout[p] ** 2), centre, self.offset_bins,
+                    halfwidth, self.chance_factor, self.span)
+        return rate, confidence, concentration
+
+    def split(self, x, bounds) -> list:
+        return _split_hops(x, bounds)
+
+    def join(self, parts):
+        return _join_hops(parts)
+
+
 class RidgeTracker:
     """Causal tracker owning its posterior and the fixed-lag history.
 
     ``update(spectra, weights) -> (rate, confidence, lag_index)`` for the hops given:
     ``lag_index[i]`` is the index (into all hops seen so far) of the hop that output
     ``i`` refers to; with no lag it is the hop itself. Outputs start once ``L`` hops
-    have been seen.
+    have been seen. :meth:`track` (no lag) steps a one-channel :class:`RidgeTrack`.
     """
 
     def __init__(self, rates_per_min: np.ndarray, params: TrackerParams, emission_power: float,
@@ -261,6 +396,8 @@ class RidgeTracker:
         # check on, hops whose power is not on a harmonic family do not pull the posterior.
         self.check_rhythm = bool(check_rhythm)
         self.chance_factor, self.span = float(chance_factor), float(span)
+        self.stage = RidgeTrack(self.rates, params, emission_power, self.check_rhythm,
+                                self.chance_factor, self.span)
         self.reset()
 
     def reset(self) -> None:
@@ -277,18 +414,13 @@ class RidgeTracker:
         index), in one compiled pass. Hops without rhythm do not pull the posterior."""
         if self.params.lag_hops:
             raise ParameterError("track() is for lag_hops=0; use update()")
-        spectra = np.ascontiguousarray(np.atleast_2d(spectra), dtype=np.float64)
-        readout = spectra if readout is None else np.ascontiguousarray(readout, dtype=np.float64)
-        weights = np.ascontiguousarray(np.clip(weights, 0.0, 1.0), dtype=np.float64)
-        n = len(spectra)
-        position, confidence, concentration = np.empty(n), np.empty(n), np.empty(n)
-        _kernels.track_block(spectra, readout, weights, self.posterior, self.params.transition,
-                             self.params.jump_probability, float(self.power), EMISSION_FLOOR,
-                             float(self.params.halfwidth_bins), self.offset_bins,
-                             self.chance_factor, self.span, self.check_rhythm, position,
-                             confidence, concentration)
-        self.hops_seen += n
-        return self.rates[0] + position * self.step, confidence, concentration
+        spectra = np.atleast_2d(spectra)
+        readout = spectra if readout is None else readout
+        state, out = self.stage.step(TrackState(self.posterior[None], self.hops_seen),
+                                     TrackInput(spectra[None], np.asarray(weights)[None],
+                                                np.asarray(readout)[None]))
+        self.posterior, self.hops_seen = state.posterior[0], state.hops_seen
+        return out.rate[0], out.confidence[0], out.concentration[0]
 
     def rhythm(self, spectra: np.ndarray, readout: np.ndarray | None = None) -> np.ndarray:
         """Rhythm score per hop (see :func:`estimators._kernels.rhythm_scores`); ones when

@@ -501,7 +501,8 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     shown = np.where(withheld, np.nan, np.clip(rate, lo, hi))
     time_s = block.time_s
     if filter_delay_s is not None:
-        at = np.where(np.isfinite(rate), rate, np.median(rates_grid))
+        finite = np.isfinite(rate)
+        at = rate if finite.all() else np.where(finite, rate, np.median(rates_grid))
         time_s = time_s - np.interp(at, rates_grid, filter_delay_s)
     recent = np.full(len(shown), np.nan)
     if block.recent is not None and len(shown):
@@ -614,6 +615,174 @@ class GroupTracking:
                      for c in range(len(parts[0])))
 
 
+@dataclass
+class MotionTrackingState:
+    """What :class:`MotionTracking` carries: each motion stage's state, each heart-rate
+    output's tracker state and (with fixed-lag smoothing) the hops it holds back,
+    whether the references are missing, and how many hops the motion stage still
+    trusts no track."""
+
+    motion: tuple
+    trackers: tuple
+    held: tuple
+    references_missing: bool = False
+    untrusted_hops: int = 0
+
+
+@dataclass(frozen=True)
+class ExerciseHops:
+    """Input of :class:`MotionTracking`: the heart-rate channels' blocks by output key
+    and the accelerometer axes' blocks by name, all on the same hops."""
+
+    blocks: dict
+    references: dict
+
+    def __len__(self) -> int:
+        return len(next(iter(self.blocks.values())))
+
+    def __iter__(self):
+        return iter((self.blocks, self.references))
+
+
+@dataclass(frozen=True, eq=False)
+class MotionTracking:
+    """Stage (:mod:`estimators.stage`): the exercise path's heart-rate tracking, hop by
+    hop. The motion stage (:class:`~estimators.motion.MotionStage`) of every PPG
+    channel at hop ``p`` trusts its canceller where the guiding tracker (the fused
+    output when there is one, else the channel's own) expects the pulse after hop
+    ``p - 1`` (:func:`estimators.motion.expected_pulse`); then every heart-rate output
+    (channels, then fused) takes one step of its tracker (a one-channel
+    :class:`~estimators.tracker.RidgeTrack`, or with fixed-lag smoothing a
+    :class:`~estimators.tracker.LagTrack`, whose outputs refer to earlier hops).
+
+    Input :class:`ExerciseHops`: the heart-rate channels' :class:`HopBlock` (with
+    complex columns for the motion stage) by key, and the accelerometer axes' blocks by
+    name, all on the same hops. Output ``(tracked, blocks)`` by output key: the tracker
+    output and the blocks as tracked (motion-suppressed spectra, the fused block);
+    both empty when the input has no hop.
+
+    When the references come back after an absence (their window integrity below
+    :data:`estimators.calibration.REFERENCE_MISSING`), the trackers start afresh and
+    for one window the motion stage trusts no track, as at start-up: the track was made
+    without them and may sit on the cadence. Meanwhile the evidence says the references
+    are missing (the blind family of the confidence map).
+    """
+
+    keys: tuple
+    motion_keys: tuple
+    motion: tuple
+    tracker: tracker_mod.RidgeTrack
+    reference_names: tuple
+    trust: str
+    window_hops: int
+
+    def initial_state(self) -> MotionTrackingState:
+        return MotionTrackingState(tuple(m.initial_state() for m in self.motion),
+                                   (self.tracker.initial_state(),) * len(self.keys),
+                                   ((),) * len(self.keys))
+
+    def _expected(self, state: MotionTrackingState, key) -> np.ndarray | None:
+        guide = state.trackers[self.keys.index(("hr", FUSED) if ("hr", FUSED) in self.keys
+                                               else key)]
+        if self.trust == "everywhere":
+            return np.ones((1, len(self.tracker.rates)))
+        if self.trust == "nowhere" or guide.hops_seen == 0 or state.untrusted_hops > 0:
+            return None
+        return motion_mod.expected_pulse(np.reshape(guide.posterior, -1),
+                                         self.tracker.params.halfwidth_bins)
+
+    def _track(self, tracker_state, held: tuple, block: HopBlock):
+        """One hop of one output's tracker: ``(state, held, Tracked)``."""
+        if isinstance(self.tracker, tracker_mod.RidgeTrack):
+            tracker_state, out = self.tracker.step(tracker_state, tracker_mod.TrackInput(
+                block.spectra[None], block.integrity[None], block.magnitude[None]))
+            return tracker_state, held, Tracked(block, out.rate[0], out.confidence[0],
+                                                out.concentration[0], block.emitted_s)
+        tracker_state, out = self.tracker.step(tracker_state, tracker_mod.TrackInput(
+            block.spectra, block.integrity, block.magnitude))
+        held, tracked = lagged_tracked(held, block, out, tracker_state.hops_seen,
+                                       self.tracker.params.lag_hops)
+        return tracker_state, held, tracked
+
+    def step(self, state: MotionTrackingState, x) -> tuple[MotionTrackingState, tuple]:
+        blocks, references = x
+        refs = [references[name].columns for name in self.reference_names]
+        acc = np.stack(refs, axis=-1) if refs else None
+        n_hops = len(blocks[self.motion_keys[0]])
+        reference = (np.min([references[name].integrity for name in self.reference_names],
+                            axis=0) if self.reference_names else np.zeros(n_hops))
+        motion_states, trackers, held = list(state.motion), list(state.trackers), list(state.held)
+        missing, untrusted = state.references_missing, state.untrusted_hops
+        tracked = {key: [] for key in self.keys}
+        hops = {key: [] for key in self.keys}
+        fresh = self.initial_state()
+        for p in range(n_hops):
+            if self.reference_names and reference[p] < calibration_mod.REFERENCE_MISSING:
+                missing = True
+            elif missing:
+                missing, untrusted = False, self.window_hops
+                trackers = list(fresh.trackers)
+            hop = {key: take_hops(blocks[key], slice(p, p + 1)) for key in self.keys
+                   if key in blocks}
+            for i, key in enumerate(self.motion_keys):
+                guide = MotionTrackingState((), tuple(trackers), (), missing, untrusted)
+                motion_states[i], (spectra, lines) = self.motion[i].step(
+                    motion_states[i], (hop[key].columns, None if acc is None else
+                                       acc[p:p + 1], self._expected(guide, key)))
+                # While the stage warms up again its output is not what the motion
+                # calibration was fitted on: the evidence says the references are
+                # missing (the blind family) until a window has passed.
+                hop[key] = dataclasses.replace(
+                    hop[key], spectra=spectra, magnitude=spectra, columns=None,
+                    motion_lines=lines, reference_integrity=(
+                        np.zeros(1) if untrusted > 0 else reference[p:p + 1]))
+            if ("hr", FUSED) in self.keys:
+                hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in self.keys
+                                                  if key[1] != FUSED])
+            for k, key in enumerate(self.keys):
+                trackers[k], held[k], new = self._track(trackers[k], held[k], hop[key])
+                tracked[key].append(new)
+                hops[key].append(hop[key])
+            untrusted = max(0, untrusted - 1)
+        state = MotionTrackingState(tuple(motion_states), tuple(trackers), tuple(held),
+                                    missing, untrusted)
+        if n_hops == 0:
+            return state, ({}, {})
+        return state, ({key: Tracked.concat(parts) for key, parts in tracked.items()},
+                       {key: concat_blocks(parts) for key, parts in hops.items()})
+
+    def batch(self, x) -> tuple:
+        return self.step(self.initial_state(), x)[1]
+
+    def split(self, x, bounds) -> list:
+        blocks, references = x
+        n = len(blocks[self.motion_keys[0]])
+        edges = [0, *[int(b) for b in bounds], n]
+        return [ExerciseHops({k: take_hops(b, slice(lo, hi)) for k, b in blocks.items()},
+                             {k: take_hops(b, slice(lo, hi)) for k, b in references.items()})
+                for lo, hi in zip(edges[:-1], edges[1:])]
+
+    def join(self, parts) -> tuple:
+        parts = [p for p in parts if p[0]]
+        if not parts:
+            return {}, {}
+        return ({key: Tracked.concat([p[0][key] for p in parts]) for key in parts[0][0]},
+                {key: concat_blocks([p[1][key] for p in parts]) for key in parts[0][1]})
+
+
+def lagged_tracked(held: tuple, block: HopBlock, out, hops_seen: int, lag: int
+                   ) -> tuple[tuple, "Tracked"]:
+    """The hops a lagged tracker output (:class:`~estimators.tracker.LagOutput`) refers
+    to, from the blocks held back (``held``) and the newest ``block``: ``(held,
+    Tracked)``, the new held blocks being the newest ``lag + 1`` hops."""
+    joined = concat_blocks([*held, block])
+    pos = out.index - (hops_seen - len(joined))
+    referred = take_hops(joined, pos)
+    newest = joined.emitted_s[pos + lag]
+    keep = take_hops(joined, np.arange(max(0, len(joined) - lag - 1), len(joined)))
+    return (keep,), Tracked(referred, out.rate, out.confidence, None, newest)
+
+
 class _Output:
     """One reported (quantity, source): its own tracker (the fused output, the motion
     stage's hop-by-hop tracking and fixed-lag smoothing use it; channels of a group
@@ -639,7 +808,7 @@ class _Output:
 
     def reset(self) -> None:
         self.tracker.reset()
-        self._held = []
+        self._held = ()
         self.report_state = self.report.initial_state()
 
     def track(self, block: HopBlock) -> "Tracked":
@@ -654,14 +823,10 @@ class _Output:
             return Tracked(block, rate, conf, frac, block.emitted_s)
         rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
-        self._held.append(block)
-        held = concat_blocks(self._held)
-        first_index = self.tracker.hops_seen - len(held)
-        pos = index - first_index
-        referred = take_hops(held, pos)
-        newest = held.emitted_s[pos + lag]
-        self._held = [take_hops(held, np.arange(max(0, len(held) - lag - 1), len(held)))]
-        return Tracked(referred, rate, conf, None, newest)
+        self._held, tracked = lagged_tracked(
+            self._held, block, tracker_mod.LagOutput(rate, conf, index),
+            self.tracker.hops_seen, lag)
+        return tracked
 
     def estimates(self, tracked: "Tracked", channel_rates: np.ndarray | None = None
                   ) -> list[Estimate]:
@@ -832,12 +997,26 @@ class RateMonitor:
         self.last_blocks: dict[tuple[str, str], HopBlock] = {}
         self.motion_spectra: dict[str, HopBlock] = {}
         # Motion stage (estimators.motion) for PPG heart-rate paths when the profile asks.
-        self.motion: dict[tuple[str, str], motion_mod.MotionSuppressor] = {}
+        self.motion: dict[tuple[str, str], motion_mod.MotionStage] = {}
+        self.motion_tracking: MotionTracking | None = None
         if motion_on:
             for key, path in self.paths.items():
                 if key[0] == "hr" and path.kind == "ppg":
-                    self.motion[key] = motion_mod.MotionSuppressor(
-                        hr, path.grid.band, path.geometry.n_fft, len(self.motion_paths))
+                    self.motion[key] = motion_mod.MotionStage(
+                        motion_mod.motion_params(hr, path.grid.band, path.geometry.n_fft,
+                                                 hr.hop_s), len(self.motion_paths))
+            first = next(iter(self.motion))
+            tracker = tracker_stage(hr, self.paths[first].grid.rates_per_min)
+            if hr.lag_hops:
+                tracker = tracker_mod.LagTrack(tracker.rates, tracker.params, tracker.power,
+                                               True, tracker.chance_factor, tracker.span)
+            self.motion_tracking = MotionTracking(
+                tuple(key for key in self.outputs if key[0] == "hr"), tuple(self.motion),
+                tuple(self.motion.values()), tracker,
+                tuple(self.motion_paths), hr.motion_trust,
+                int(round(hr.window_s / hr.hop_s)))
+        self._motion_state = (None if self.motion_tracking is None
+                              else self.motion_tracking.initial_state())
         # Channels of a group are tracked together (one compiled call) unless the motion
         # stage tracks them hop by hop or fixed-lag smoothing holds hops back.
         # (tracker -> report per channel: GroupTracking, then Parallel(Report, ...)).
@@ -857,8 +1036,6 @@ class RateMonitor:
                           for quantity in ("hr", "rr")}
         self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
         self._now_states: dict = {}  # (quantity, source) -> rate_now.NowState
-        self._references_missing = False  # motion references lost (exercise profiles)
-        self._untrusted_hops = 0  # hops left in which the motion stage trusts no track
         self._gap_s = gap_threshold_s(self.fs)
         self.last_gaps: list[Gap] = []
         self.pulse_breathing: dict[str, PulseBreathing] = {
@@ -898,12 +1075,11 @@ class RateMonitor:
                               for gid, chain in self.group_tracking.items()}
         for out in self.outputs.values():
             out.reset()
-        for suppressor in self.motion.values():
-            suppressor.reset()
+        if self.motion_tracking is not None:
+            self._motion_state = self.motion_tracking.initial_state()
         for breathing in self.pulse_breathing.values():
             breathing.reset()
         self._now_states = {}
-        self._references_missing, self._untrusted_hops = False, 0
 
     def reset(self) -> None:
         """As after construction: :meth:`restart`, and no timestamp seen (for a stream
@@ -925,22 +1101,6 @@ class RateMonitor:
                 f"timestamps.shape={timestamps.shape} must be ({samples.shape[0]},)")
         return samples, timestamps
 
-    def _consumer(self, key: tuple[str, str]) -> "_Output":
-        """The output whose track guides the motion stage of ``key``: the fused heart
-        rate when there is one (it is what is reported), else the channel's own."""
-        return self.outputs.get(("hr", FUSED), self.outputs[key])
-
-    def _expected_pulse(self, key: tuple[str, str]) -> np.ndarray | None:
-        """Where the guiding tracker expects the pulse before its next hop; None before
-        it has seen a hop."""
-        tracker = self._consumer(key).tracker
-        trust = self.profile.hr.motion_trust
-        if trust == "everywhere":
-            return np.ones((1, len(tracker.posterior)))
-        if trust == "nowhere" or tracker.hops_seen == 0 or self._untrusted_hops > 0:
-            return None
-        return motion_mod.expected_pulse(tracker.posterior, tracker.params.halfwidth_bins)
-
     def _report(self, keys: list, tracked: dict) -> list[Estimate]:
         """Estimates of the outputs ``keys`` from their tracker output (in the monitor's
         order: the fused output comes after the channels whose rates it reads)."""
@@ -954,55 +1114,14 @@ class RateMonitor:
         return estimates
 
     def track_with_motion(self, blocks: dict, motion_blocks: dict) -> tuple[list, dict]:
-        """The motion stage and the heart-rate trackers, hop by hop: the motion stage of
-        hop ``p`` trusts its canceller where the trackers' posteriors after hop ``p - 1``
-        expect the pulse (:func:`estimators.motion.expected_pulse`). Returns the
-        heart-rate estimates and the blocks as tracked (motion-suppressed spectra, fused
-        block)."""
-        refs = [motion_blocks[name].columns for name in self.motion_paths]
-        acc = np.stack(refs, axis=-1) if refs else None
-        hr_keys = [key for key in self.outputs if key[0] == "hr"]
-        n_hops = len(blocks[next(iter(self.motion))])
-        reference = (np.min([motion_blocks[name].integrity for name in self.motion_paths],
-                            axis=0) if self.motion_paths else np.zeros(n_hops))
-        window_hops = int(round(self.profile.hr.window_s / self.profile.hr.hop_s))
-        tracked, hops = {key: [] for key in hr_keys}, {key: [] for key in hr_keys}
-        for p in range(n_hops):
-            # References back after an absence: the track was made without them (it may
-            # sit on the cadence), so for one window the motion stage trusts no track,
-            # as at start-up.
-            if self.motion_paths and reference[p] < calibration_mod.REFERENCE_MISSING:
-                self._references_missing = True
-            elif self._references_missing:
-                self._references_missing = False
-                self._untrusted_hops = window_hops
-                for key in hr_keys:
-                    self.outputs[key].tracker.reset()
-            hop = {key: take_hops(blocks[key], slice(p, p + 1)) for key in hr_keys
-                   if key in blocks}
-            for key, suppressor in self.motion.items():
-                spectra, lines = suppressor.update(
-                    hop[key].columns, None if acc is None else acc[p:p + 1],
-                    self._expected_pulse(key))
-                # While the stage warms up again its output is not what the motion
-                # calibration was fitted on: the evidence says the references are
-                # missing (the blind family) until a window has passed.
-                hop[key] = dataclasses.replace(
-                    hop[key], spectra=spectra, magnitude=spectra, columns=None,
-                    motion_lines=lines, reference_integrity=(
-                        np.zeros(1) if self._untrusted_hops > 0 else reference[p:p + 1]))
-            if ("hr", FUSED) in self.outputs:
-                hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in hr_keys
-                                                  if key[1] != FUSED])
-            for key in hr_keys:
-                tracked[key].append(self.outputs[key].track(hop[key]))
-                hops[key].append(hop[key])
-            self._untrusted_hops = max(0, self._untrusted_hops - 1)
-        if n_hops == 0:
+        """The heart-rate outputs of the exercise path over their blocks (the
+        :class:`MotionTracking` stage, then each output's report): the heart-rate
+        estimates and the blocks as tracked (motion-suppressed spectra, fused block)."""
+        self._motion_state, (tracked, hops) = self.motion_tracking.step(
+            self._motion_state, ExerciseHops(blocks, motion_blocks))
+        if not tracked:
             return [], {}
-        estimates = self._report(hr_keys, {key: Tracked.concat(parts)
-                                           for key, parts in tracked.items()})
-        return estimates, {key: concat_blocks(parts) for key, parts in hops.items()}
+        return self._report(list(tracked), tracked), hops
 
     def update(self, samples, timestamps) -> list[Estimate]:
         """Feed a chunk ``(n, channels)`` with timestamps ``(n,)``; return the estimates

@@ -1,8 +1,8 @@
 """Replay throughput in x real time.
 
 The whole replay path as ``ridgewatch replay --speed max --no-log --display none`` runs
-it: a :class:`~streamer.sources.replay.RecordingSource` at ``speed=inf`` with 0.25 s
-chunks (the command line's chunk length) feeding a :class:`~streamer.runner.Runner`
+it: a :class:`~streamer.sources.replay.RecordingSource` at ``speed=inf`` with the
+command line's full-speed chunks (``streamer.cli.MAX_SPEED_CHUNK_S``) feeding a :class:`~streamer.runner.Runner`
 with no log, no outlet and no display. Channels are synthetic PPG (every one a
 heart-rate path; with two or more, the fused output as well), 1, 4 and 16 of them at
 125 and 500 Hz. x real time = stream seconds / wall seconds of ``Runner.run``; the
@@ -19,7 +19,13 @@ from bench import measure, section, synthetic_ppg
 
 CHANNEL_COUNTS = (1, 4, 16)
 RATES_HZ = (125.0, 500.0)
-CHUNK_S = 1.0
+def _chunk_s() -> float:
+    from streamer.cli import replay_chunk_s
+
+    return replay_chunk_s(float("inf"))
+
+
+CHUNK_S = _chunk_s()
 """The chunk length of a full-speed replay from the command line
 (``streamer.cli.replay_chunk_s``)."""
 TARGET_X = 2000.0

@@ -20,8 +20,9 @@ import pytest
 from estimators import motion as motion_mod
 from estimators import rate_now as now_mod
 from estimators.config import get_profile
-from estimators.monitor import (BandSpectra, ChannelGroup, GroupTracking, Report,
-                                RateMonitor, tracker_stage)
+from estimators.monitor import (ChannelGroup, ExerciseHops, GroupTracking, RateMonitor,
+                                Report, tracker_stage)
+from estimators.tracker import LagTrack, TrackInput
 from estimators.stage import Chain, Parallel
 from tests import signals
 from tests.stage_checks import assert_same, check_all, check_without_jit
@@ -29,6 +30,9 @@ from tests.stage_checks import assert_same, check_all, check_without_jit
 FS = 125.0
 SECONDS = 24.0
 """Long enough for the 8 s heart-rate window to fill and slide for 16 s (64 hops)."""
+EXERCISE_SECONDS = 40.0
+"""Room for the references to be lost, come back after a window, and be trusted again
+a window later."""
 BREATHING_SECONDS = 48.0
 """The breathing window is 32 s: 16 s of hops after it fills."""
 
@@ -166,14 +170,59 @@ def motion_stage():
     return motion_mod.MotionStage(params, 3), x
 
 
+def _exercise(n_ppg: int, lag_hops: int = 0):
+    """The exercise path's tracking stage of a monitor with ``n_ppg`` PPG channels and a
+    three-axis accelerometer, and its input: the accelerometer (which carries part of
+    the first PPG channel) is lost for 2 s, so the references go missing and come back
+    (trackers restart, the motion stage trusts no track for a window)."""
+    profile = get_profile("exercise-wrist")
+    if lag_hops:
+        profile = dataclasses.replace(profile, hr=dataclasses.replace(profile.hr,
+                                                                      lag_hops=lag_hops))
+    ppg, t = _signals("ppg", n_ppg, EXERCISE_SECONDS)
+    acc, _ = _signals("acc", 3, EXERCISE_SECONDS)
+    acc = acc + 0.3 * ppg[:, :1]
+    acc[int(9 * FS):int(11 * FS)] = np.nan
+    channels = ([(f"ppg{c}", "ppg") for c in range(n_ppg)]
+                + [(f"acc{a}", "acc") for a in range(3)])
+    monitor = RateMonitor(channels, FS, profile)
+
+    def blocks(gid, samples):
+        group = monitor.groups[gid]
+        grouped = group.transform.batch(group.spectrum.batch(group.front.batch((samples, t))))
+        return {name: grouped.channel(c) for c, name in enumerate(group.names)}
+
+    hr = {("hr", name): b for name, b in blocks(("hr", "ppg"), ppg).items()}
+    return monitor.motion_tracking, ExerciseHops(hr, blocks(("acc", "acc"), acc))
+
+
+def exercise_tracking_one_ppg():
+    return _exercise(1)
+
+
+def exercise_tracking_fused():
+    return _exercise(2)
+
+
+def exercise_tracking_lagged():
+    return _exercise(1, lag_hops=2)
+
+
 # ------------------------------------------------------------------ tracker, reports
 
 
 def tracker_ppg():
     blocks = _blocks("ppg", 3)
     stage = tracker_stage(HR, _group("ppg", 3).grid.rates_per_min, 3)
-    from estimators.tracker import TrackInput
     return stage, TrackInput(blocks.spectra, blocks.integrity, blocks.magnitude)
+
+
+def tracker_lagged():
+    blocks = _blocks("ppg", 1)
+    base = tracker_stage(HR, _group("ppg", 1).grid.rates_per_min, 1)
+    params = dataclasses.replace(base.params, lag_hops=3)
+    stage = LagTrack(base.rates, params, base.power, True, base.chance_factor, base.span)
+    return stage, TrackInput(blocks.spectra[0], blocks.integrity[0], blocks.magnitude[0])
 
 
 def group_tracking_ppg():
@@ -255,7 +304,9 @@ def breathing_path_belt():
 
 CASES = [front_end_ppg, front_end_ecg, front_end_resp, spectrum_ppg, spectrum_sharpened,
          spectrum_resp, transform_deshape, transform_plain, transform_sharpened,
-         transform_keeps_columns, motion_stage, tracker_ppg, group_tracking_ppg,
+         transform_keeps_columns, motion_stage, exercise_tracking_one_ppg,
+         exercise_tracking_fused, exercise_tracking_lagged, tracker_ppg, tracker_lagged,
+         group_tracking_ppg,
          report_heart_rate, report_fused, report_ecg, report_breathing,
          rate_now_heart_rate, channel_group_chain, heart_rate_path_ppg,
          heart_rate_path_ecg, breathing_path_belt]
@@ -267,9 +318,20 @@ def test_conformance(case, rng):
 
 
 @pytest.mark.parametrize("case", [front_end_ppg, tracker_ppg, heart_rate_path_ppg,
-                                  motion_stage], ids=lambda case: case.__name__)
+                                  motion_stage, exercise_tracking_fused],
+                         ids=lambda case: case.__name__)
 def test_conformance_without_jit(case):
     check_without_jit(__name__, case.__name__)
+
+
+def test_the_exercise_case_loses_and_regains_its_references():
+    stage, x = exercise_tracking_one_ppg()
+    state, _ = stage.step(stage.initial_state(), x)
+    reference = np.min([b.integrity for b in x.references.values()], axis=0)
+    assert reference.min() < 0.5 and reference[-1] > 0.9  # lost, then back
+    tracked, blocks = stage.batch(x)
+    marks = blocks[("hr", "ppg0")].reference_integrity
+    assert np.any(marks == 0.0) and marks[-1] > 0.9  # the blind stretch, then trusted
 
 
 def test_cases_are_not_empty():

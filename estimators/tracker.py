@@ -347,30 +347,23 @@ class RidgeTrack:
                              for i in range(3)))
 
     def _batch_channel(self, spectra, weights, readout):
-        n_bins = len(self.rates)
         if len(spectra) == 0:
             return np.empty(0), np.empty(0), np.empty(0)
-        halfwidth = float(self.params.halfwidth_bins)
-        rhythm = np.ones(len(spectra))
-        if self.check_rhythm:
-            _kernels.rhythm_scores(np.ascontiguousarray(spectra, dtype=np.float64),
-                                   np.ascontiguousarray(readout, dtype=np.float64),
-                                   self.offset_bins, halfwidth, self.chance_factor, self.span,
-                                   rhythm)
-        weights = np.clip(weights, 0.0, 1.0) * rhythm
-        _, posts = forward_step(initial_posterior(n_bins),
-                                emissions_from_spectra(spectra, self.power), weights,
-                                self.params)
-        rate, confidence = read_posterior(posts, self.rates, halfwidth, readout)
-        position = (rate - self.rates[0]) / self.step_per_min
-        concentration = np.zeros(len(rate))
+        # The general tracker without lag: rhythm score, emissions, forward filter and
+        # read-out in numpy (the same steps LagTrack takes).
+        plain = LagTrack(self.rates, dataclasses.replace(self.params, lag_hops=0),
+                         self.power, self.check_rhythm, self.chance_factor, self.span)
+        out = plain.batch(TrackInput(spectra, weights, readout))
+        n_bins, halfwidth = len(self.rates), float(self.params.halfwidth_bins)
+        position = (out.rate - self.rates[0]) / self.step_per_min
+        concentration = np.zeros(len(position))
         for p, centre in enumerate(position.tolist()):
             # A rate on the grid's first or last bin is a slope, not a peak: no rhythm.
             if 0 < int(round(centre)) < n_bins - 1:
                 concentration[p] = _kernels.harmonic_score(
                     np.ascontiguousarray(readout[p] ** 2), centre, self.offset_bins,
                     halfwidth, self.chance_factor, self.span)
-        return rate, confidence, concentration
+        return out.rate, out.confidence, concentration
 
     def split(self, x, bounds) -> list:
         return _split_hops(x, bounds)

@@ -438,7 +438,8 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
                          smoothing: dict | None = None,
                          channel_rates: np.ndarray | None = None,
                          calibrate: bool = True,
-                         filter_delay_s: np.ndarray | None = None) -> list[Estimate]:
+                         filter_delay_s: np.ndarray | None = None,
+                         calibrated=None) -> list[Estimate]:
     """Estimate records from tracker output aligned with ``block`` (same hops).
 
     ``concentration`` is the harmonic concentration score at each rate; computed here
@@ -456,7 +457,13 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     ``filter_delay_s`` (F,): the causal filters' group delay at each rate of
     ``rates_grid``; an estimate then describes its window centre minus that delay at
     its rate (at the median delay when it has no rate), so ``delay_s`` is honest. None
-    (zero-phase, offline): the window centre."""
+    (zero-phase, offline): the window centre.
+
+    ``calibrated(measures, raw_confidence)``, when given, stands in for
+    :func:`estimators.calibration.calibrated_confidence` and may fill the array it
+    returns later: the function then returns a function that builds the estimates once
+    it has (a group's reports calibrate all their channels in one call,
+    :class:`GroupReport`)."""
     step = rates_grid[1] - rates_grid[0]
     halfwidth = settings.confidence_halfwidth_per_min / step
     posterior_mass = np.asarray(confidence, dtype=np.float64)
@@ -491,7 +498,8 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
             np.ones(len(quality)) if block.reference_integrity is None
             else block.reference_integrity])
         if calibrate:
-            confidence = calibration_mod.calibrated_confidence(measures, confidence)
+            confidence = (calibration_mod.calibrated_confidence(measures, confidence)
+                          if calibrated is None else calibrated(measures, confidence))
         evidence = [tuple(row) for row in measures.tolist()]
     # The grid reaches the confidence half-width beyond the band, so that a rate on the
     # band's edge is a peak; such rates are shown at the edge (off by less than the
@@ -511,10 +519,15 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
         top = np.argmax(block.recent, axis=1)
         inner = (top > 0) & (top < block.recent.shape[1] - 1) & np.isfinite(shown)
         recent = np.where(inner, np.clip(rates_grid[top], lo, hi), np.nan)
-    return [Estimate(quantity, source, t, e, r, c, q, v, recent_rate_per_min=n)
-            for t, e, r, c, q, v, n in zip(
-                time_s.tolist(), emitted_s.tolist(), shown.tolist(),
-                np.asarray(confidence).tolist(), quality.tolist(), evidence, recent.tolist())]
+
+    def build() -> list[Estimate]:
+        return [Estimate(quantity, source, t, e, r, c, q, v, recent_rate_per_min=n)
+                for t, e, r, c, q, v, n in zip(
+                    time_s.tolist(), emitted_s.tolist(), shown.tolist(),
+                    np.asarray(confidence).tolist(), quality.tolist(), evidence,
+                    recent.tolist())]
+
+    return build() if calibrated is None else build
 
 
 @dataclass(frozen=True, eq=False)
@@ -536,21 +549,30 @@ class Report:
     def initial_state(self) -> dict:
         return {}
 
-    def step(self, state: dict, x) -> tuple[dict, list[Estimate]]:
+    def step(self, state: dict, x, calibrated=None) -> tuple[dict, list[Estimate]]:
+        """One step; with ``calibrated`` (see :func:`estimates_from_track`) the output is
+        a function that builds the estimates once ``calibrated`` has answered."""
         tracked, channel_rates = x
         state = {"last": state.get("last"), "jumps": dict(state.get("jumps", {}))}
         if len(tracked.rate) == 0:
-            return state, []
+            return state, (list if calibrated is not None else [])
         out = estimates_from_track(self.quantity, self.source, tracked.block, tracked.rate,
                                    tracked.confidence, self.rates, self.settings,
                                    tracked.emitted_s, tracked.concentration, state,
-                                   channel_rates, self.calibrate, self.filter_delay_s)
+                                   channel_rates, self.calibrate, self.filter_delay_s,
+                                   calibrated)
+        if calibrated is not None:
+            return state, lambda: self._breathing(out())
+        return state, self._breathing(out)
+
+    def _breathing(self, out: list[Estimate]) -> list[Estimate]:
+        """A respiration channel's confidence: P(within 2 breaths/min)."""
         if self.quantity == "rr":  # a respiration channel: P(within 2 breaths/min)
             conf = breathing_confidence.calibrated("resp", [e.confidence for e in out],
                                                    [e.quality for e in out])
             out = [dataclasses.replace(e, confidence=c) if e.has_rate else e
                    for e, c in zip(out, conf.tolist())]
-        return state, out
+        return out
 
     def batch(self, x) -> list[Estimate]:
         return self.step(self.initial_state(), x)[1]
@@ -564,6 +586,51 @@ class Report:
 
     def join(self, parts) -> list[Estimate]:
         return [e for part in parts for e in part]
+
+
+class _Deferred:
+    """Collects the calibration calls of several reports, answers them after one call
+    of :func:`estimators.calibration.calibrated_confidence` on all their rows."""
+
+    def __init__(self):
+        self.requests: list = []
+
+    def __call__(self, measures: np.ndarray, raw: np.ndarray) -> np.ndarray:
+        out = np.full(len(measures), np.nan)
+        self.requests.append((measures, np.asarray(raw, dtype=np.float64), out))
+        return out
+
+    def resolve(self) -> None:
+        if not self.requests:
+            return
+        calibrated = calibration_mod.calibrated_confidence(
+            np.concatenate([m for m, _, _ in self.requests]),
+            np.concatenate([r for _, r, _ in self.requests]))
+        a = 0
+        for measures, _, out in self.requests:
+            out[:] = calibrated[a:a + len(measures)]
+            a += len(measures)
+
+
+@dataclass(frozen=True)
+class GroupReport(Parallel):
+    """Stage: the :class:`Report` of each channel of a group side by side (as
+    :class:`~estimators.stage.Parallel`), their heart-rate confidences calibrated in one
+    call for all channels (the map works row by row, so the values are those of a call
+    per channel)."""
+
+    def step(self, state: tuple, x: tuple) -> tuple[tuple, tuple]:
+        deferred = _Deferred()
+        states, outputs = [], []
+        for report, s, item in zip(self.stages, state, x):
+            s, estimates = report.step(s, item, deferred)
+            states.append(s)
+            outputs.append(estimates)
+        deferred.resolve()
+        return tuple(states), tuple(build() for build in outputs)
+
+    def batch(self, x: tuple) -> tuple:
+        return self.step(self.initial_state(), x)[1]
 
 
 def tracker_stage(settings: RateSettings, grid_rates: np.ndarray,
@@ -1019,12 +1086,12 @@ class RateMonitor:
                               else self.motion_tracking.initial_state())
         # Channels of a group are tracked together (one compiled call) unless the motion
         # stage tracks them hop by hop or fixed-lag smoothing holds hops back.
-        # (tracker -> report per channel: GroupTracking, then Parallel(Report, ...)).
+        # (tracker -> report per channel: GroupTracking, then GroupReport).
         self.group_tracking: dict[tuple[str, str], Chain] = {
             gid: Chain((GroupTracking(tracker_stage(group.settings, group.grid.rates_per_min,
                                                     len(group.names))),
-                        Parallel(tuple(self.outputs[(gid[0], name)].report
-                                       for name in group.names))))
+                        GroupReport(tuple(self.outputs[(gid[0], name)].report
+                                          for name in group.names))))
             for gid, group in self.groups.items()
             if gid[0] != "acc" and group.settings.lag_hops == 0
             and not (self.motion and gid[0] == "hr")}

@@ -20,8 +20,8 @@ import pytest
 from estimators import motion as motion_mod
 from estimators import rate_now as now_mod
 from estimators.config import get_profile
-from estimators.monitor import (ChannelGroup, ExerciseHops, GroupTracking, RateMonitor,
-                                Report, tracker_stage)
+from estimators.monitor import (ChannelGroup, ExerciseHops, GroupReport, GroupTracking,
+                                RateMonitor, Report, tracker_stage)
 from estimators.tracker import LagTrack, TrackInput
 from estimators.stage import Chain, Parallel
 from tests import signals
@@ -264,6 +264,16 @@ def report_breathing():
     return stage, tracking.batch(_blocks("resp", 1, RR))[0]
 
 
+def group_report_ppg():
+    """The reports of three channels, calibrated in one call."""
+    group = _group("ppg", 3)
+    grid = group.grid.rates_per_min
+    delay = group.group_delay_s(grid / 60.0)
+    reports = tuple(Report("hr", name, grid, HR, True, delay) for name in group.names)
+    tracking = GroupTracking(tracker_stage(HR, grid, 3))
+    return GroupReport(reports), tracking.batch(_blocks("ppg", 3))
+
+
 def rate_now_heart_rate():
     stage, x = report_heart_rate()
     return now_mod.RateNow(now_mod.HEART), stage.batch(x)
@@ -274,7 +284,7 @@ def rate_now_heart_rate():
 
 def _path(kind: str, n_channels: int, settings, calibrate: bool) -> Chain:
     """A whole path of ``n_channels`` channels: front end, STFT, transform, one tracker
-    call, a report and the rate now per channel."""
+    call, the channels' reports (one calibration call) and the rate now per channel."""
     group = _group(kind, n_channels, settings)
     grid = group.grid.rates_per_min
     delay = group.group_delay_s(grid / 60.0)
@@ -283,7 +293,7 @@ def _path(kind: str, n_channels: int, settings, calibrate: bool) -> Chain:
     now = now_mod.RateNow(now_mod.params_for(settings.quantity))
     return Chain((group.front, group.spectrum, group.transform,
                   GroupTracking(tracker_stage(settings, grid, n_channels)),
-                  Parallel(reports), Parallel((now,) * n_channels)))
+                  GroupReport(reports), Parallel((now,) * n_channels)))
 
 
 def channel_group_chain():
@@ -307,7 +317,7 @@ CASES = [front_end_ppg, front_end_ecg, front_end_resp, spectrum_ppg, spectrum_sh
          transform_keeps_columns, motion_stage, exercise_tracking_one_ppg,
          exercise_tracking_fused, exercise_tracking_lagged, tracker_ppg, tracker_lagged,
          group_tracking_ppg,
-         report_heart_rate, report_fused, report_ecg, report_breathing,
+         report_heart_rate, report_fused, report_ecg, report_breathing, group_report_ppg,
          rate_now_heart_rate, channel_group_chain, heart_rate_path_ppg,
          heart_rate_path_ecg, breathing_path_belt]
 

@@ -106,7 +106,7 @@ def deshape(magnitude: np.ndarray, grid: DeshapeGrid, gamma: float) -> np.ndarra
     """
     magnitude = np.atleast_2d(magnitude)
     soft = magnitude ** gamma
-    cepstrum = fft_rows(np.fft.irfft, soft, grid.n_fft, np.empty((len(soft), grid.n_fft)))
+    cepstrum = fft_rows(np.fft.irfft, soft, grid.n_fft)
     lo = cepstrum[:, grid.q_low]
     hi = cepstrum[:, grid.q_low + 1]
     u = (1.0 - grid.q_weight) * lo + grid.q_weight * hi

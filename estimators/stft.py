@@ -120,13 +120,19 @@ transforms on the development machine). Each row is its own transform, so the
 grouping never changes a value."""
 
 
-def fft_rows(transform, x: np.ndarray, n: int, out: np.ndarray) -> np.ndarray:
-    """``out[...] = transform(x, n, axis=-1)`` (``np.fft.rfft`` or ``irfft``) in calls of
-    at most :data:`FFT_ROWS` rows; ``x`` and ``out`` have any leading axes."""
-    rows, out_rows = x.reshape(-1, x.shape[-1]), out.reshape(-1, out.shape[-1])
-    for a in range(0, len(rows), FFT_ROWS):
-        out_rows[a:a + FFT_ROWS] = transform(rows[a:a + FFT_ROWS], n, axis=-1)
-    return out
+def fft_rows(transform, x: np.ndarray, n: int) -> np.ndarray:
+    """``transform(x, n, axis=-1)`` (``np.fft.rfft`` or ``irfft``) in calls of at most
+    :data:`FFT_ROWS` rows; ``x`` has any leading axes."""
+    n_rows = x.size // x.shape[-1] if x.shape[-1] else 0
+    if n_rows <= FFT_ROWS:
+        return transform(x, n, axis=-1)
+    rows = x.reshape(n_rows, x.shape[-1])
+    first = transform(rows[:FFT_ROWS], n, axis=-1)
+    out = np.empty((n_rows, first.shape[1]), dtype=first.dtype)
+    out[:FFT_ROWS] = first
+    for a in range(FFT_ROWS, n_rows, FFT_ROWS):
+        out[a:a + FFT_ROWS] = transform(rows[a:a + FFT_ROWS], n, axis=-1)
+    return out.reshape(x.shape[:-1] + (first.shape[1],))
 
 
 @functools.lru_cache(maxsize=64)
@@ -225,14 +231,20 @@ class SpectrumStage:
             values = np.concatenate((state.values, values), axis=1)
             times = np.concatenate((state.times, times))
             aux = np.concatenate((state.aux, aux), axis=2)
+        else:  # the state must not hold views of the caller's arrays
+            values, times, aux = values.copy(), times.copy(), aux.copy()
         before = state.count
         count = before + len(x.timestamps)
         counts = hop_counts(before, count, self.hop_samples)
         counts = counts[counts >= self.min_window_samples]
         offset = count - values.shape[1]  # samples before index 0 of the buffer
-        keep = min(values.shape[1], self.window_samples + 1)
-        new = SpectrumState(count, values[:, -keep:].copy() if keep else values[:, :0].copy(),
-                            times[len(times) - keep:].copy(), aux[:, :, aux.shape[2] - keep:].copy())
+        n_buffer = values.shape[1]
+        keep = min(n_buffer, self.window_samples + 1)
+        # The buffer was made here (concatenated), so the new state may hold views of
+        # it; a copy only when most of it would otherwise be kept alive for nothing.
+        tail = ((lambda a: a[..., n_buffer - keep:].copy()) if n_buffer > 2 * keep + 64
+                else (lambda a: a[..., n_buffer - keep:]))
+        new = SpectrumState(count, tail(values), tail(times), tail(aux))
         lengths = np.minimum(self.window_samples, counts)
         return new, self.columns(values, times, aux, counts - offset, lengths, counts)
 
@@ -268,30 +280,40 @@ class SpectrumStage:
         ``lengths`` samples, at sample counts ``counts``: one FFT call per frame length
         for every channel's frames."""
         n_channels, n_bins, n_hops = len(values), self.n_fft // 2 + 1, len(counts)
-        spectra = np.empty((n_channels, n_hops, n_bins), dtype=np.complex128)
-        spectra_dw = np.empty_like(spectra) if self.with_derivative else None
-        recent = np.empty_like(spectra) if self.recent_samples else None
-        rfft = np.fft.rfft
-        for length in np.unique(lengths).tolist():
-            idx = np.flatnonzero(lengths == length)
+        parts = {"spectra": [], "spectra_dw": [], "recent": []}
+        # Frame lengths never decrease with the hop (the window grows, then stays), so
+        # hops of one length are consecutive: one run each.
+        cuts = ([0, n_hops] if n_hops < 2 or lengths[0] == lengths[-1] else
+                [0, *(np.flatnonzero(np.diff(lengths)) + 1).tolist(), n_hops])
+        for a, b in zip(cuts[:-1], cuts[1:]):
+            if b == a:
+                continue
+            length = int(lengths[a])
             w, dw = _window(length)
-            frames = values[:, (ends[idx] - length)[:, None] + np.arange(length)]
-            whole = len(idx) == n_hops  # write in place, not through a fancy index
-            part = (lambda a: a if whole else np.empty((n_channels, len(idx), n_bins),
-                                                         dtype=np.complex128))
-            target = fft_rows(rfft, frames * w, self.n_fft, part(spectra))
-            if not whole:
-                spectra[:, idx] = target
-            if spectra_dw is not None:
-                target = fft_rows(rfft, frames * dw, self.n_fft, part(spectra_dw))
-                if not whole:
-                    spectra_dw[:, idx] = target
-            if recent is not None:
+            if b - a == 1:  # the live case: one hop, a view of the buffer
+                end = int(ends[a])
+                frames = values[:, None, end - length:end]
+            else:
+                frames = values[:, (ends[a:b] - length)[:, None] + np.arange(length)]
+            parts["spectra"].append(fft_rows(np.fft.rfft, frames * w, self.n_fft))
+            if self.with_derivative:
+                parts["spectra_dw"].append(fft_rows(np.fft.rfft, frames * dw, self.n_fft))
+            if self.recent_samples:
                 r = min(self.recent_samples, length)
-                target = fft_rows(rfft, frames[:, :, length - r:] * _window(r)[0], self.n_fft,
-                                  part(recent))
-                if not whole:
-                    recent[:, idx] = target
+                parts["recent"].append(fft_rows(np.fft.rfft, frames[:, :, length - r:]
+                                                * _window(r)[0], self.n_fft))
+
+        def joined(name, wanted):
+            if not wanted:
+                return None
+            if not parts[name]:
+                return np.empty((n_channels, 0, n_bins), dtype=np.complex128)
+            return (parts[name][0] if len(parts[name]) == 1
+                    else np.concatenate(parts[name], axis=1))
+
+        spectra = joined("spectra", True)
+        spectra_dw = joined("spectra_dw", self.with_derivative)
+        recent = joined("recent", self.recent_samples)
         starts = ends - lengths
         first = counts - lengths
         if n_hops:

@@ -121,18 +121,18 @@ grouping never changes a value."""
 
 
 def fft_rows(transform, x: np.ndarray, n: int) -> np.ndarray:
-    """``transform(x, n, axis=-1)`` (``np.fft.rfft`` or ``irfft``) in calls of at most
-    :data:`FFT_ROWS` rows; ``x`` has any leading axes."""
+    """``transform(x, n, axis=-1)`` (``np.fft.rfft`` or ``np.fft.irfft``) in calls of at
+    most :data:`FFT_ROWS` rows written in place; ``x`` has any leading axes."""
     n_rows = x.size // x.shape[-1] if x.shape[-1] else 0
     if n_rows <= FFT_ROWS:
         return transform(x, n, axis=-1)
     rows = x.reshape(n_rows, x.shape[-1])
-    first = transform(rows[:FFT_ROWS], n, axis=-1)
-    out = np.empty((n_rows, first.shape[1]), dtype=first.dtype)
-    out[:FFT_ROWS] = first
-    for a in range(FFT_ROWS, n_rows, FFT_ROWS):
-        out[a:a + FFT_ROWS] = transform(rows[a:a + FFT_ROWS], n, axis=-1)
-    return out.reshape(x.shape[:-1] + (first.shape[1],))
+    complex_out = transform is np.fft.rfft
+    out = np.empty((n_rows, n // 2 + 1 if complex_out else n),
+                   dtype=np.complex128 if complex_out else np.float64)
+    for a in range(0, n_rows, FFT_ROWS):
+        transform(rows[a:a + FFT_ROWS], n, axis=-1, out=out[a:a + FFT_ROWS])
+    return out.reshape(x.shape[:-1] + out.shape[-1:])
 
 
 @functools.lru_cache(maxsize=64)

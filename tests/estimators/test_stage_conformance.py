@@ -344,6 +344,16 @@ def test_the_exercise_case_loses_and_regains_its_references():
     assert np.any(marks == 0.0) and marks[-1] > 0.9  # the blind stretch, then trusted
 
 
+def test_rate_now_changes_only_the_rate_now_fields():
+    """The rate-now stage builds new records field by field: every other field is the
+    input's (a field added to the record and forgotten there would fail here)."""
+    stage, x = rate_now_heart_rate()
+    for before, after in zip(x, stage.batch(x)):
+        assert_same(after, dataclasses.replace(before, rate_now_per_min=after.rate_now_per_min,
+                                               now_confidence=after.now_confidence))
+        assert np.isnan(before.rate_now_per_min)
+
+
 def test_cases_are_not_empty():
     # A case whose input gives no hop would pass every check vacuously.
     for case in (heart_rate_path_ppg, heart_rate_path_ecg, breathing_path_belt):

@@ -620,6 +620,9 @@ class GroupReport(Parallel):
     per channel)."""
 
     def step(self, state: tuple, x: tuple) -> tuple[tuple, tuple]:
+        if len(self.stages) == 1:  # one channel: nothing to gather
+            s, estimates = self.stages[0].step(state[0], x[0])
+            return (s,), (estimates,)
         deferred = _Deferred()
         states, outputs = [], []
         for report, s, item in zip(self.stages, state, x):

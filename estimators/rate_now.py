@@ -336,6 +336,8 @@ class RateNow:
         return NowState()
 
     def step(self, state: NowState, estimates: list) -> tuple[NowState, list]:
+        if not estimates:  # nothing to advance: the state as it was (never changed)
+            return state, []
         state = state.copy()
         out = []
         for e in estimates:

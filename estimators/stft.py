@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -107,6 +108,11 @@ def hop_counts(count_before: int, count_after: int, hop_samples: float) -> np.nd
     """Analysis-sample counts ``c_p`` with ``count_before < c_p <= count_after``."""
     p_lo = int(np.floor(count_before / hop_samples)) - 1
     p_hi = int(np.floor(count_after / hop_samples)) + 2
+    if p_hi - p_lo < 8:  # a live step: a hop or two, cheaper without arrays
+        found = [c for c in (math.floor(p * hop_samples + 1e-9)
+                             for p in range(max(p_lo, 1), p_hi + 1))
+                 if count_before < c <= count_after]
+        return np.array(found, dtype=np.int64)
     p = np.arange(max(p_lo, 1), p_hi + 1)
     c = np.floor(p * hop_samples + 1e-9).astype(np.int64)
     return c[(c > count_before) & (c <= count_after)]

@@ -344,6 +344,22 @@ def test_the_exercise_case_loses_and_regains_its_references():
     assert np.any(marks == 0.0) and marks[-1] > 0.9  # the blind stretch, then trusted
 
 
+def test_lagged_exercise_outputs_keep_their_motion_lines():
+    """With fixed-lag smoothing each output refers to an earlier hop, and carries that
+    hop's motion-line marks (the reports lower the confidence of a rate on a line)."""
+    stage, x = exercise_tracking_lagged()
+    tracked, blocks = stage.batch(x)
+    lagged, hops = tracked[("hr", "ppg0")], blocks[("hr", "ppg0")]
+    # Two hops wait for their smoothing at the start, and again after the trackers
+    # restart when the references come back.
+    assert len(lagged) == len(x) - 4
+    at = np.searchsorted(hops.time_s, lagged.block.time_s)
+    np.testing.assert_array_equal(hops.time_s[at], lagged.block.time_s)
+    assert np.all(np.diff(at) >= 1) and at[-1] == len(x) - 3
+    np.testing.assert_array_equal(lagged.block.motion_lines, hops.motion_lines[at])
+    assert lagged.block.motion_lines.max() > 0.0  # some lines are marked: a real check
+
+
 def test_rate_now_changes_only_the_rate_now_fields():
     """The rate-now stage builds new records field by field: every other field is the
     input's (a field added to the record and forgotten there would fail here)."""

@@ -357,7 +357,7 @@ def test_lagged_exercise_outputs_keep_their_motion_lines():
     np.testing.assert_array_equal(hops.time_s[at], lagged.block.time_s)
     assert np.all(np.diff(at) >= 1) and at[-1] == len(x) - 3
     np.testing.assert_array_equal(lagged.block.motion_lines, hops.motion_lines[at])
-    assert lagged.block.motion_lines.max() > 0.0  # some lines are marked: a real check
+    assert lagged.block.motion_lines.max() > 0.0  # the accelerometer marks some lines
 
 
 def test_rate_now_changes_only_the_rate_now_fields():

@@ -962,7 +962,8 @@ def track_ridges(spectra, integrity, alpha, transition, mix, power, floor, halfw
                 rel = spectra[p, c, f] / peak if peak > 0.0 else 0.0
                 if not np.isfinite(rel):
                     rel = 0.0
-                e = floor + rel ** power
+                # A square is exact either way (numpy squares for a power of 2 too).
+                e = floor + (rel * rel if power == 2.0 else rel ** power)
                 if w != 1.0:
                     e = e ** w
                 v = prior[f] * e
@@ -1105,3 +1106,67 @@ def fuse_rates(rate, confidence, quality, groups, group_sizes, agreement, min_ag
         if best_score >= min_support:
             out_rate[p] = mean
             out_confidence[p] = min(max(conf / size * share, 0.0), 1.0)
+
+
+@kernel
+def interp_point(x, xp, fp):
+    """``numpy.interp(x, xp, fp)`` for one value, the same arithmetic: the end values
+    outside ``xp``, the knot's own value on a knot, else ``slope (x - xp[j]) + fp[j]``
+    (from the right knot when that is not finite)."""
+    n = xp.shape[0]
+    if n == 1:
+        return fp[0]
+    if np.isnan(x):
+        return x
+    if x < xp[0]:
+        return fp[0]
+    if x > xp[n - 1]:
+        return fp[n - 1]
+    lo = 0
+    hi = n  # the largest j with xp[j] <= x
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if xp[mid] <= x:
+            lo = mid
+        else:
+            hi = mid
+    j = lo
+    if j == n - 1 or xp[j] == x:
+        return fp[j]
+    slope = (fp[j + 1] - fp[j]) / (xp[j + 1] - xp[j])
+    value = slope * (x - xp[j]) + fp[j]
+    if np.isnan(value):
+        value = slope * (x - xp[j + 1]) + fp[j + 1]
+        if np.isnan(value) and fp[j] == fp[j + 1]:
+            value = fp[j]
+    return value
+
+
+@kernel
+def calibrate_breathing(raw, quality, centre, scale, beta, knots_score, knots_prob, low, high,
+                        prob_floor, prob_ceil, out):
+    """The breathing confidence map of one kind over several estimates (the compiled
+    twin of :func:`estimators.breathing_confidence.calibrated` with a model for the
+    kind): the design ``(logit clip(raw, 1e-3, 1 - 1e-3), quality)`` (non-finite as 0)
+    clipped to ``[low, high]``, the score ``beta[0] + ((x - centre) / scale) . beta[1:]``,
+    its isotonic read-out (:func:`interp_point` on the knots) clipped to ``[prob_floor,
+    prob_ceil]``; a raw confidence of 0 or less, or a non-finite probability, keeps the
+    raw value."""
+    for i in range(raw.shape[0]):
+        r = raw[i]
+        if not r > 0.0:
+            out[i] = r
+            continue
+        c = r if np.isfinite(r) else 0.0
+        c = min(max(c, 1e-3), 1.0 - 1e-3)
+        q = quality[i]
+        if np.isnan(q):
+            q = 0.0
+        elif np.isinf(q):
+            q = 1.7976931348623157e308 if q > 0 else -1.7976931348623157e308
+        x0 = min(max(np.log(c / (1.0 - c)), low[0]), high[0])
+        x1 = min(max(q, low[1]), high[1])
+        score = beta[0] + ((x0 - centre[0]) / scale[0] * beta[1]
+                           + (x1 - centre[1]) / scale[1] * beta[2])
+        prob = min(max(interp_point(score, knots_score, knots_prob), prob_floor), prob_ceil)
+        out[i] = prob if np.isfinite(prob) else r

@@ -49,7 +49,7 @@ each speaking the stage protocol of :mod:`estimators.stage` (frozen parameters,
 
 Every compiled step (``estimators._kernels``: ``resample_chunk``,
 ``modulation_frames``, ``shape_modulation_spectra``, ``track_ridges``,
-``modulation_quality``, ``fuse_rates``) keeps its plain path (``RIDGEWATCH_NO_JIT=1``),
+``modulation_quality``, ``fuse_rates``, ``calibrate_breathing``) keeps its plain path (``RIDGEWATCH_NO_JIT=1``),
 and every stage's ``batch`` is the plain numpy twin it is tested against
 (``tests/estimators/test_stage_conformance_breathing.py``).
 
@@ -73,6 +73,7 @@ from estimators import breathing_confidence
 from estimators import deshape as deshape_mod
 from estimators import quality as quality_mod
 from estimators import tracker as tracker_mod
+from estimators.calibration import PROB_CEIL, PROB_FLOOR
 from estimators.config import RateSettings
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
@@ -1154,14 +1155,17 @@ class ModulationFusion:
     ``settings.min_quality`` are withheld, the rest fused (:func:`fuse_modulations`;
     step compiled, :func:`estimators._kernels.fuse_rates`), the fused confidence mapped
     to the probability of being within 2 breaths/min
-    (:mod:`estimators.breathing_confidence`, map of ``kind``) and ``time_s`` moved back
+    (:mod:`estimators.breathing_confidence`, map of ``kind``; compiled in the step,
+    :func:`estimators._kernels.calibrate_breathing`) and ``time_s`` moved back
     by the causal filters' group delay at the rate (``filter_delay_s`` on the grid
-    ``rates``; at the grid's median rate when there is none). No state."""
+    ``rates``; at ``fallback_rate_per_min``, the grid's median rate, when there is
+    none). No state."""
 
     kind: str
     settings: RateSettings
     rates: np.ndarray
     filter_delay_s: np.ndarray
+    fallback_rate_per_min: float
 
     def initial_state(self) -> None:
         return None
@@ -1170,9 +1174,18 @@ class ModulationFusion:
         return np.where((x.quality >= self.settings.min_quality) & np.isfinite(x.rate),
                         x.rate, np.nan)
 
-    def _finish(self, x: RatedModulations, shown, rate, confidence, quality) -> BreathingRates:
-        confidence = breathing_confidence.calibrated(self.kind, confidence, quality)
-        at = np.where(np.isfinite(rate), rate, np.median(self.rates))
+    def _finish(self, x: RatedModulations, shown, rate, confidence, quality,
+                compiled: bool) -> BreathingRates:
+        chosen = breathing_confidence.MAP  # read now: a caller may swap the map
+        model = None if chosen is None else chosen.models.get(self.kind)
+        if compiled and model is not None and len(confidence):
+            raw, confidence = confidence, np.empty(len(confidence))
+            _kernels.calibrate_breathing(raw, quality, model.centre, model.scale, model.beta,
+                                         model.knots_score, model.knots_prob, model.low,
+                                         model.high, PROB_FLOOR, PROB_CEIL, confidence)
+        else:
+            confidence = breathing_confidence.calibrated(self.kind, confidence, quality)
+        at = np.where(np.isfinite(rate), rate, self.fallback_rate_per_min)
         time_s = x.time_s - np.interp(at, self.rates, self.filter_delay_s)
         return BreathingRates(time_s, x.emitted_s, rate, confidence, quality, shown,
                               x.confidence, x.quality)
@@ -1189,14 +1202,14 @@ class ModulationFusion:
                                 _GROUP_COLUMNS, _GROUP_SIZES, float(s.agreement_per_min),
                                 int(s.min_agreeing), float(s.min_support),
                                 float(s.fusion_quality_power), rate, confidence, quality)
-        return state, self._finish(x, shown, rate, confidence, quality)
+        return state, self._finish(x, shown, rate, confidence, quality, compiled=True)
 
     def batch(self, x: RatedModulations) -> BreathingRates:
         shown = self._shown(x)
         s = self.settings
         return self._finish(x, shown, *fuse_modulations(
             shown, x.confidence, x.quality, s.agreement_per_min, s.min_agreeing,
-            s.min_support, s.fusion_quality_power))
+            s.min_support, s.fusion_quality_power), compiled=False)
 
     def split(self, x: RatedModulations, bounds) -> list:
         return _split_by_hops(x, bounds)
@@ -1224,7 +1237,8 @@ def pulse_breathing_chain(kind: str, settings: RateSettings, fs: float) -> Chain
                                      float(settings.emission_power)),
                   ModulationQuality(rates, settings.confidence_halfwidth_per_min
                                     / (rates[1] - rates[0])),
-                  ModulationFusion(kind, settings, rates, spectra.filter_delay_s)))
+                  ModulationFusion(kind, settings, rates, spectra.filter_delay_s,
+                                   float(np.median(rates)))))
 
 
 class PulseBreathing:

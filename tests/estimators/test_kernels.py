@@ -41,9 +41,9 @@ TESTED_KERNELS = {"forward_filter", "backward_pass", "backward_mass", "viterbi",
                   "normalise_or_prior", "spectral_margins", "kth_largest", "limit_sample",
                   "limit_chunk", "resample_chunk", "modulation_frames",
                   "shape_modulation_spectra", "track_ridges", "modulation_quality",
-                  "fuse_rates"}
+                  "fuse_rates", "interp_point", "calibrate_breathing"}
 """Kernels with a test here (the breathing-from-the-pulse kernels, ``resample_chunk`` to
-``fuse_rates``, in test_stage_conformance_breathing.py; ``cancel_columns`` in test_motion.py,
+``calibrate_breathing`` and ``interp_point``, in test_stage_conformance_breathing.py; ``cancel_columns`` in test_motion.py,
 ``harmonic_score`` in test_quality.py, ``spectral_margins`` in test_calibration.py,
 ``track_block`` also
 through ``RidgeTracker.track`` in test_tracker.py)."""

@@ -19,8 +19,10 @@ import numpy as np
 import pytest
 
 from estimators import _kernels
+from estimators import breathing_confidence as B
 from estimators import respiration as R
 from estimators import tracker as tracker_mod
+from estimators.calibration import PROB_CEIL, PROB_FLOOR
 from estimators.config import BREATHING_FROM_PULSE
 from estimators.stage import join_arrays, run_chunks, split_arrays
 from tests.estimators.test_respiration import FS, synthetic_pulse
@@ -172,7 +174,7 @@ def test_the_path_without_jit_equals_the_compiled_path(name):
 
 
 BREATHING_KERNELS = ("resample_chunk", "modulation_frames", "shape_modulation_spectra",
-                     "track_ridges", "modulation_quality", "fuse_rates")
+                     "track_ridges", "modulation_quality", "fuse_rates", "calibrate_breathing")
 
 
 def test_each_kernel_equals_its_plain_python_path(monkeypatch):
@@ -281,3 +283,40 @@ def test_splitting_beats_by_when_they_are_decided():
     assert_same(R.PulseBeats.concat(parts), x)
     # The stage helpers for tuples of arrays cut and join as the records do.
     assert_same(join_arrays(split_arrays(_record("ppg"), [10, 20])), _record("ppg"))
+
+
+def test_interp_point_is_numpy_interp_on_knots_ends_ties_and_nan(rng):
+    xp = np.array([-2.0, -1.0, -1.0, 0.5, 3.0])  # a repeated knot, as isotonic fits give
+    fp = np.array([0.1, 0.2, 0.4, 0.4, 0.9])
+    x = np.concatenate([rng.uniform(-4, 5, 500), xp, [np.nan, -np.inf, np.inf]])
+    for kernel in (_kernels.interp_point, _kernels.interp_point.py_func):
+        got = np.array([kernel(v, xp, fp) for v in x])
+        np.testing.assert_array_equal(got, np.interp(x, xp, fp))
+        assert kernel(0.3, xp[:1], fp[:1]) == np.interp(0.3, xp[:1], fp[:1])
+
+
+def test_calibration_kernel_equals_the_shipped_map(rng):
+    raw = rng.choice([0.0, -0.1, 1e-4, 0.3, 0.7, 0.9999, 1.0, np.nan], size=400)
+    raw[::3] = rng.uniform(0, 1, len(raw[::3]))
+    quality = rng.uniform(-0.2, 1.2, size=400)
+    quality[::17] = np.nan
+    for kind in B.KINDS:
+        model = B.MAP.models[kind]
+        expected = B.calibrated(kind, raw, quality)
+        for kernel in (_kernels.calibrate_breathing, _kernels.calibrate_breathing.py_func):
+            out = np.empty(len(raw))
+            kernel(raw, quality, model.centre, model.scale, model.beta, model.knots_score,
+                   model.knots_prob, model.low, model.high, PROB_FLOOR, PROB_CEIL, out)
+            np.testing.assert_allclose(out, expected, rtol=1e-12, atol=1e-15, equal_nan=True)
+
+
+def test_the_fusion_stage_reads_the_map_in_force(monkeypatch):
+    stage, x = fusion_case()
+    monkeypatch.setattr(B, "MAP", None)  # no map: the raw confidence, in step and batch
+    _, stepped = stage.step(None, x)
+    assert_same(stepped, stage.batch(x))
+    raw = R.fuse_modulations(stepped.modulation_rate, x.confidence, x.quality,
+                             stage.settings.agreement_per_min, stage.settings.min_agreeing,
+                             stage.settings.min_support,
+                             stage.settings.fusion_quality_power)[1]
+    np.testing.assert_allclose(stepped.confidence, raw, rtol=1e-12)

@@ -79,7 +79,7 @@ from estimators.errors import ParameterError
 from estimators.estimate import Estimate
 from estimators.preprocess import (MAX_ABS, NO_LIMIT, chain_group_delay_s, design_chain,
                                    initial_state, preprocess_batch)
-from estimators.stage import Chain, join_arrays, split_arrays
+from estimators.stage import Chain, split_arrays
 from estimators.stft import analysis_window, batch_hop_count, gather_hops, stft_blocks
 
 # Beat detection lives in estimators.beats; its names stay importable from here.

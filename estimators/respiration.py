@@ -63,7 +63,7 @@ analysis sample, ``p`` hop, ``f`` frequency bin, ``i`` beat.
 
 from __future__ import annotations
 
-import dataclasses
+import copy
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -160,16 +160,14 @@ class ModulationSamples:
 
 
 def _copy_state(state):
-    """A copy of a dataclass state with its array and list fields copied too: what a
+    """A copy of a (dataclass) state with its array and list fields copied too: what a
     pure step hands to a function that updates its state in place."""
-    changes = {}
-    for field in dataclasses.fields(state):
-        value = getattr(state, field.name)
-        if isinstance(value, np.ndarray):
-            changes[field.name] = value.copy()
-        elif isinstance(value, list):
-            changes[field.name] = list(value)
-    return replace(state, **changes)
+    new = copy.copy(state)
+    fields = new.__dict__
+    for name, value in fields.items():
+        if isinstance(value, (np.ndarray, list)):
+            fields[name] = value.copy()
+    return new
 
 
 # --------------------------------------------------------------------- beats

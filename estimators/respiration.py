@@ -49,9 +49,9 @@ each speaking the stage protocol of :mod:`estimators.stage` (frozen parameters,
 
 Every compiled step (``estimators._kernels``: ``resample_chunk``,
 ``modulation_frames``, ``shape_modulation_spectra``, ``track_ridges``,
-``modulation_quality``, ``fuse_rates``, ``calibrate_breathing``) keeps its plain path (``RIDGEWATCH_NO_JIT=1``),
-and every stage's ``batch`` is the plain numpy twin it is tested against
-(``tests/estimators/test_stage_conformance_breathing.py``).
+``modulation_quality``, ``fuse_rates``, ``calibrate_breathing``) keeps its plain path
+(``RIDGEWATCH_NO_JIT=1``), and every stage's ``batch`` is the plain numpy twin it is
+tested against (``tests/estimators/test_stage_conformance_breathing.py``).
 
 :class:`PulseBreathing` owns the chain's state for one channel (``update(x, t) ->
 list[Estimate]``), and :meth:`PulseBreathing.offline` is the zero-phase twin with
@@ -1279,7 +1279,7 @@ class PulseBreathing:
     def __init__(self, name: str, kind: str, settings: RateSettings, fs: float):
         self.name, self.kind, self.settings = name, kind, settings
         self.chain = pulse_breathing_chain(kind, settings, fs)
-        beats, resampling, spectra, self.trackers, self.quality, self.fusion = \
+        beats, resampling, spectra, self.tracker_stage, self.quality_stage, self.fusion_stage = \
             self.chain.stages
         self.beat_params, self.decimation = beats.params, resampling.decimation
         self.bank = ModulationBank(settings, spectra.fs_analysis, spectra)
@@ -1321,7 +1321,7 @@ class PulseBreathing:
         """Rate, confidence and quality (P, 3) per modulation of a whole record's hops
         from fresh trackers (the live state is not touched; without lag equal to
         :meth:`update` over the same record). The fusion's inputs, for tuning it."""
-        rated = self.quality.batch(self.trackers.batch(hops))
+        rated = self.quality_stage.batch(self.tracker_stage.batch(hops))
         return rated.rate, rated.confidence, rated.quality
 
     def hops_batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> ModulationHops:
@@ -1346,12 +1346,12 @@ class PulseBreathing:
         hops = self.hops_batch(x, t, zero_phase=True)
         if len(hops) == 0:
             return []
-        params = self.trackers.params
+        params = self.tracker_stage.params
         rate, conf = np.empty((len(hops), 3)), np.empty((len(hops), 3))
         for c in range(3):
             rate[:, c], conf[:, c] = offline_track(hops.spectra[:, c], hops.integrity[:, c],
                                                    self.rates, params,
                                                    self.settings.emission_power)
         hops = replace(hops, emitted_s=np.full(len(hops), float(t[-1])))
-        return self._estimates(self.fusion.batch(self.quality.batch(
+        return self._estimates(self.fusion_stage.batch(self.quality_stage.batch(
             TrackedModulations(hops, rate, conf))))

@@ -10,8 +10,11 @@ missed beats drop their interval. :func:`detect_batch` is its twin over a whole 
 
 Fiducial points (where in a beat its time is read)
 --------------------------------------------------
-* **ECG: the R peak**, the largest absolute value of a 0.5-40 Hz band-pass of the ECG
-  within the QRS search window around the energy-envelope peak.
+* **ECG: the R peak**. The QRS is located by the steepest slope of the 5-25 Hz
+  detection band-pass near the energy-envelope peak (P and T waves are slower); the R
+  peak is the extreme of a 0.5-40 Hz band-pass within ``qrs_half`` of that slope, of the
+  polarity most of the last :data:`POLARITY_BEATS` beats had (so that a lead whose R and
+  S waves are nearly equal does not jump between them from beat to beat).
 * **PPG: the steepest point of the systolic upstroke**, the maximum of the first
   derivative of a 0.5-8 Hz band-pass (a fiducial point that the foot's baseline and
   the dicrotic wave move less than the foot or the peak do).
@@ -56,6 +59,11 @@ BEAT_LIMIT_WINDOW_S = 8.0
 this long (:class:`estimators.preprocess.Limiter`), as the heart-rate path does over its
 8 s window: at least four beats at the slowest rate followed (30 per minute)."""
 
+
+POLARITY_BEATS = 32
+"""Beats over which the ECG's R-wave polarity is learnt: about 30 s, several breaths,
+as breathing turns the heart's axis and so swaps which of R and S is taller from beat
+to beat in some leads (our own choice)."""
 
 # --------------------------------------------------------------------------- beats
 
@@ -208,6 +216,8 @@ class BeatState:
     detect: np.ndarray = field(default_factory=lambda: np.empty(0))
     feature: np.ndarray = field(default_factory=lambda: np.empty(0))
     level: np.ndarray = field(default_factory=lambda: np.empty(0))
+    band: np.ndarray = field(default_factory=lambda: np.empty(0))
+    polarities: list = field(default_factory=list)
     heights: list = field(default_factory=list)
     intervals: list = field(default_factory=list)
     last_index: int = -(10 ** 12)
@@ -239,17 +249,19 @@ def _hold_rejected(state: BeatState, x: np.ndarray, accepted: np.ndarray) -> np.
     return filled
 
 
-def _detection_signal(params: BeatParams, state: BeatState, x: np.ndarray) -> np.ndarray:
+def _detection_signal(params: BeatParams, state: BeatState,
+                      x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The detection signal and the band-pass it is made from."""
     band, state.zi_detect = causal_sos(params.detect_sos, x, state.zi_detect)
     prev = np.concatenate(([state.last_band], band[:-1]))
     state.last_band = float(band[-1])
     slope = (band - prev) * params.fs
     if params.integrate == 0:
-        return slope
+        return slope, band
     taps = np.full(params.integrate, 1.0 / params.integrate)
     energy, state.zi_integrate = signal.lfilter(taps, [1.0], slope ** 2,
                                                 zi=state.zi_integrate)
-    return energy
+    return energy, band
 
 
 def _parabolic(y: np.ndarray, i: int) -> float:
@@ -282,8 +294,20 @@ def _candidates(detect: np.ndarray, lo: int, hi: int, r: int) -> np.ndarray:
     return u[keep] + base
 
 
+def _r_wave(state: BeatState, params: BeatParams, qrs: np.ndarray) -> tuple[int, float]:
+    """Index in ``qrs`` (the QRS band-pass around one beat) of its R wave, and the
+    polarity of the R waves: the extreme of the polarity most of the last beats had."""
+    top, bottom = int(np.argmax(qrs)), int(np.argmin(qrs))
+    up, down = max(qrs[top], 0.0), max(-qrs[bottom], 0.0)
+    state.polarities.append((up - down) / (up + down) if up + down > 0 else 0.0)
+    del state.polarities[:-POLARITY_BEATS]
+    vote = sum(state.polarities)
+    sign = (1.0 if up >= down else -1.0) if vote == 0 else float(np.sign(vote))
+    return (top if sign > 0 else bottom), sign
+
+
 def _features(state: BeatState, params: BeatParams, k: int, kk: int, detect: np.ndarray,
-              feature: np.ndarray, level: np.ndarray, offset: int):
+              feature: np.ndarray, level: np.ndarray, band: np.ndarray, offset: int):
     """Position and features of the accepted beat at raw index ``k`` (array index
     ``kk = k - offset``); updates the last-beat state."""
     s = params.search
@@ -298,8 +322,11 @@ def _features(state: BeatState, params: BeatParams, k: int, kk: int, detect: np.
     else:
         # The moving average peaks about half its length after the QRS: search back.
         lo, hi = max(kk - params.integrate - s, 0), kk + s // 2 + 1
-        peak = lo + int(np.argmax(np.abs(feature[lo:hi])))
-        around = np.abs(feature[max(peak - 1, 0):peak + 2])
+        steepest = lo + 1 + int(np.argmax(np.abs(np.diff(band[lo:hi]))))
+        q_lo = max(steepest - params.qrs_half, 0)
+        r, sign = _r_wave(state, params, feature[q_lo:steepest + params.qrs_half + 1])
+        peak = q_lo + r
+        around = sign * feature[max(peak - 1, 0):peak + 2]
         position = peak + offset + _parabolic(around, min(peak, 1))
         q = params.qrs_half
         qrs = feature[max(peak - q, 0):peak + q + 1]
@@ -345,7 +372,8 @@ def _time_at(times: np.ndarray, position: float, offset: int) -> float:
 
 
 def _scan(state: BeatState, params: BeatParams, detect: np.ndarray, feature: np.ndarray,
-          level: np.ndarray, offset: int, k_stop: int, t: np.ndarray, t_offset: int) -> Beats:
+          level: np.ndarray, band: np.ndarray, offset: int, k_stop: int, t: np.ndarray,
+          t_offset: int) -> Beats:
     """Decide the candidates ``state.next_k <= k < k_stop``. Signal arrays start at raw
     index ``offset``, timestamps ``t`` at raw index ``t_offset`` (``t_offset <= offset``:
     ``t`` covers the signal history)."""
@@ -370,10 +398,11 @@ def _scan(state: BeatState, params: BeatParams, detect: np.ndarray, feature: np.
                 continue
         if since > params.max_gap:
             state.heights.clear()  # a new stretch: learn its beat height afresh
+            state.polarities.clear()
         state.heights.append(float(height))
         del state.heights[:-params.history]
         position, features = _features(state, params, k, int(kk), detect, feature, level,
-                                       offset)
+                                       band, offset)
         ready = k + params.lookahead + 1
         rows.append((k, position, ready, t[ready - 1 - t_offset], features,
                      _time_at(t, position, t_offset)))
@@ -406,21 +435,23 @@ def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
         return state, Beats.empty()
     x = np.asarray(x, dtype=np.float64)
     x = _hold_rejected(state, x, limit_step(params.limiter, state.limiter, x))
-    detect = _detection_signal(params, state, x)
+    detect, band = _detection_signal(params, state, x)
     feature, state.zi_feature = causal_sos(params.feature_sos, x, state.zi_feature)
     level, state.zi_level = causal_sos(params.level_sos, x, state.zi_level)
     offset = state.count - len(state.detect)
     all_detect = np.concatenate((state.detect, detect))
     all_feature = np.concatenate((state.feature, feature))
     all_level = np.concatenate((state.level, level))
+    all_band = np.concatenate((state.band, band))
     all_times = np.concatenate((state.times, np.asarray(t, dtype=np.float64)))
     state.count += n
-    beats = _scan(state, params, all_detect, all_feature, all_level, offset,
+    beats = _scan(state, params, all_detect, all_feature, all_level, all_band, offset,
                   state.count - params.lookahead, all_times, offset)
     keep = min(len(all_detect), params.keep)
     state.detect = all_detect[len(all_detect) - keep:].copy()
     state.feature = all_feature[len(all_feature) - keep:].copy()
     state.level = all_level[len(all_level) - keep:].copy()
+    state.band = all_band[len(all_band) - keep:].copy()
     state.times = all_times[len(all_times) - keep:].copy()
     return state, beats
 
@@ -451,5 +482,5 @@ def detect_batch(x: np.ndarray, t: np.ndarray, params: BeatParams,
     feature = _zero_phase(params.feature_sos, x)
     level = _zero_phase(params.level_sos, x)
     state.count = len(x)
-    return _scan(state, params, detect, feature, level, 0, len(x) - params.lookahead,
+    return _scan(state, params, detect, feature, level, band, 0, len(x) - params.lookahead,
                  np.asarray(t, dtype=np.float64), 0)

@@ -122,16 +122,20 @@ MONITOR_AGREEMENT = 0.05
 monitor's mean heart rate (Numerics) over the record within 5 % (our own sanity check
 of the reference: XQRS counts T waves as beats on some ICU records)."""
 
+CROSS_LEAD_AGREEMENT = 0.98
+"""XQRS on lead II serves as the reference unless it disagrees (F1 below 0.98) with XQRS
+on both leads V and aVR of the same record while those two agree with each other: the
+leads are simultaneous, so the same QRS complexes must be found on all. Then XQRS marked
+another wave on lead II (on 03
+and 06 a P wave as tall as the QRS, 0.14-0.18 s before the QRS that leads V and aVR
+show; on 09 and 13 T waves: looked at, measured when written) and XQRS on lead V is the
+reference instead (our own check of the reference)."""
+
 KNOWN_DISAGREEMENTS = {
-    "03": "close-coupled premature beats (0.23 s after the one before) fall inside the "
-          "detector's 0.25 s refractory window: 593 beats detected, XQRS 623, monitor "
-          "about 613 (F1 0.88, measured)",
-    "06": "both count the same beats (654 and 656, monitor about 655) but mark different "
-          "waves: XQRS a broad wave 0.16 s before the narrow spike the detector takes as "
-          "the R peak (F1 0.03, measured)",
+    "03": "lead II's P wave is as tall as its narrow QRS (0.18 s later): the detector's "
+          "energy peak sometimes falls on the P wave and the R-wave search does not "
+          "reach the QRS (F1 0.959 against XQRS on lead V, measured)",
 }
-
-
 def _f1(detected, reference):
     match = match_beats(detected, reference, MATCH_S)
     return 2 * match.true_positives / (len(detected) + len(reference))
@@ -168,6 +172,13 @@ def test_f1_against_xqrs_bidmc(shared_data, record):
     names = [c.name for c in recording.info.channels]
     x, t, fs = recording.samples[:, names.index("II")], recording.timestamps, recording.info.fs
     reference = _xqrs(x, fs)
+    if "V" in names and "AVR" in names:
+        v = _xqrs(recording.samples[:, names.index("V")], fs)
+        avr = _xqrs(recording.samples[:, names.index("AVR")], fs)
+        if (_f1(t[v], t[avr]) >= CROSS_LEAD_AGREEMENT
+                and max(_f1(t[reference], t[v]), _f1(t[reference], t[avr]))
+                < CROSS_LEAD_AGREEMENT):
+            reference = v
     monitor = np.genfromtxt(folder / f"bidmc_{record}_Numerics.csv", delimiter=",",
                             skip_header=1)[:, 1]
     expected = np.nanmean(monitor) / 60.0 * (t[-1] - t[0])

@@ -38,7 +38,7 @@ from pathlib import Path
 from bench import REPO_ROOT, RESULTS_DIR, jsonable, measure, section, worker_env
 
 OWN_PARTS = ("cost", "streaming_batch", "throughput", "step_response", "rate_now", "latency",
-             "memory", "offline_memory", "accuracy")
+             "memory", "offline_memory", "accuracy", "beats_cost")
 EXTERNAL_PARTS = {
     # name: (module, results file, section title)
     "exercise": ("bench.exercise_table", "exercise.json", "Exercise heart-rate table (SPC 2015)"),
@@ -59,13 +59,15 @@ MAX_FOLDED_ROWS = 12
 
 
 def run_own(name: str, quick: bool) -> dict:
-    from bench import accuracy, cost, latency, memory, rate_now, step_response, throughput
+    from bench import (accuracy, beats_cost, cost, latency, memory, rate_now, step_response,
+                       throughput)
 
     runners = {"cost": cost.run_cost, "streaming_batch": cost.run_streaming_batch,
                "throughput": throughput.run, "step_response": step_response.run,
                "rate_now": rate_now.run,
                "latency": latency.run, "memory": memory.run,
-               "offline_memory": memory.run_offline, "accuracy": accuracy.run}
+               "offline_memory": memory.run_offline, "accuracy": accuracy.run,
+               "beats_cost": beats_cost.run}
     return runners[name](quick)
 
 

@@ -66,7 +66,9 @@ def hop_costs(quantity: str, n_hops: int, fs: float = FS, profile: str = "wrist"
     if quantity == "hr":
         prof = dataclasses.replace(prof, breathing_from_pulse=False)
     settings = prof.rr if quantity == "rr" else prof.hr
-    warm = int(math.ceil(settings.window_s / settings.hop_s)) + 8
+    # Fill the longest window first: with breathing from the pulse, its 48 s one.
+    window_s = max(settings.window_s, prof.rr_pulse.window_s if quantity == "hr+rr" else 0.0)
+    warm = int(math.ceil(window_s / settings.hop_s)) + 8
     total = warm + n_hops
     bounds = hop_bounds(total, settings.hop_s, fs)
     duration_s = (bounds[-1] + 1) / fs

@@ -716,3 +716,489 @@ def spectral_margins(spectra, readout, rate_bins, offset, halfwidth, out):
         out[p, 0] = min(10.0, rival / at_s) if at_s > 0.0 else 0.0
         out[p, 1] = min(10.0, half / at_r) if at_r > 0.0 else 0.0
         out[p, 2] = min(10.0, double / at_r) if at_r > 0.0 else 0.0
+
+
+# ------------------------------------------------ breathing from the pulse (respiration.py)
+
+N_MODULATIONS = 3
+"""Intensity, amplitude, frequency (:data:`estimators.beats.MODULATIONS` order)."""
+
+BANK_ROWS = 18
+"""Rows of the modulation bank's ring (see :func:`modulation_frames`)."""
+
+
+@kernel
+def resample_chunk(beat_index, beat_position, beat_ready, beat_features, pending_s, t, state,
+                   decimation, lookahead, max_gap, out_values, out_times, out_ready_s):
+    """Evenly resample the beat features of one chunk (the step of
+    :func:`estimators.respiration.resample_step`; its plain twin is
+    :func:`estimators.respiration.resample_batch`).
+
+    Grid sample ``j`` sits at raw sample ``k_j = j M + M - 1`` (``M = decimation``). Each
+    beat ``i`` of the chunk (``beat_index``, ``beat_position``, ``beat_ready`` raw counts,
+    ``beat_features`` (n, 3)) emits the grid samples before its position: the linear
+    interpolation between the previous beat's features and its own, NaN before the first
+    beat and across gaps (beats more than ``max_gap`` apart). A value with a NaN is ready
+    at ``min(beat ready, lookahead + max(k_j + 1, previous index + max_gap + 1))``, else
+    with the beat. After the beats, grid samples that no beat can now close in time
+    (raw count less ``lookahead`` more than ``max_gap`` past the last beat) are emitted
+    as NaN.
+
+    ``pending_s`` holds the timestamps of the grid samples not yet emitted (oldest
+    first), ``t`` the chunk's raw timestamps; ``state`` ``[raw count before the chunk,
+    next grid sample, last beat index, last beat position, its three features]`` is
+    updated in place. Writes ``out_values`` (n, 3), ``out_times``, ``out_ready_s`` and
+    returns how many grid samples were emitted.
+    """
+    n = t.shape[0]
+    m = float(decimation)
+    r = float(lookahead)
+    gap = float(max_gap)
+    before = int(state[0])
+    count = state[0] + n
+    next_j = state[1]
+    last_index = state[2]
+    last_position = state[3]
+    n_out = 0
+    for i in range(beat_index.shape[0]):
+        index = float(beat_index[i])
+        position = beat_position[i]
+        ready = float(beat_ready[i])
+        closes = index - last_index <= gap
+        nan_base = last_index + gap + 1.0
+        while next_j * m + m - 1.0 < position:
+            k_j = next_j * m + m - 1.0
+            has_nan = False
+            if closes and not k_j < last_position:
+                w = (k_j - last_position) / (position - last_position)
+                for c in range(N_MODULATIONS):
+                    v = (1.0 - w) * state[4 + c] + w * beat_features[i, c]
+                    out_values[n_out, c] = v
+                    if np.isnan(v):
+                        has_nan = True
+            else:
+                for c in range(N_MODULATIONS):
+                    out_values[n_out, c] = np.nan
+                has_nan = True
+            when = ready
+            if has_nan:
+                when = min(ready, r + max(k_j + 1.0, nan_base))
+            out_times[n_out] = pending_s[n_out]
+            out_ready_s[n_out] = t[int(when) - 1 - before]
+            n_out += 1
+            next_j += 1.0
+        last_index = index
+        last_position = position
+        for c in range(N_MODULATIONS):
+            state[4 + c] = beat_features[i, c]
+    if count - r - last_index > gap:
+        nan_base = last_index + gap + 1.0
+        while next_j * m + m - 1.0 < count - r:
+            k_j = next_j * m + m - 1.0
+            for c in range(N_MODULATIONS):
+                out_values[n_out, c] = np.nan
+            when = r + max(k_j + 1.0, nan_base)
+            out_times[n_out] = pending_s[n_out]
+            out_ready_s[n_out] = t[int(when) - 1 - before]
+            n_out += 1
+            next_j += 1.0
+    state[0] = count
+    state[1] = next_j
+    state[2] = last_index
+    state[3] = last_position
+    return n_out
+
+
+@kernel
+def modulation_frames(values, time_s, ready_s, sos, zi, pre_scalars, limiter, min_run,
+                      max_abs, offset, sums, ring, counters, windows, min_window, hop,
+                      out_frames, out_integrity, out_depth, out_beat_rate, out_time_s,
+                      out_emitted_s):
+    """The three modulations of one chunk through their band-pass and into the windowed
+    frames of the hops they complete, with each hop's integrity, depth and beat rate
+    (the step of :class:`estimators.respiration.ModulationSpectra`; its batch twin is
+    :meth:`~estimators.respiration.ModulationSpectra.hops_batch`).
+
+    Per modulation ``c``: the series enters relative to its first finite value
+    (``offset[c]``, NaN until known), then :func:`preprocess_chunk` (``sos`` with state
+    ``zi[c]``, scalars ``pre_scalars[c]``, no range limit: non-finite samples held and
+    counted as rejected, runs of ``min_run`` equal values as stuck). Per sample, the
+    running ``sums`` (interval sum and count, amplitude sum and count over finite
+    values, squares of the three band-passed series) advance, and the ring (``ring``
+    (:data:`BANK_ROWS`, C) with ``C`` at least the window plus one: rows 0-2 band-passed
+    series, 3 timestamps, 4-6 running rejected counts, 7-9 running stuck counts, 10-16
+    the running sums, 17 ``ready_s``) takes the sample at column ``count mod C``.
+
+    Hop ``p`` (``counters[1]`` is the next one) falls when the count ``counters[0]``
+    reaches ``floor(p hop + 1e-9)``; from ``min_window`` on, its frames are the newest
+    ``L = min(m, count)`` samples of each series times ``windows[L - min_window]`` (the
+    unit-sum periodic Hann of ``L`` samples; ``m = windows.shape[1]``), written to rows
+    ``3 h + c`` of ``out_frames`` (the rest of a row is left as it is: zeros). Per hop
+    ``h``: ``out_integrity`` (h, c) from the window's rejected and stuck fractions
+    (:func:`estimators.quality.integrity`), ``out_depth`` (h, c) the RMS of the
+    band-passed series over the mean amplitude (intensity, amplitude) or mean interval
+    (frequency), 0 without a scale, ``out_beat_rate`` 60 / mean interval, ``out_time_s``
+    the window centre and ``out_emitted_s`` the ``ready_s`` of its newest sample.
+    Returns the number of hops.
+    """
+    n = values.shape[0]
+    cap = ring.shape[1]
+    m = windows.shape[1]
+    filtered = np.empty((N_MODULATIONS, n))
+    rejected = np.empty((N_MODULATIONS, n))
+    stuck = np.empty((N_MODULATIONS, n))
+    times = np.empty(n)
+    centred = np.empty(n)
+    no_sections = np.zeros((0, 6))
+    no_state = np.zeros((0, 2))
+    for c in range(N_MODULATIONS):
+        if np.isnan(offset[c]):
+            for k in range(n):
+                if np.isfinite(values[k, c]):
+                    offset[c] = values[k, c]
+                    break
+        base = offset[c] if np.isfinite(offset[c]) else 0.0
+        for k in range(n):
+            centred[k] = values[k, c] - base
+        preprocess_chunk(centred, time_s, sos, zi[c], False, no_sections, no_state,
+                         pre_scalars[c], limiter, 0, 1, 0.0, max_abs, 1, min_run,
+                         filtered[c], times, rejected[c], stuck[c])
+    n_hops = 0
+    for k in range(n):
+        v = values[k, 2]
+        if np.isfinite(v):
+            sums[0] += v
+            sums[1] += 1.0
+        v = values[k, 1]
+        if np.isfinite(v):
+            sums[2] += v
+            sums[3] += 1.0
+        for c in range(N_MODULATIONS):
+            sums[4 + c] += filtered[c, k] ** 2
+        slot = int(counters[0]) % cap
+        for c in range(N_MODULATIONS):
+            ring[c, slot] = filtered[c, k]
+            ring[4 + c, slot] = rejected[c, k]
+            ring[7 + c, slot] = stuck[c, k]
+        ring[3, slot] = time_s[k]
+        for i in range(7):
+            ring[10 + i, slot] = sums[i]
+        ring[17, slot] = ready_s[k]
+        counters[0] += 1.0
+        count = counters[0]
+        while True:
+            c_p = np.floor(counters[1] * hop + 1e-9)
+            if c_p > count:
+                break
+            counters[1] += 1.0
+            if c_p < min_window:
+                continue
+            length = min(m, int(c_p))
+            first = int(c_p) - length
+            last = (int(c_p) - 1) % cap
+            w = windows[length - min_window]
+            for c in range(N_MODULATIONS):
+                row = 3 * n_hops + c
+                for i in range(length):
+                    out_frames[row, i] = ring[c, (first + i) % cap] * w[i]
+            prior = (first - 1) % cap
+            span = float(length)
+            for c in range(N_MODULATIONS):
+                rej = ring[4 + c, last] - (ring[4 + c, prior] if first > 0 else 0.0)
+                stk = ring[7 + c, last] - (ring[7 + c, prior] if first > 0 else 0.0)
+                finite_part = max(1.0 - 5.0 * (rej / span), 0.0)
+                unstuck = max(1.0 - 3.0 * (stk / span), 0.0)
+                out_integrity[n_hops, c] = min(finite_part * unstuck, 1.0)
+            s = np.empty(7)
+            for i in range(7):
+                s[i] = ring[10 + i, last] - (ring[10 + i, prior] if first > 0 else 0.0)
+            mean_interval = s[0] / s[1] if s[1] > 0 else np.nan
+            mean_amplitude = abs(s[2] / s[3]) if s[3] > 0 else np.nan
+            for c in range(N_MODULATIONS):
+                rms = np.sqrt(max(s[4 + c], 0.0) / span)
+                scale = mean_interval if c == 2 else mean_amplitude
+                depth = rms / scale if scale > 0 else 0.0
+                out_depth[n_hops, c] = depth if np.isfinite(depth) else 0.0
+            if mean_interval == 0.0:
+                out_beat_rate[n_hops] = np.inf
+            else:
+                out_beat_rate[n_hops] = 60.0 / mean_interval
+            out_time_s[n_hops] = 0.5 * (ring[3, first % cap] + ring[3, last])
+            out_emitted_s[n_hops] = ring[17, last]
+            n_hops += 1
+    return n_hops
+
+
+@kernel
+def shape_modulation_spectra(spectra, tilt, rates, beat_rate, harmonic_index, harmonic_frac,
+                             harmonic_inside, weight, cap):
+    """Tilt, Nyquist mask and harmonic support of band spectra (P, 3, F), in place (the
+    compiled twin of :func:`estimators.respiration.tilt_spectra`,
+    :func:`~estimators.respiration.nyquist_mask` and
+    :func:`~estimators.respiration.harmonic_support` in that order): each row times
+    ``tilt`` (F,); bins at or above half of ``beat_rate[p]`` (per minute; NaN: no mask)
+    times 0; then ``S(f) + weight * min(cap S(f), S(2 f))`` with ``S(2 f)`` read at
+    ``harmonic_index`` + ``harmonic_frac`` where ``harmonic_inside`` (else 0)."""
+    n_hops, n_mod, n_bins = spectra.shape
+    row = np.empty(n_bins)
+    for p in range(n_hops):
+        limit = 0.5 * beat_rate[p] if np.isfinite(beat_rate[p]) else np.inf
+        for c in range(n_mod):
+            for f in range(n_bins):
+                v = spectra[p, c, f] * tilt[f]
+                if not rates[f] < limit:
+                    v = v * 0.0
+                row[f] = v
+            for f in range(n_bins):
+                if weight != 0.0:
+                    doubled = 0.0
+                    if harmonic_inside[f]:
+                        j = harmonic_index[f]
+                        doubled = (row[j] * (1.0 - harmonic_frac[f])
+                                   + row[j + 1] * harmonic_frac[f])
+                    spectra[p, c, f] = row[f] + weight * min(cap * row[f], doubled)
+                else:
+                    spectra[p, c, f] = row[f]
+
+
+@kernel
+def track_ridges(spectra, integrity, alpha, transition, mix, power, floor, halfwidth, rates,
+                 out_rate, out_confidence):
+    """The forward filters of the three modulations over several hops in one call (no
+    lag; the compiled twin of :meth:`estimators.tracker.RidgeTracker.update` per
+    modulation).
+
+    ``spectra`` (P, 3, F), ``integrity`` (P, 3) the emission weights (clipped to [0,
+    1]), ``alpha`` (3, F) the posteriors before the first hop (updated in place). Per
+    hop and modulation: the emission ``floor + (S / max S) ** power`` tempered by the
+    weight, one forward step (:func:`predict`, :func:`normalise_or_prior`); the
+    confidence is the posterior mass within ``halfwidth`` bins of its mode, the rate
+    (``rates`` (F,) per minute) the highest spectral peak within ``halfwidth`` of the
+    mode refined by parabolic interpolation (the mode's rate where the spectrum is
+    empty there), as :func:`estimators.tracker.read_posterior`.
+    """
+    n_hops, n_mod, n_bins = spectra.shape
+    prior = np.empty(n_bins)
+    step = rates[1] - rates[0] if n_bins > 1 else 0.0
+    for c in range(n_mod):
+        a = alpha[c]
+        for p in range(n_hops):
+            predict(a, transition, mix, prior)
+            peak = spectra[p, c, 0]
+            for f in range(1, n_bins):
+                if spectra[p, c, f] > peak:
+                    peak = spectra[p, c, f]
+            w = min(max(integrity[p, c], 0.0), 1.0)
+            total = 0.0
+            for f in range(n_bins):
+                rel = spectra[p, c, f] / peak if peak > 0.0 else 0.0
+                if not np.isfinite(rel):
+                    rel = 0.0
+                # A square is exact either way (numpy squares for a power of 2 too).
+                e = floor + (rel * rel if power == 2.0 else rel ** power)
+                if w != 1.0:
+                    e = e ** w
+                v = prior[f] * e
+                a[f] = v
+                total += v
+            normalise_or_prior(a, total, prior)
+            mode = 0
+            for f in range(1, n_bins):
+                if a[f] > a[mode]:
+                    mode = f
+            mass = 0.0
+            best = -1
+            best_v = -np.inf
+            for f in range(n_bins):
+                if abs(f - mode) <= halfwidth:
+                    mass += a[f]
+                    if spectra[p, c, f] > best_v:
+                        best_v = spectra[p, c, f]
+                        best = f
+            out_confidence[p, c] = min(max(mass, 0.0), 1.0)
+            if best_v > 0.0:
+                delta = 0.0
+                if 0 < best < n_bins - 1:
+                    left = spectra[p, c, best - 1]
+                    right = spectra[p, c, best + 1]
+                    denom = left - 2.0 * best_v + right
+                    if denom < 0.0:
+                        delta = min(max(0.5 * (left - right) / denom, -0.5), 0.5)
+                out_rate[p, c] = rates[best] + delta * step
+            else:
+                out_rate[p, c] = rates[mode]
+
+
+@kernel
+def modulation_quality(spectra, rate, integrity, depth, beat_rate, rates, halfwidth,
+                       concentration_full, depth_floor, depth_full, out_quality):
+    """Quality (P, 3) of each modulation's rate: integrity x concentration at the rate
+    over the bins below half the beat rate x depth score (the compiled twin of
+    :func:`estimators.respiration.modulation_quality`).
+
+    Concentration: the share of ``spectra ** 2`` within ``halfwidth`` bins of the rate,
+    rescaled so that a flat spectrum's share over the open bins maps to 0 and
+    ``concentration_full`` to 1; 0 for a NaN rate or a rate on the first or last open
+    bin. Depth score: ``clip((depth - depth_floor) / (depth_full - depth_floor), 0, 1)``.
+    """
+    n_hops, n_mod, n_bins = spectra.shape
+    step = rates[1] - rates[0]
+    for p in range(n_hops):
+        limit = 0.5 * beat_rate[p] if np.isfinite(beat_rate[p]) else np.inf
+        n_open = 0
+        for f in range(n_bins):
+            if rates[f] < limit:
+                n_open += 1
+        n_open = min(max(n_open, 1), n_bins)
+        chance = min(1.0, (2.0 * halfwidth + 1.0) / n_open)
+        for c in range(n_mod):
+            centre = (rate[p, c] - rates[0]) / step
+            if np.isnan(centre):
+                centre = -1e9
+            total = 0.0
+            near = 0.0
+            for f in range(n_bins):
+                v = spectra[p, c, f] ** 2
+                total += v
+                if abs(f - centre) <= halfwidth:
+                    near += v
+            share = near / total if total > 0.0 else 0.0
+            score = (share - chance) / max(concentration_full - chance, 1e-9)
+            score = min(max(score, 0.0), 1.0)
+            if not (centre >= 1.0 and centre <= n_open - 2.0):
+                score = 0.0
+            d = min(max((depth[p, c] - depth_floor) / (depth_full - depth_floor), 0.0), 1.0)
+            out_quality[p, c] = min(max(integrity[p, c] * (score * d), 0.0), 1.0)
+
+
+@kernel
+def fuse_rates(rate, confidence, quality, groups, group_sizes, agreement, min_agreeing,
+               min_support, weight_power, out_rate, out_confidence, out_quality):
+    """Quality-weighted agreement of the modulation rates (P, 3) per hop (the compiled
+    twin of :func:`estimators.respiration.fuse_modulations`, which documents the rule).
+    ``groups`` (G, 3) lists the candidate groups' columns (``group_sizes`` (G,) of them
+    used), larger groups first so that ties go to them."""
+    n_hops, n_mod = rate.shape
+    q = np.empty(n_mod)
+    r = np.empty(n_mod)
+    carried = np.empty(n_mod, dtype=np.bool_)
+    for p in range(n_hops):
+        total = 0.0
+        for c in range(n_mod):
+            carried[c] = np.isfinite(rate[p, c])
+            q[c] = min(max(quality[p, c], 0.0), 1.0) if carried[c] else 0.0
+            r[c] = rate[p, c] if carried[c] else 0.0
+            total += q[c]
+        best = -1
+        best_score = -np.inf
+        for g in range(groups.shape[0]):
+            size = group_sizes[g]
+            if size < min_agreeing:
+                continue
+            ok = True
+            low = np.inf
+            high = -np.inf
+            for i in range(size):
+                col = groups[g, i]
+                if not carried[col]:
+                    ok = False
+                else:
+                    low = min(low, rate[p, col])
+                    high = max(high, rate[p, col])
+            if not ok or not high - low <= agreement:
+                continue
+            score = 0.0
+            for i in range(size):
+                score += q[groups[g, i]]
+            if score > best_score + 1e-12:
+                best_score = score
+                best = g
+        out_rate[p] = np.nan
+        out_confidence[p] = 0.0
+        out_quality[p] = 0.0
+        if best < 0:
+            continue
+        size = group_sizes[best]
+        wsum = 0.0
+        weighted = 0.0
+        support = 0.0
+        plain = 0.0
+        conf = 0.0
+        for i in range(size):
+            col = groups[best, i]
+            w = q[col] ** weight_power
+            wsum += w
+            weighted += w * r[col]
+            support += q[col]
+            plain += r[col]
+            conf += confidence[p, col]
+        mean = weighted / wsum if wsum > 0 else plain / size
+        share = support / total if total > 0 else 1.0
+        out_quality[p] = min(max(support, 0.0), 1.0)
+        if best_score >= min_support:
+            out_rate[p] = mean
+            out_confidence[p] = min(max(conf / size * share, 0.0), 1.0)
+
+
+@kernel
+def interp_point(x, xp, fp):
+    """``numpy.interp(x, xp, fp)`` for one value, the same arithmetic: the end values
+    outside ``xp``, the knot's own value on a knot, else ``slope (x - xp[j]) + fp[j]``
+    (from the right knot when that is not finite)."""
+    n = xp.shape[0]
+    if n == 1:
+        return fp[0]
+    if np.isnan(x):
+        return x
+    if x < xp[0]:
+        return fp[0]
+    if x > xp[n - 1]:
+        return fp[n - 1]
+    lo = 0
+    hi = n  # the largest j with xp[j] <= x
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if xp[mid] <= x:
+            lo = mid
+        else:
+            hi = mid
+    j = lo
+    if j == n - 1 or xp[j] == x:
+        return fp[j]
+    slope = (fp[j + 1] - fp[j]) / (xp[j + 1] - xp[j])
+    value = slope * (x - xp[j]) + fp[j]
+    if np.isnan(value):
+        value = slope * (x - xp[j + 1]) + fp[j + 1]
+        if np.isnan(value) and fp[j] == fp[j + 1]:
+            value = fp[j]
+    return value
+
+
+@kernel
+def calibrate_breathing(raw, quality, centre, scale, beta, knots_score, knots_prob, low, high,
+                        prob_floor, prob_ceil, out):
+    """The breathing confidence map of one kind over several estimates (the compiled
+    twin of :func:`estimators.breathing_confidence.calibrated` with a model for the
+    kind): the design ``(logit clip(raw, 1e-3, 1 - 1e-3), quality)`` (non-finite as 0)
+    clipped to ``[low, high]``, the score ``beta[0] + ((x - centre) / scale) . beta[1:]``,
+    its isotonic read-out (:func:`interp_point` on the knots) clipped to ``[prob_floor,
+    prob_ceil]``; a raw confidence of 0 or less, or a non-finite probability, keeps the
+    raw value."""
+    for i in range(raw.shape[0]):
+        r = raw[i]
+        if not r > 0.0:
+            out[i] = r
+            continue
+        c = r if np.isfinite(r) else 0.0
+        c = min(max(c, 1e-3), 1.0 - 1e-3)
+        q = quality[i]
+        if np.isnan(q):
+            q = 0.0
+        elif np.isinf(q):
+            q = 1.7976931348623157e308 if q > 0 else -1.7976931348623157e308
+        x0 = min(max(np.log(c / (1.0 - c)), low[0]), high[0])
+        x1 = min(max(q, low[1]), high[1])
+        score = beta[0] + ((x0 - centre[0]) / scale[0] * beta[1]
+                           + (x1 - centre[1]) / scale[1] * beta[2])
+        prob = min(max(interp_point(score, knots_score, knots_prob), prob_floor), prob_ceil)
+        out[i] = prob if np.isfinite(prob) else r

@@ -12,7 +12,8 @@ fuse_modulations`); the quality is the window's quality index (from a pulse: the
 support). One model per signal kind (``resp``, ``ppg``, ``ecg``), the same two stages as
 the heart-rate map (:mod:`estimators.calibration`, whose fitting functions are used):
 an L2-penalised logistic regression on ``(logit raw confidence, quality)`` and an
-isotonic read-out of its score. Fitted by ``python -m bench.breathing_table --refit``
+isotonic read-out of its score whose steps each hold at least :data:`MIN_STEP_ROWS`
+rows (:func:`fit_pooled_isotonic`). Fitted by ``python -m bench.breathing_table --refit``
 with leave-one-record-out folds on BIDMC records 01-26 and shipped as package data,
 ``estimators/data/breathing_map.json``; without it (or for a kind without a model) the
 raw confidence is reported and :data:`MAP` is None.
@@ -26,7 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
-from estimators.calibration import PROB_CEIL, PROB_FLOOR, fit_isotonic, fit_logistic
+from estimators.calibration import PROB_CEIL, PROB_FLOOR, fit_logistic
 from estimators.errors import ParameterError
 
 MAP_PATH = Path(__file__).with_name("data") / "breathing_map.json"
@@ -34,6 +35,14 @@ MAP_PATH = Path(__file__).with_name("data") / "breathing_map.json"
 
 TOLERANCE_PER_MIN = 2.0
 """A breathing rate within this of the reference counts as right (common practice)."""
+
+MIN_STEP_ROWS = 100
+"""Fewest rows behind one step of the isotonic read-out: a step's share within tolerance
+then has a standard error of at most 0.03 near 0.9 (``sqrt(0.9 * 0.1 / 100)``), so the
+read-out cannot promise 1.0 (or 0.0) from a handful of rows at the end of the score's
+range (a priori; isotonic fits are known to overfit where rows are few: Niculescu-Mizil
+& Caruana, "Predicting good probabilities with supervised learning", ICML 2005, from
+memory)."""
 
 KINDS = ("resp", "ppg", "ecg")
 FORMAT = "ridgewatch breathing confidence map 1"
@@ -84,9 +93,52 @@ class KindModel:
         return cls(**arrays)
 
 
-def fit_kind(raw_confidence, quality, within, l2: float = 1.0) -> KindModel:
+def fit_pooled_isotonic(score: np.ndarray, y: np.ndarray,
+                        min_rows: int = MIN_STEP_ROWS) -> tuple[np.ndarray, np.ndarray]:
+    """Non-decreasing step fit of ``y`` on ``score`` (pool-adjacent-violators), then the
+    smallest step merged with its nearer-valued neighbour until every step holds at
+    least ``min_rows`` rows (or one step is left): ``(knots_score, knots_prob)``, one
+    knot per step at its mean score. Merging two adjacent steps gives a value between
+    theirs, so the fit stays non-decreasing.
+
+    Examples
+    --------
+    >>> fit_pooled_isotonic(np.arange(8.0), np.array([0, 0, 0, 1, 0, 1, 1, 1]), min_rows=3)
+    (array([2., 6.]), array([0.2, 1. ]))
+    """
+    from scipy.optimize import isotonic_regression
+
+    order = np.argsort(np.asarray(score, dtype=np.float64), kind="stable")
+    s = np.asarray(score, dtype=np.float64)[order]
+    yy = np.asarray(y, dtype=np.float64)[order]
+    starts = list(np.asarray(isotonic_regression(yy, increasing=True).blocks)[:-1])
+    ends = starts[1:] + [len(yy)]
+    steps = [[a, b] for a, b in zip(starts, ends)]
+    while len(steps) > 1:
+        sizes = [b - a for a, b in steps]
+        i = int(np.argmin(sizes))
+        if sizes[i] >= min_rows:
+            break
+        value = yy[steps[i][0]:steps[i][1]].mean()
+        if i == 0:
+            j = 1
+        elif i == len(steps) - 1:
+            j = i - 1
+        else:
+            left = abs(yy[steps[i - 1][0]:steps[i - 1][1]].mean() - value)
+            right = abs(yy[steps[i + 1][0]:steps[i + 1][1]].mean() - value)
+            j = i - 1 if left <= right else i + 1
+        lo, hi = min(i, j), max(i, j)
+        steps[lo:hi + 1] = [[steps[lo][0], steps[hi][1]]]
+    return (np.array([s[a:b].mean() for a, b in steps]),
+            np.array([yy[a:b].mean() for a, b in steps]))
+
+
+def fit_kind(raw_confidence, quality, within, l2: float = 1.0,
+             min_rows: int = MIN_STEP_ROWS) -> KindModel:
     """Fit one :class:`KindModel` to rows of raw confidence, quality and outcome (True:
-    within :data:`TOLERANCE_PER_MIN`)."""
+    within :data:`TOLERANCE_PER_MIN`); ``min_rows`` rows at least behind each step of the
+    isotonic read-out (:func:`fit_pooled_isotonic`)."""
     x = design(raw_confidence, quality)
     centre = x.mean(axis=0)
     scale = x.std(axis=0)
@@ -95,7 +147,7 @@ def fit_kind(raw_confidence, quality, within, l2: float = 1.0) -> KindModel:
     beta = fit_logistic((x - centre) / scale, y, None, l2)
     empty = np.empty(0)
     model = KindModel(centre, scale, beta, empty, empty, x.min(axis=0), x.max(axis=0))
-    knots_s, knots_p = fit_isotonic(model.score(raw_confidence, quality), y)
+    knots_s, knots_p = fit_pooled_isotonic(model.score(raw_confidence, quality), y, min_rows)
     return KindModel(centre, scale, beta, knots_s, knots_p, model.low, model.high)
 
 
@@ -154,7 +206,7 @@ def calibrated(kind: str, raw_confidence, quality,
     Examples
     --------
     >>> m = BreathingMap({"ppg": fit_kind(np.r_[0.2, 0.3, 0.8, 0.9], np.r_[0.1, 0.2, 0.8, 0.9],
-    ...                                   [False, False, True, True])}, {})
+    ...                                   [False, False, True, True], min_rows=1)}, {})
     >>> calibrated("ppg", np.r_[0.25, 0.85, 0.0], np.r_[0.1, 0.9, 0.0], m).round(3).tolist()
     [0.001, 0.999, 0.0]
     >>> calibrated("resp", np.r_[0.7], np.r_[0.5], m).tolist()  # no model: raw

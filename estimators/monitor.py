@@ -96,6 +96,15 @@ def find_gaps(timestamps: np.ndarray, fs: float, newest_s: float = np.nan) -> np
     return _gap_starts(labels, newest_s, gap_threshold_s(fs))
 
 
+def record_gaps(timestamps: np.ndarray, fs: float) -> list[Gap]:
+    """The gaps of a whole record (:func:`find_gaps`) as :class:`Gap` records, in order:
+    where the offline twin restarts, as the live monitor does (``last_gaps``)."""
+    labels = monotone_times(np.asarray(timestamps, dtype=np.float64), np.nan)
+    return [Gap(float(labels[k - 1]), float(labels[k]),
+                float(labels[k] - labels[k - 1] - 1.0 / fs))
+            for k in _gap_starts(labels, np.nan, gap_threshold_s(fs))]
+
+
 def _gap_starts(labels: np.ndarray, newest_s: float, threshold_s: float) -> np.ndarray:
     """:func:`find_gaps` on labels from :func:`monotone_times` (never decreasing)."""
     if len(labels) == 0:

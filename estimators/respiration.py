@@ -12,32 +12,50 @@ Breathing modulates a pulse in three ways (Karlen, Raman, Ansermino & Dumont,
   complex (electrical axis and thoracic impedance change with the lungs' filling);
 * **frequency** (RIFV): the beat-to-beat interval (respiratory sinus arrhythmia).
 
-Chain, per PPG or ECG channel; every stage is a step function with carried state and
-has a batch twin:
+The path is a :class:`estimators.stage.Chain` of six stages (:func:`pulse_breathing_chain`),
+each speaking the stage protocol of :mod:`estimators.stage` (frozen parameters,
+``initial_state()``, a pure ``step(state, x) -> (state, y)`` and its ``batch(x)`` twin):
 
-1. :func:`detect_step` (in :mod:`estimators.beats`) finds beats causally
-   (:func:`beat_params`): a candidate is the largest value of the detection signal
-   within +-0.25 s, accepted when it reaches a fraction of the recent beats' heights.
-   Each beat gives a sub-sample position and its three features; premature or missed
-   beats drop their interval.
-2. :func:`resample_step` evenly resamples the features at the analysis rate of the
+1. :class:`BeatDetection` wraps :func:`estimators.beats.detect_step` (beats found
+   causally, :func:`beat_params`: a candidate is the largest value of the detection
+   signal within +-0.25 s, accepted when it reaches a fraction of the recent beats'
+   heights; each beat gives a sub-sample position and its three features; premature or
+   missed beats drop their interval). Raw ``(x, t)`` -> :class:`PulseBeats`.
+2. :class:`Resampling` evenly resamples the features at the analysis rate of the
    breathing settings (5 Hz): linear interpolation between beats, so a sample waits for
-   the beat after it; beats more than 2 s apart leave NaN.
-3. :class:`ModulationBank`: each modulation is band-passed like a respiration signal
-   (relative to its first value) and goes through the engine's sliding STFT on the
-   breathing grid. Breathing faster than half the beat rate cannot show in a
-   once-per-beat series (Nyquist), so those bins are masked (:func:`nyquist_mask`).
-4. One :class:`estimators.tracker.RidgeTracker` per modulation follows its ridge. Its
-   quality is integrity x spectral concentration at the rate
-   (:func:`peak_concentration`) x modulation depth (:func:`depth_score`); below
-   ``min_quality`` it is withheld.
-5. :func:`fuse_modulations`: among the groups of modulations that agree (spread at
-   most ``agreement_per_min``), the one with the largest summed quality reports its
-   quality-weighted mean rate when that support reaches ``min_support``; else no
-   estimate (NaN) -- the 'smart fusion' of Karlen et al. (2013), weighted by quality.
+   the beat after it; beats more than 2 s apart leave NaN (:func:`resample_step`,
+   compiled; :func:`resample_batch` its plain twin). -> :class:`ModulationSamples`.
+3. :class:`ModulationSpectra`: each modulation is band-passed like a respiration signal
+   (relative to its first value) and framed on the engine's sliding-STFT schedule on
+   the breathing grid; the three modulations' filters and frames run in one compiled
+   pass and all their frames go through one FFT call; the band spectra are tilted
+   (:func:`tilt_spectra`), masked above half the beat rate (breathing faster than half
+   the beat rate cannot show in a once-per-beat series, Nyquist: :func:`nyquist_mask`)
+   and given their second harmonic's support (:func:`harmonic_support`) in a second
+   compiled pass. -> :class:`ModulationHops`.
+4. :class:`ModulationTrackers`: one hidden-Markov ridge tracker
+   (:mod:`estimators.tracker`) per modulation, all three in one compiled call.
+   -> :class:`TrackedModulations`.
+5. :class:`ModulationQuality`: integrity x spectral concentration at the rate
+   (:func:`peak_concentration`) x modulation depth (:func:`depth_score`).
+   -> :class:`RatedModulations`.
+6. :class:`ModulationFusion`: rates below ``min_quality`` are withheld; among the
+   groups of modulations that agree (spread at most ``agreement_per_min``), the one
+   with the largest summed quality reports its quality-weighted mean rate when that
+   support reaches ``min_support``; else no estimate (NaN) -- the 'smart fusion' of
+   Karlen et al. (2013), weighted by quality (:func:`fuse_modulations`). The
+   confidence is calibrated (:mod:`estimators.breathing_confidence`) and ``time_s``
+   moved back by the modulation filters' group delay at the rate. -> :class:`BreathingRates`.
 
-:class:`PulseBreathing` composes the chain (``update(x, t) -> list[Estimate]``, and
-:meth:`PulseBreathing.offline`, the zero-phase twin with Viterbi ridges).
+Every compiled step (``estimators._kernels``: ``resample_chunk``,
+``modulation_frames``, ``shape_modulation_spectra``, ``track_ridges``,
+``modulation_quality``, ``fuse_rates``, ``calibrate_breathing``) keeps its plain path
+(``RIDGEWATCH_NO_JIT=1``), and every stage's ``batch`` is the plain numpy twin it is
+tested against (``tests/estimators/test_stage_conformance_breathing.py``).
+
+:class:`PulseBreathing` owns the chain's state for one channel (``update(x, t) ->
+list[Estimate]``), and :meth:`PulseBreathing.offline` is the zero-phase twin with
+Viterbi ridges.
 
 Index vocabulary: ``k`` raw sample (count from the first sample, 0-based), ``j``
 analysis sample, ``p`` hop, ``f`` frequency bin, ``i`` beat.
@@ -45,20 +63,24 @@ analysis sample, ``p`` hop, ``f`` frequency bin, ``i`` beat.
 
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass, replace
 
 import numpy as np
 
+from estimators import _kernels
 from estimators import breathing_confidence
 from estimators import deshape as deshape_mod
 from estimators import quality as quality_mod
 from estimators import tracker as tracker_mod
+from estimators.calibration import PROB_CEIL, PROB_FLOOR
 from estimators.config import RateSettings
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
-from estimators.preprocess import (chain_group_delay_s, design_chain, initial_state,
-                                   preprocess_batch, preprocess_step)
-from estimators.stft import SlidingSTFT, batch_hop_count, gather_hops, stft_blocks
+from estimators.preprocess import (MAX_ABS, NO_LIMIT, chain_group_delay_s, design_chain,
+                                   initial_state, preprocess_batch)
+from estimators.stage import Chain, split_arrays
+from estimators.stft import analysis_window, batch_hop_count, gather_hops, stft_blocks
 
 # Beat detection lives in estimators.beats; its names stay importable from here.
 from estimators.beats import (BEAT_LIMIT_WINDOW_S, MIN_FS_HZ, MODULATIONS,  # noqa: F401
@@ -66,7 +88,52 @@ from estimators.beats import (BEAT_LIMIT_WINDOW_S, MIN_FS_HZ, MODULATIONS,  # no
                               beat_params, detect_batch, detect_step)
 
 
-# ---------------------------------------------------------------- even resampling
+# -------------------------------------------------------------------- records
+
+
+def _concat_fields(cls, parts: list, fields: tuple):
+    """A record of ``cls`` whose array ``fields`` are the parts' concatenated in time."""
+    if len(parts) == 1:
+        return parts[0]
+    return cls(*(np.concatenate([getattr(part, name) for part in parts]) for name in fields))
+
+
+def _split_by_hops(record, bounds) -> list:
+    """Cut a per-hop record (``take``, ``len``) at hop ``bounds``."""
+    edges = [0, *[int(b) for b in bounds], len(record)]
+    return [record.take(slice(lo, hi)) for lo, hi in zip(edges[:-1], edges[1:])]
+
+
+@dataclass(frozen=True)
+class PulseBeats:
+    """Output of :class:`BeatDetection` for a stretch of raw samples: the beats decided
+    in it and the stretch's raw timestamps ``time_s`` (n,), which the resampling reads
+    its grid's timestamps from."""
+
+    beats: Beats
+    time_s: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.time_s)
+
+    @staticmethod
+    def concat(parts: list["PulseBeats"]) -> "PulseBeats":
+        return PulseBeats(Beats.concat([p.beats for p in parts]),
+                          np.concatenate([p.time_s for p in parts]))
+
+    def split(self, bounds) -> list["PulseBeats"]:
+        """Cut at raw-sample ``bounds`` (counted from the first sample of this stretch,
+        which must start the record): each part holds the beats decided in it (a beat is
+        decided when its ``ready``-th raw sample arrives)."""
+        edges = [0, *[int(b) for b in bounds], len(self)]
+        return [PulseBeats(_take_beats(self.beats, (self.beats.ready > lo)
+                                       & (self.beats.ready <= hi)), self.time_s[lo:hi])
+                for lo, hi in zip(edges[:-1], edges[1:])]
+
+
+def _take_beats(beats: Beats, keep: np.ndarray) -> Beats:
+    return Beats(*(getattr(beats, name)[keep] for name in
+                   ("index", "position", "ready", "ready_s", "features", "time_s")))
 
 
 @dataclass(frozen=True)
@@ -79,32 +146,87 @@ class ModulationSamples:
     time_s: np.ndarray
     ready_s: np.ndarray
 
+    _FIELDS = ("values", "time_s", "ready_s")
+
     def __len__(self) -> int:
         return len(self.time_s)
 
+    def take(self, index) -> "ModulationSamples":
+        return ModulationSamples(*(getattr(self, name)[index] for name in self._FIELDS))
 
-@dataclass
+    @staticmethod
+    def concat(parts: list["ModulationSamples"]) -> "ModulationSamples":
+        return _concat_fields(ModulationSamples, parts, ModulationSamples._FIELDS)
+
+
+def _copy_state(state):
+    """A copy of a (dataclass) state with its array and list fields copied too: what a
+    pure step hands to a function that updates its state in place."""
+    new = copy.copy(state)
+    fields = new.__dict__
+    for name, value in fields.items():
+        if isinstance(value, (np.ndarray, list)):
+            fields[name] = value.copy()
+    return new
+
+
+# --------------------------------------------------------------------- beats
+
+
+@dataclass(frozen=True)
+class BeatDetection:
+    """Stage 1: beats of a raw PPG or ECG, ``(x, t) -> PulseBeats``.
+
+    A stage wrapper of :func:`estimators.beats.detect_step` (which updates the state it
+    is given, so the step hands it a copy) and :func:`estimators.beats.detect_batch`
+    (its causal twin)."""
+
+    params: BeatParams
+
+    def initial_state(self) -> BeatState:
+        return beat_initial_state(self.params)
+
+    def step(self, state: BeatState, x) -> tuple[BeatState, PulseBeats]:
+        samples, t = x
+        t = np.asarray(t, dtype=np.float64)
+        state, beats = detect_step(_copy_state(state), samples, t, self.params)
+        return state, PulseBeats(beats, t)
+
+    def batch(self, x) -> PulseBeats:
+        samples, t = x
+        return PulseBeats(detect_batch(samples, t, self.params), np.asarray(t, np.float64))
+
+    def split(self, x, bounds) -> list:
+        return split_arrays(x, bounds)
+
+    def join(self, parts) -> PulseBeats:
+        return PulseBeats.concat(list(parts))
+
+
+# ---------------------------------------------------------------- even resampling
+
+
+@dataclass(frozen=True)
 class ResampleState:
-    """Carried by :func:`resample_step`: grid samples seen but not yet emitted, and the
-    newest beat."""
+    """Carried by :func:`resample_step`: ``scalars`` ``[raw samples seen, next grid
+    sample, newest beat's index, its position, its three features]`` and ``pending_s``,
+    the timestamps of the grid samples seen but not yet emitted."""
 
-    count: int
-    next_j: int
+    scalars: np.ndarray
     pending_s: np.ndarray
-    last_index: float
-    last_position: float
-    last_features: np.ndarray
 
 
 def resample_initial_state() -> ResampleState:
     """Nothing seen, no beat yet."""
-    return ResampleState(0, 0, np.empty(0), -np.inf, -np.inf, np.full(3, np.nan))
+    return ResampleState(np.array([0.0, 0.0, -np.inf, -np.inf, np.nan, np.nan, np.nan]),
+                         np.empty(0))
 
 
 def resample_step(state: ResampleState, beats: Beats, t: np.ndarray, decimation: int,
                   params: BeatParams) -> tuple[ResampleState, ModulationSamples]:
     """Emit the grid samples that the beats of this chunk (and the raw samples seen so
-    far) decide.
+    far) decide; compiled (:func:`estimators._kernels.resample_chunk`). Pure: ``state``
+    is not changed.
 
     Grid sample ``j`` sits at raw sample ``k_j = j M + M - 1`` (``M = decimation``, the
     convention of :mod:`estimators.preprocess`) and takes its timestamp. Its value is
@@ -116,25 +238,46 @@ def resample_step(state: ResampleState, beats: Beats, t: np.ndarray, decimation:
 
     Parameters
     ----------
-    state : carried state (updated in place and returned).
+    state : from :func:`resample_initial_state` or a previous step.
     beats : beats decided in this chunk (from :func:`detect_step` on the same chunk).
     t : timestamps of the raw samples of this chunk.
     decimation : ``M``.
     params : the beat parameters the beats came from.
     """
-    n = len(t)
+    t = np.ascontiguousarray(t, dtype=np.float64)
+    m = int(decimation)
+    before = int(state.scalars[0])
+    pending = np.concatenate((state.pending_s, t[(m - 1 - before) % m::m]))
+    scalars = state.scalars.copy()
+    values = np.empty((len(pending), 3))
+    times, ready_s = np.empty(len(pending)), np.empty(len(pending))
+    n_out = _kernels.resample_chunk(
+        np.ascontiguousarray(beats.index, dtype=np.int64),
+        np.ascontiguousarray(beats.position, dtype=np.float64),
+        np.ascontiguousarray(beats.ready, dtype=np.int64),
+        np.ascontiguousarray(beats.features, dtype=np.float64).reshape(-1, 3), pending, t,
+        scalars, m, int(params.lookahead), int(params.max_gap), values, times, ready_s)
+    return (ResampleState(scalars, pending[n_out:].copy()),
+            ModulationSamples(values[:n_out], times[:n_out], ready_s[:n_out]))
+
+
+def resample_batch(beats: Beats, t: np.ndarray, decimation: int,
+                   params: BeatParams) -> ModulationSamples:
+    """All grid samples of a record in one call, in plain Python: the twin of
+    :func:`resample_step` (equal to any chunking of it fed with the same beats)."""
+    t = np.asarray(t, dtype=np.float64)
     m = decimation
-    before = state.count
-    state.count += n
-    first = (m - 1 - before) % m
-    state.pending_s = np.concatenate((state.pending_s, t[first::m]))
+    grid_s = t[m - 1::m]
     r, gap = params.lookahead, params.max_gap
+    next_j, last_index, last_position = 0, -np.inf, -np.inf
+    last_features = np.full(3, np.nan)
     values, times, ready = [], [], []
 
     def emit(limit: float, nan_ready_base: float, beat_ready: float, interp):
         """Emit grid samples with ``k_j < limit``."""
-        while state.next_j * m + m - 1 < limit:
-            k_j = state.next_j * m + m - 1
+        nonlocal next_j
+        while next_j * m + m - 1 < limit:
+            k_j = next_j * m + m - 1
             value = interp(k_j)
             if np.isnan(value).any():
                 when = min(beat_ready, r + max(k_j + 1, nan_ready_base))
@@ -142,15 +285,14 @@ def resample_step(state: ResampleState, beats: Beats, t: np.ndarray, decimation:
                 when = beat_ready
             values.append(value)
             ready.append(when)
-            times.append(state.pending_s[0])
-            state.pending_s = state.pending_s[1:]
-            state.next_j += 1
+            times.append(grid_s[next_j])
+            next_j += 1
 
     for i in range(len(beats)):
         index, position = beats.index[i], beats.position[i]
         features = beats.features[i]
-        closes = index - state.last_index <= gap
-        p0, f0 = state.last_position, state.last_features
+        closes = index - last_index <= gap
+        p0, f0 = last_position, last_features
 
         def interp(k_j, p0=p0, f0=f0, position=position, features=features, closes=closes):
             if not closes or k_j < p0:
@@ -158,24 +300,41 @@ def resample_step(state: ResampleState, beats: Beats, t: np.ndarray, decimation:
             w = (k_j - p0) / (position - p0)
             return (1.0 - w) * f0 + w * features
 
-        emit(position, state.last_index + gap + 1, beats.ready[i], interp)
-        state.last_index, state.last_position = float(index), float(position)
-        state.last_features = features.copy()
+        emit(position, last_index + gap + 1, beats.ready[i], interp)
+        last_index, last_position = float(index), float(position)
+        last_features = features.copy()
     # Gap rule: no beat can now land before these grid samples in time to close the gap.
-    if state.count - r - state.last_index > gap:
-        emit(state.count - r, state.last_index + gap + 1, np.inf,
-             lambda k_j: np.full(3, np.nan))
+    if len(t) - r - last_index > gap:
+        emit(len(t) - r, last_index + gap + 1, np.inf, lambda k_j: np.full(3, np.nan))
     ready = np.asarray(ready, dtype=np.int64) if ready else np.empty(0, np.int64)
-    ready_s = t[ready - 1 - before] if len(ready) else np.empty(0)
-    return state, ModulationSamples(np.array(values).reshape(-1, 3), np.array(times),
-                                    ready_s)
+    ready_s = t[ready - 1] if len(ready) else np.empty(0)
+    return ModulationSamples(np.array(values).reshape(-1, 3), np.array(times), ready_s)
 
 
-def resample_batch(beats: Beats, t: np.ndarray, decimation: int,
-                   params: BeatParams) -> ModulationSamples:
-    """All grid samples of a record in one call (equal to any chunking of
-    :func:`resample_step` fed with the same beats)."""
-    return resample_step(resample_initial_state(), beats, t, decimation, params)[1]
+@dataclass(frozen=True)
+class Resampling:
+    """Stage 2: ``PulseBeats -> ModulationSamples`` on the analysis grid (one sample in
+    ``decimation`` raw samples); step :func:`resample_step`, batch
+    :func:`resample_batch`."""
+
+    params: BeatParams
+    decimation: int
+
+    def initial_state(self) -> ResampleState:
+        return resample_initial_state()
+
+    def step(self, state: ResampleState, x: PulseBeats) -> tuple[ResampleState,
+                                                                 ModulationSamples]:
+        return resample_step(state, x.beats, x.time_s, self.decimation, self.params)
+
+    def batch(self, x: PulseBeats) -> ModulationSamples:
+        return resample_batch(x.beats, x.time_s, self.decimation, self.params)
+
+    def split(self, x: PulseBeats, bounds) -> list:
+        return x.split(bounds)
+
+    def join(self, parts) -> ModulationSamples:
+        return ModulationSamples.concat(list(parts))
 
 
 # ------------------------------------------------------------- modulation spectra
@@ -203,7 +362,7 @@ _N_SUMS = 7
 
 @dataclass(frozen=True)
 class ModulationHops:
-    """Per-hop output of :class:`ModulationBank`.
+    """Per-hop output of :class:`ModulationSpectra`.
 
     ``spectra`` (P, 3, F) band spectra; ``integrity`` (P, 3); ``depth`` (P, 3) RMS of
     each band-passed modulation over the window relative to its scale (the mean beat
@@ -234,6 +393,12 @@ class ModulationHops:
             return parts[0]
         return ModulationHops(*(np.concatenate([getattr(h, name) for h in parts])
                                 for name in ModulationHops._FIELDS))
+
+    @staticmethod
+    def empty(n_bins: int) -> "ModulationHops":
+        e = np.empty(0)
+        return ModulationHops(np.empty((0, 3, n_bins)), np.empty((0, 3)), np.empty((0, 3)),
+                              e, e, e)
 
 
 def band_spectra(magnitude: np.ndarray, grid: deshape_mod.DeshapeGrid,
@@ -291,14 +456,21 @@ def harmonic_support(spectra: np.ndarray, rates_per_min: np.ndarray, weight: flo
     """
     if weight == 0:
         return spectra
+    j, frac, inside = harmonic_taps(rates_per_min)
+    doubled = spectra[..., j] * (1.0 - frac) + spectra[..., j + 1] * frac
+    doubled = np.where(inside, doubled, 0.0)
+    return spectra + weight * np.minimum(cap * spectra, doubled)
+
+
+def harmonic_taps(rates_per_min: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Where :func:`harmonic_support` reads ``S(2 f)`` on an even grid: the bin below
+    twice each rate, the fraction of the way to the next one, and whether twice the rate
+    is still on the grid."""
     rates = np.asarray(rates_per_min, dtype=np.float64)
     position = (2.0 * rates - rates[0]) / (rates[1] - rates[0])
     inside = position <= len(rates) - 1
     j = np.minimum(np.floor(position).astype(np.int64), len(rates) - 2)
-    frac = position - j
-    doubled = spectra[..., j] * (1.0 - frac) + spectra[..., j + 1] * frac
-    doubled = np.where(inside, doubled, 0.0)
-    return spectra + weight * np.minimum(cap * spectra, doubled)
+    return j, position - j, inside
 
 
 def nyquist_mask(spectra: np.ndarray, rates_per_min: np.ndarray,
@@ -369,68 +541,166 @@ def peak_concentration(spectra: np.ndarray, centre_bins: np.ndarray, halfwidth_b
     return np.where(inside, score, 0.0)
 
 
-class ModulationBank:
-    """The three modulation series through band-pass, sliding STFT and band spectra.
+
+@dataclass(frozen=True)
+class BankState:
+    """Carried by :class:`ModulationSpectra`: the band-pass state of the three series
+    (``zi`` (3, S, 2) and the scalars of :func:`estimators._kernels.preprocess_chunk`,
+    (3, 7)), their first finite values ``offset`` (3,), the running ``sums`` (7,),
+    the ``ring`` of the newest window (see :func:`estimators._kernels.modulation_frames`)
+    and ``counters`` ``[analysis samples seen, next hop]``."""
+
+    zi: np.ndarray
+    pre_scalars: np.ndarray
+    offset: np.ndarray
+    sums: np.ndarray
+    ring: np.ndarray
+    counters: np.ndarray
+
+    def copy(self) -> "BankState":
+        return BankState(self.zi.copy(), self.pre_scalars.copy(), self.offset.copy(),
+                         self.sums.copy(), self.ring.copy(), self.counters.copy())
+
+
+_NO_LIMIT_STATE = NO_LIMIT.initial_state()
+"""The limiter state the compiled pre-processing is handed; with no range limit it is
+never read nor written."""
+
+
+@dataclass(frozen=True)
+class ModulationSpectra:
+    """Stage 3: ``ModulationSamples -> ModulationHops``, the three modulation series
+    through band-pass, sliding STFT and band spectra.
 
     The band-pass is the respiration chain of :func:`estimators.preprocess.design_chain`
     at the analysis rate; non-finite samples (gaps, dropped beats) are held and counted,
     and a modulation that holds one value for :data:`MODULATION_STUCK_S` counts as stuck;
     both lower the window's integrity. Running sums carried beside the frames give each
-    window's mean beat rate and each modulation's depth. ``update(samples) ->
-    ModulationHops`` (any chunking gives the same hops); :meth:`batch` is the one-call
-    twin.
+    window's mean beat rate and each modulation's depth. Hops fall on the schedule of
+    :mod:`estimators.stft` (window, start-up window, hop and FFT length of the breathing
+    settings). Build it with :meth:`for_settings`.
+
+    ``step``: one compiled pass for the filters, sums and frames of all three series
+    (:func:`estimators._kernels.modulation_frames`), one FFT call for every frame of
+    the chunk, one compiled pass for tilt, Nyquist mask and harmonic support
+    (:func:`estimators._kernels.shape_modulation_spectra`). ``batch``: the plain twin
+    (:meth:`hops_batch`: scipy filters, :func:`estimators.stft.stft_blocks` and the
+    numpy functions of this module), which also offers the zero-phase variant.
     """
 
-    def __init__(self, settings: RateSettings, fs_analysis: float):
-        self.settings, self.fs_analysis = settings, fs_analysis
+    settings: RateSettings
+    fs_analysis: float
+    window: int
+    min_window: int
+    n_fft: int
+    hop: float
+    chain: object
+    min_run: int
+    grid: deshape_mod.DeshapeGrid
+    rates: np.ndarray
+    filter_delay_s: np.ndarray
+    windows: np.ndarray
+    tilt: np.ndarray
+    harmonic: tuple
+
+    @classmethod
+    def for_settings(cls, settings: RateSettings, fs_analysis: float) -> "ModulationSpectra":
         window = max(4, int(round(settings.window_s * fs_analysis)))
         min_window = max(4, min(window, int(round(settings.min_window_s * fs_analysis))))
         n_fft = max(settings.n_fft(fs_analysis), 1 << int(np.ceil(np.log2(window))))
-        self.window, self.min_window, self.n_fft = window, min_window, n_fft
-        self.hop = settings.hop_s * fs_analysis
-        self.chain = design_chain("resp", "rr", fs_analysis, fs_analysis)
-        self.min_run = max(3, int(round(MODULATION_STUCK_S * fs_analysis)))
-        self.grid = deshape_mod.make_grid(fs_analysis, n_fft, settings.band_hz)
-        # The causal modulation filters' group delay at each rate of the grid: a live
-        # estimate describes its window centre less this delay at its rate.
-        self.filter_delay_s = chain_group_delay_s(self.chain, fs_analysis,
-                                                  self.grid.rates_per_min / 60.0)
-        self.stfts = [SlidingSTFT(window, min_window, self.hop, n_fft) for _ in MODULATIONS]
-        self.reset()
+        chain = design_chain("resp", "rr", fs_analysis, fs_analysis)
+        grid = deshape_mod.make_grid(fs_analysis, n_fft, settings.band_hz)
+        rates = grid.rates_per_min
+        # Row L - min_window: the unit-sum periodic Hann of L samples, zero beyond.
+        windows = np.zeros((window - min_window + 1, window))
+        for length in range(min_window, window + 1):
+            windows[length - min_window, :length] = analysis_window(length)[0]
+        return cls(settings, float(fs_analysis), window, min_window, n_fft,
+                   settings.hop_s * fs_analysis, chain,
+                   max(3, int(round(MODULATION_STUCK_S * fs_analysis))), grid, rates,
+                   # The causal modulation filters' group delay at each rate of the grid:
+                   # a live estimate describes its window centre less this delay.
+                   chain_group_delay_s(chain, fs_analysis, rates / 60.0), windows,
+                   tilt_spectra(np.ones(len(rates)), rates, settings.modulation_tilt),
+                   harmonic_taps(rates))
 
-    def reset(self) -> None:
-        self.pre_states = [initial_state(self.chain) for _ in MODULATIONS]
-        for stft in self.stfts:
-            stft.reset()
-        self._sums = np.zeros(_N_SUMS)
-        self._offset = np.full(3, np.nan)
+    def initial_state(self) -> BankState:
+        scalars = initial_state(self.chain).scalars
+        return BankState(np.zeros((3, self.chain.pre.shape[0], 2)), np.tile(scalars, (3, 1)),
+                         np.full(3, np.nan), np.zeros(_N_SUMS),
+                         np.zeros((_kernels.BANK_ROWS, self.window + 1)),
+                         np.array([0.0, 1.0]))
+
+    def empty(self) -> "ModulationHops":
+        return ModulationHops.empty(len(self.rates))
+
+    def step(self, state: BankState, x: ModulationSamples) -> tuple[BankState,
+                                                                    "ModulationHops"]:
+        n = len(x)
+        if n == 0:
+            return state, self.empty()
+        state = state.copy()
+        count = state.counters[0]
+        most = int((count + n) / self.hop) - int(count / self.hop) + 2
+        frames = np.zeros((3 * most, self.window))
+        integrity, depth = np.empty((most, 3)), np.empty((most, 3))
+        beat_rate, time_s, emitted_s = np.empty(most), np.empty(most), np.empty(most)
+        n_hops = _kernels.modulation_frames(
+            np.ascontiguousarray(x.values, dtype=np.float64),
+            np.ascontiguousarray(x.time_s, dtype=np.float64),
+            np.ascontiguousarray(x.ready_s, dtype=np.float64), self.chain.pre, state.zi,
+            state.pre_scalars, _NO_LIMIT_STATE, float(self.min_run), MAX_ABS, state.offset,
+            state.sums, state.ring, state.counters, self.windows, self.min_window,
+            float(self.hop), frames, integrity, depth, beat_rate, time_s, emitted_s)
+        if n_hops == 0:
+            return state, self.empty()
+        columns = np.fft.rfft(frames[:3 * n_hops], self.n_fft, axis=1)
+        if self.settings.deshape:
+            spectra = deshape_mod.deshape(np.abs(columns), self.grid, self.settings.gamma)
+        else:
+            spectra = np.abs(columns[:, self.grid.band])
+        spectra = spectra.reshape(n_hops, 3, len(self.rates))
+        j, frac, inside = self.harmonic
+        _kernels.shape_modulation_spectra(spectra, self.tilt, self.rates, beat_rate[:n_hops],
+                                          j, frac, inside, float(self.settings.harmonic_weight),
+                                          float(self.settings.harmonic_cap))
+        return state, ModulationHops(spectra, integrity[:n_hops], depth[:n_hops],
+                                     beat_rate[:n_hops], time_s[:n_hops], emitted_s[:n_hops])
+
+    def batch(self, x: ModulationSamples) -> "ModulationHops":
+        return self.hops_batch(x, zero_phase=False)
+
+    def split(self, x: ModulationSamples, bounds) -> list:
+        return _split_by_hops(x, bounds)
+
+    def join(self, parts) -> "ModulationHops":
+        return ModulationHops.concat(list(parts))
+
+    # The plain twin.
 
     @staticmethod
-    def _first_finite(values: np.ndarray, known: np.ndarray) -> np.ndarray:
-        """Per column, ``known`` where set, else the first finite value of ``values``."""
-        out = known.copy()
+    def _first_finite(values: np.ndarray) -> np.ndarray:
+        """Per column, the first finite value of ``values`` (NaN when none)."""
+        out = np.full(values.shape[1], np.nan)
         for c in range(values.shape[1]):
-            if np.isnan(out[c]):
-                finite = np.flatnonzero(np.isfinite(values[:, c]))
-                if len(finite):
-                    out[c] = values[finite[0], c]
+            finite = np.flatnonzero(np.isfinite(values[:, c]))
+            if len(finite):
+                out[c] = values[finite[0], c]
         return out
 
     @staticmethod
-    def _running_sums(samples: ModulationSamples, filtered: list[np.ndarray],
-                      start: np.ndarray) -> np.ndarray:
-        """Running sums (:data:`_N_SUMS`, n) from ``start``: interval sum and count,
-        amplitude sum and count (finite values only), squares of the band-passed
-        modulations."""
+    def _running_sums(samples: ModulationSamples, filtered: list[np.ndarray]) -> np.ndarray:
+        """Running sums (:data:`_N_SUMS`, n): interval sum and count, amplitude sum and
+        count (finite values only), squares of the band-passed modulations."""
         rows = []
         for column in (2, 1):
             value = samples.values[:, column]
             finite = np.isfinite(value)
             rows += [np.where(finite, value, 0.0), finite.astype(np.float64)]
         rows += [y ** 2 for y in filtered]
-        return start[:, None] + np.cumsum(np.array(rows), axis=1)
+        return np.cumsum(np.array(rows), axis=1)
 
-    def _hops(self, columns) -> ModulationHops:
+    def _hops(self, columns) -> "ModulationHops":
         """Hops from aligned columns (one per modulation) whose aux rows are: rejected,
         stuck (that modulation), the running sums, ready_s."""
         first, last = columns[0].first_count, columns[0].last_count
@@ -447,50 +717,28 @@ class ModulationBank:
             rms = np.sqrt(np.maximum(sums[4:7], 0.0) / length)  # (3, P)
             scale = np.stack([mean_amplitude, mean_amplitude, mean_interval])
             depth = np.where(scale > 0, rms / scale, 0.0).T
-        beat_rate = 60.0 / mean_interval
+            beat_rate = 60.0 / mean_interval
         spectra = np.stack([band_spectra(np.abs(col.spectra), self.grid, self.settings)
                             for col in columns], axis=1)
-        spectra = tilt_spectra(spectra, self.grid.rates_per_min, self.settings.modulation_tilt)
-        spectra = nyquist_mask(spectra, self.grid.rates_per_min, beat_rate)
-        spectra = harmonic_support(spectra, self.grid.rates_per_min,
-                                   self.settings.harmonic_weight, self.settings.harmonic_cap)
+        spectra = tilt_spectra(spectra, self.rates, self.settings.modulation_tilt)
+        spectra = nyquist_mask(spectra, self.rates, beat_rate)
+        spectra = harmonic_support(spectra, self.rates, self.settings.harmonic_weight,
+                                   self.settings.harmonic_cap)
         return ModulationHops(spectra, integrity, np.nan_to_num(depth, nan=0.0), beat_rate,
                               aux.time_s, aux.aux_last[2 + _N_SUMS])
 
-    def _empty(self) -> ModulationHops:
-        e = np.empty(0)
-        return ModulationHops(np.empty((0, 3, len(self.grid.freqs_hz))), np.empty((0, 3)),
-                              np.empty((0, 3)), e, e, e)
-
-    def update(self, samples: ModulationSamples) -> ModulationHops:
+    def hops_batch(self, samples: ModulationSamples, zero_phase: bool) -> "ModulationHops":
+        """All hops of a record in one call with scipy's filters and numpy: the plain twin
+        of :meth:`step` (causal), or with ``zero_phase`` forward-backward band-passes
+        (the offline path)."""
         if len(samples) == 0:
-            return self._empty()
+            return self.empty()
         # Each series enters the band-pass relative to its first value: a filter at rest
         # would otherwise see a step from 0 to the beat interval (or level) at the start.
-        self._offset = self._first_finite(samples.values, self._offset)
-        centred = samples.values - np.nan_to_num(self._offset)
-        analyses = []
-        for c in range(3):
-            self.pre_states[c], a = preprocess_step(self.pre_states[c], centred[:, c],
-                                                    samples.time_s, self.chain, 1,
-                                                    self.min_run)
-            analyses.append(a)
-        sums = self._running_sums(samples, [a.values for a in analyses], self._sums)
-        self._sums = sums[:, -1].copy()
-        columns = [self.stfts[c].update(a.values, a.timestamps,
-                                        (a.cum_rejected, a.cum_stuck, *sums, samples.ready_s))
-                   for c, a in enumerate(analyses)]
-        return self._hops(columns) if len(columns[0]) else self._empty()
-
-    def batch(self, samples: ModulationSamples, zero_phase: bool) -> ModulationHops:
-        """All hops of a record in one call (causal twin, or zero-phase band-pass)."""
-        if len(samples) == 0:
-            return self._empty()
-        offset = self._first_finite(samples.values, np.full(3, np.nan))
-        centred = samples.values - np.nan_to_num(offset)
+        centred = samples.values - np.nan_to_num(self._first_finite(samples.values))
         analyses = [preprocess_batch(centred[:, c], samples.time_s, self.chain, 1,
                                      self.min_run, zero_phase) for c in range(3)]
-        sums = self._running_sums(samples, [a.values for a in analyses], np.zeros(_N_SUMS))
+        sums = self._running_sums(samples, [a.values for a in analyses])
         # Block by block (estimators.stft.stft_blocks): only the band spectra of each
         # block are kept, never every complex column of the three modulations.
         blocks = zip(*[stft_blocks(a.values, a.timestamps, self.window, self.min_window,
@@ -498,12 +746,289 @@ class ModulationBank:
                                    (a.cum_rejected, a.cum_stuck, *sums, samples.ready_s))
                        for a in analyses])
         return gather_hops(batch_hop_count(len(samples), self.min_window, self.hop),
-                           (self._hops(list(columns)) for columns in blocks), self._empty())
+                           (self._hops(list(columns)) for columns in blocks), self.empty())
+
+
+class ModulationBank:
+    """Owns a :class:`ModulationSpectra` stage's state for one channel:
+    ``update(samples) -> ModulationHops`` (any chunking gives the same hops),
+    :meth:`batch` the one-call twin, :meth:`reset` a fresh start. Its parameters
+    (``grid``, ``filter_delay_s``, ``window``, ...) are the stage's."""
+
+    def __init__(self, settings: RateSettings, fs_analysis: float,
+                 stage: ModulationSpectra | None = None):
+        self.stage = (ModulationSpectra.for_settings(settings, fs_analysis) if stage is None
+                      else stage)
+        self.reset()
+
+    def __getattr__(self, name):
+        # The stage's parameters read as the bank's own (settings, grid, window, ...).
+        if name == "stage":
+            raise AttributeError(name)
+        return getattr(self.stage, name)
+
+    def reset(self) -> None:
+        self.state = self.stage.initial_state()
+
+    def update(self, samples: ModulationSamples) -> "ModulationHops":
+        self.state, hops = self.stage.step(self.state, samples)
+        return hops
+
+    def batch(self, samples: ModulationSamples, zero_phase: bool) -> "ModulationHops":
+        """All hops of a record in one call (causal twin, or zero-phase band-pass)."""
+        return self.stage.hops_batch(samples, zero_phase)
+
+
+# ------------------------------------------------------------------------ trackers
+
+
+@dataclass(frozen=True)
+class TrackedModulations:
+    """Output of :class:`ModulationTrackers`: ``rate`` and ``confidence`` (P, 3) per
+    modulation (posterior mass near the mode) and the ``hops`` they refer to (with
+    fixed-lag smoothing, hops ``L`` back, whose ``emitted_s`` is then the newest sample
+    of the hop that completed the output)."""
+
+    hops: "ModulationHops"
+    rate: np.ndarray
+    confidence: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.rate)
+
+    def take(self, index) -> "TrackedModulations":
+        return TrackedModulations(self.hops.take(index), self.rate[index],
+                                  self.confidence[index])
+
+    @staticmethod
+    def concat(parts: list["TrackedModulations"]) -> "TrackedModulations":
+        if len(parts) == 1:
+            return parts[0]
+        return TrackedModulations(ModulationHops.concat([p.hops for p in parts]),
+                                  np.concatenate([p.rate for p in parts]),
+                                  np.concatenate([p.confidence for p in parts]))
+
+
+@dataclass(frozen=True)
+class RidgeState:
+    """Carried by :class:`ModulationTrackers`: the three posteriors (3, F), the hops
+    seen, and for fixed-lag smoothing the newest ``L`` hops' forward posteriors,
+    emissions, weights and spectra (3, L, ...) and those hops themselves (``held``)."""
+
+    posterior: np.ndarray
+    hops_seen: int
+    alphas: np.ndarray
+    emissions: np.ndarray
+    weights: np.ndarray
+    readouts: np.ndarray
+    held: "ModulationHops"
+
+
+def tracker_params(settings: RateSettings, rates: np.ndarray) -> tracker_mod.TrackerParams:
+    """Ridge-tracker parameters on the grid ``rates`` (per minute)."""
+    return tracker_mod.make_params(rates[1] - rates[0], settings.hop_s,
+                                   settings.max_change_per_min_per_s,
+                                   settings.jump_probability,
+                                   settings.confidence_halfwidth_per_min, settings.lag_hops)
+
+
+def offline_track(spectra: np.ndarray, weights: np.ndarray, rates: np.ndarray,
+                  params: tracker_mod.TrackerParams, power: float):
+    """Viterbi rate (refined on the spectrum's peak near the path) and forward-backward
+    confidence (posterior mass near the path) per hop: the offline twin of the tracker."""
+    rate, conf, _ = tracker_mod.offline_track(spectra, weights, params, power, rates)
+    return rate, conf
+
+
+@dataclass(frozen=True)
+class ModulationTrackers:
+    """Stage 4: ``ModulationHops -> TrackedModulations``, one hidden-Markov ridge
+    tracker (:mod:`estimators.tracker`) per modulation, emissions tempered by the
+    modulation's integrity.
+
+    ``step`` without lag: all three forward filters and read-outs in one compiled call
+    (:func:`estimators._kernels.track_ridges`); with ``lag_hops = L > 0``, fixed-lag
+    smoothing (:func:`estimators.tracker.smooth_oldest`) over the newest ``L + 1`` hops,
+    in numpy. ``batch``: a fresh :class:`estimators.tracker.RidgeTracker` per
+    modulation over the whole record (the plain twin)."""
+
+    rates: np.ndarray
+    params: tracker_mod.TrackerParams
+    power: float
+
+    def initial_state(self) -> RidgeState:
+        n_bins = len(self.rates)
+        none = np.empty((3, 0, n_bins))
+        return RidgeState(np.tile(tracker_mod.initial_posterior(n_bins), (3, 1)), 0, none,
+                          none, np.empty((3, 0)), none, ModulationHops.empty(n_bins))
+
+    def _empty(self, hops: "ModulationHops") -> TrackedModulations:
+        return TrackedModulations(hops.take(slice(0, 0)), np.empty((0, 3)), np.empty((0, 3)))
+
+    def step(self, state: RidgeState, x: "ModulationHops") -> tuple[RidgeState,
+                                                                   TrackedModulations]:
+        if len(x) == 0:
+            return state, self._empty(x)
+        if self.params.lag_hops:
+            return self._step_lagged(state, x)
+        posterior = state.posterior.copy()
+        rate, confidence = np.empty((len(x), 3)), np.empty((len(x), 3))
+        _kernels.track_ridges(np.ascontiguousarray(x.spectra, dtype=np.float64),
+                              np.ascontiguousarray(x.integrity, dtype=np.float64), posterior,
+                              self.params.transition, float(self.params.jump_probability),
+                              float(self.power), tracker_mod.EMISSION_FLOOR,
+                              float(self.params.halfwidth_bins), self.rates, rate, confidence)
+        return (replace(state, posterior=posterior, hops_seen=state.hops_seen + len(x)),
+                TrackedModulations(x, rate, confidence))
+
+    def _step_lagged(self, state: RidgeState, x: "ModulationHops"):
+        lag, n_new = self.params.lag_hops, len(x)
+        h = state.alphas.shape[1]  # held hops: the newest min(L, hops seen)
+        posterior = state.posterior.copy()
+        keep = {name: [] for name in ("alphas", "emissions", "weights", "readouts")}
+        rate = np.empty((max(0, h + n_new - lag), 3))
+        confidence = np.empty_like(rate)
+        for c in range(3):
+            weights = np.clip(x.integrity[:, c], 0.0, 1.0)
+            emissions = tracker_mod.emissions_from_spectra(x.spectra[:, c], self.power)
+            posterior[c], alphas = tracker_mod.forward_step(state.posterior[c], emissions,
+                                                            weights, self.params)
+            rows = {"alphas": np.concatenate((state.alphas[c], alphas)),
+                    "emissions": np.concatenate((state.emissions[c], emissions)),
+                    "weights": np.concatenate((state.weights[c], weights)),
+                    "readouts": np.concatenate((state.readouts[c], x.spectra[:, c]))}
+            smoothed = [tracker_mod.smooth_oldest(rows["alphas"][j - lag:j + 1],
+                                                  rows["emissions"][j - lag:j + 1],
+                                                  rows["weights"][j - lag:j + 1], self.params)
+                        for j in range(max(h, lag), h + n_new)]
+            if smoothed:
+                rate[:, c], confidence[:, c] = tracker_mod.read_posterior(
+                    np.array(smoothed), self.rates, self.params.halfwidth_bins,
+                    rows["readouts"][max(h, lag) - lag:h + n_new - lag])
+            for name, value in rows.items():
+                keep[name].append(value[max(0, len(value) - lag):])
+        held = ModulationHops.concat([state.held, x])
+        refers = np.arange(max(h, lag), h + n_new) - lag
+        state = RidgeState(posterior, state.hops_seen + n_new,
+                           *(np.stack(keep[name]) for name in ("alphas", "emissions",
+                                                               "weights", "readouts")),
+                           held.take(slice(max(0, len(held) - lag), None)))
+        return state, TrackedModulations(_lagged_hops(held, refers, lag), rate, confidence)
+
+    def batch(self, x: "ModulationHops") -> TrackedModulations:
+        if len(x) == 0:
+            return self._empty(x)
+        rate, confidence, index = [], [], None
+        for c in range(3):
+            tracker = tracker_mod.RidgeTracker(self.rates, self.params, self.power)
+            r, conf, index = tracker.update(x.spectra[:, c], x.integrity[:, c])
+            rate.append(r)
+            confidence.append(conf)
+        return TrackedModulations(_lagged_hops(x, index, self.params.lag_hops),
+                                  np.column_stack(rate).reshape(-1, 3),
+                                  np.column_stack(confidence).reshape(-1, 3))
+
+    def split(self, x: "ModulationHops", bounds) -> list:
+        return _split_by_hops(x, bounds)
+
+    def join(self, parts) -> TrackedModulations:
+        return TrackedModulations.concat(list(parts))
+
+
+def _lagged_hops(hops: "ModulationHops", refers: np.ndarray, lag: int) -> "ModulationHops":
+    """The hops ``refers`` whose outputs were completed ``lag`` hops later: their
+    ``emitted_s`` is that of the later hop."""
+    return replace(hops.take(refers), emitted_s=hops.emitted_s[refers + lag])
+
+
+# ------------------------------------------------------------------------- quality
+
+
+@dataclass(frozen=True)
+class RatedModulations:
+    """Output of :class:`ModulationQuality`: per hop ``time_s``, ``emitted_s`` (P,), and
+    per modulation ``rate``, ``confidence`` and ``quality`` (P, 3)."""
+
+    time_s: np.ndarray
+    emitted_s: np.ndarray
+    rate: np.ndarray
+    confidence: np.ndarray
+    quality: np.ndarray
+
+    _FIELDS = ("time_s", "emitted_s", "rate", "confidence", "quality")
+
+    def __len__(self) -> int:
+        return len(self.time_s)
+
+    def take(self, index) -> "RatedModulations":
+        return RatedModulations(*(getattr(self, name)[index] for name in self._FIELDS))
+
+    @staticmethod
+    def concat(parts: list["RatedModulations"]) -> "RatedModulations":
+        return _concat_fields(RatedModulations, parts, RatedModulations._FIELDS)
+
+
+def modulation_quality(hops: "ModulationHops", rate: np.ndarray, rates: np.ndarray,
+                       halfwidth_bins: float) -> np.ndarray:
+    """Quality (P, 3) of each modulation's rate (P, 3): integrity x concentration at the
+    rate (over the bins below half the beat rate) x depth score; ``rates`` the grid (per
+    minute), ``halfwidth_bins`` the confidence half-width in bins."""
+    step = rates[1] - rates[0]
+    limit = 0.5 * np.where(np.isfinite(hops.beat_rate), hops.beat_rate, np.inf)
+    open_bins = (rates[None, :] < limit[:, None]).sum(axis=1)
+    quality = np.empty_like(rate)
+    for c in range(3):
+        conc = peak_concentration(hops.spectra[:, c], (rate[:, c] - rates[0]) / step,
+                                  halfwidth_bins, open_bins)
+        quality[:, c] = quality_mod.quality_index(hops.integrity[:, c],
+                                                  conc * depth_score(hops.depth[:, c]))
+    return quality
+
+
+@dataclass(frozen=True)
+class ModulationQuality:
+    """Stage 5: ``TrackedModulations -> RatedModulations``, each modulation's quality
+    (:func:`modulation_quality`; step compiled,
+    :func:`estimators._kernels.modulation_quality`). No state."""
+
+    rates: np.ndarray
+    halfwidth_bins: float
+
+    def initial_state(self) -> None:
+        return None
+
+    def step(self, state: None, x: TrackedModulations) -> tuple[None, RatedModulations]:
+        hops = x.hops
+        quality = np.empty((len(x), 3))
+        if len(x):
+            _kernels.modulation_quality(
+                np.ascontiguousarray(hops.spectra, dtype=np.float64),
+                np.ascontiguousarray(x.rate, dtype=np.float64),
+                np.ascontiguousarray(hops.integrity, dtype=np.float64),
+                np.ascontiguousarray(hops.depth, dtype=np.float64),
+                np.ascontiguousarray(hops.beat_rate, dtype=np.float64), self.rates,
+                float(self.halfwidth_bins), CONCENTRATION_FULL, DEPTH_FLOOR, DEPTH_FULL,
+                quality)
+        return state, RatedModulations(hops.time_s, hops.emitted_s, x.rate, x.confidence,
+                                       quality)
+
+    def batch(self, x: TrackedModulations) -> RatedModulations:
+        quality = modulation_quality(x.hops, x.rate, self.rates, self.halfwidth_bins)
+        return RatedModulations(x.hops.time_s, x.hops.emitted_s, x.rate, x.confidence,
+                                quality)
+
+    def split(self, x: TrackedModulations, bounds) -> list:
+        return _split_by_hops(x, bounds)
+
+    def join(self, parts) -> RatedModulations:
+        return RatedModulations.concat(list(parts))
 
 
 # ------------------------------------------------------------------------- fusion
 
 _GROUPS = ((0, 1, 2), (0, 1), (0, 2), (1, 2), (0,), (1,), (2,))
+_GROUP_COLUMNS = np.array([list(g) + [-1] * (3 - len(g)) for g in _GROUPS], dtype=np.int64)
+_GROUP_SIZES = np.array([len(g) for g in _GROUPS], dtype=np.int64)
 
 
 def fuse_modulations(rate: np.ndarray, confidence: np.ndarray, quality: np.ndarray,
@@ -592,44 +1117,131 @@ def fuse_modulations(rate: np.ndarray, confidence: np.ndarray, quality: np.ndarr
     return out_rate, np.clip(out_conf, 0.0, 1.0), np.clip(out_qual, 0.0, 1.0)
 
 
-# ---------------------------------------------------------------- whole chain
 
 
-def tracker_params(settings: RateSettings, rates: np.ndarray) -> tracker_mod.TrackerParams:
-    """Ridge-tracker parameters on the grid ``rates`` (per minute)."""
-    return tracker_mod.make_params(rates[1] - rates[0], settings.hop_s,
-                                   settings.max_change_per_min_per_s,
-                                   settings.jump_probability,
-                                   settings.confidence_halfwidth_per_min, settings.lag_hops)
+@dataclass(frozen=True)
+class BreathingRates:
+    """Output of :class:`ModulationFusion` (and of the whole path): per hop the breathing
+    rate (NaN: no estimate), its calibrated confidence, quality (the support), the
+    instant it describes ``time_s`` (window centre less the filters' group delay at the
+    rate) and ``emitted_s``; per modulation (P, 3) the rates that voted
+    (``modulation_rate``, NaN where withheld), their tracker confidences and qualities."""
+
+    time_s: np.ndarray
+    emitted_s: np.ndarray
+    rate: np.ndarray
+    confidence: np.ndarray
+    quality: np.ndarray
+    modulation_rate: np.ndarray
+    modulation_confidence: np.ndarray
+    modulation_quality: np.ndarray
+
+    _FIELDS = ("time_s", "emitted_s", "rate", "confidence", "quality", "modulation_rate",
+               "modulation_confidence", "modulation_quality")
+
+    def __len__(self) -> int:
+        return len(self.time_s)
+
+    @staticmethod
+    def concat(parts: list["BreathingRates"]) -> "BreathingRates":
+        return _concat_fields(BreathingRates, parts, BreathingRates._FIELDS)
 
 
-def offline_track(spectra: np.ndarray, weights: np.ndarray, rates: np.ndarray,
-                  params: tracker_mod.TrackerParams, power: float):
-    """Viterbi rate (refined on the spectrum's peak near the path) and forward-backward
-    confidence (posterior mass near the path) per hop: the offline twin of the tracker."""
-    rate, conf, _ = tracker_mod.offline_track(spectra, weights, params, power, rates)
-    return rate, conf
+@dataclass(frozen=True)
+class ModulationFusion:
+    """Stage 6: ``RatedModulations -> BreathingRates``. Rates below
+    ``settings.min_quality`` are withheld, the rest fused (:func:`fuse_modulations`;
+    step compiled, :func:`estimators._kernels.fuse_rates`), the fused confidence mapped
+    to the probability of being within 2 breaths/min
+    (:mod:`estimators.breathing_confidence`, map of ``kind``; compiled in the step,
+    :func:`estimators._kernels.calibrate_breathing`) and ``time_s`` moved back
+    by the causal filters' group delay at the rate (``filter_delay_s`` on the grid
+    ``rates``; at ``fallback_rate_per_min``, the grid's median rate, when there is
+    none). No state."""
+
+    kind: str
+    settings: RateSettings
+    rates: np.ndarray
+    filter_delay_s: np.ndarray
+    fallback_rate_per_min: float
+
+    def initial_state(self) -> None:
+        return None
+
+    def _shown(self, x: RatedModulations) -> np.ndarray:
+        return np.where((x.quality >= self.settings.min_quality) & np.isfinite(x.rate),
+                        x.rate, np.nan)
+
+    def _finish(self, x: RatedModulations, shown, rate, confidence, quality,
+                compiled: bool) -> BreathingRates:
+        chosen = breathing_confidence.MAP  # read now: a caller may swap the map
+        model = None if chosen is None else chosen.models.get(self.kind)
+        if compiled and model is not None and len(confidence):
+            raw, confidence = confidence, np.empty(len(confidence))
+            _kernels.calibrate_breathing(raw, quality, model.centre, model.scale, model.beta,
+                                         model.knots_score, model.knots_prob, model.low,
+                                         model.high, PROB_FLOOR, PROB_CEIL, confidence)
+        else:
+            confidence = breathing_confidence.calibrated(self.kind, confidence, quality)
+        at = np.where(np.isfinite(rate), rate, self.fallback_rate_per_min)
+        time_s = x.time_s - np.interp(at, self.rates, self.filter_delay_s)
+        return BreathingRates(time_s, x.emitted_s, rate, confidence, quality, shown,
+                              x.confidence, x.quality)
+
+    def step(self, state: None, x: RatedModulations) -> tuple[None, BreathingRates]:
+        shown = self._shown(x)
+        n_hops = len(x)
+        rate, confidence, quality = np.empty(n_hops), np.empty(n_hops), np.empty(n_hops)
+        if n_hops:
+            s = self.settings
+            _kernels.fuse_rates(np.ascontiguousarray(shown),
+                                np.ascontiguousarray(x.confidence, dtype=np.float64),
+                                np.ascontiguousarray(x.quality, dtype=np.float64),
+                                _GROUP_COLUMNS, _GROUP_SIZES, float(s.agreement_per_min),
+                                int(s.min_agreeing), float(s.min_support),
+                                float(s.fusion_quality_power), rate, confidence, quality)
+        return state, self._finish(x, shown, rate, confidence, quality, compiled=True)
+
+    def batch(self, x: RatedModulations) -> BreathingRates:
+        shown = self._shown(x)
+        s = self.settings
+        return self._finish(x, shown, *fuse_modulations(
+            shown, x.confidence, x.quality, s.agreement_per_min, s.min_agreeing,
+            s.min_support, s.fusion_quality_power), compiled=False)
+
+    def split(self, x: RatedModulations, bounds) -> list:
+        return _split_by_hops(x, bounds)
+
+    def join(self, parts) -> BreathingRates:
+        return BreathingRates.concat(list(parts))
 
 
-def fused_estimates(name: str, kind: str, settings: RateSettings, time_s: np.ndarray,
-                    emitted_s: np.ndarray, rate: np.ndarray, confidence: np.ndarray,
-                    quality: np.ndarray) -> list[Estimate]:
-    """Estimates from per-modulation rates, confidences and qualities (P, 3): rates below
-    ``settings.min_quality`` are withheld, the rest fused (:func:`fuse_modulations`), and
-    the fused confidence mapped to the probability of being within 2 breaths/min
-    (:mod:`estimators.breathing_confidence`)."""
-    shown = np.where((quality >= settings.min_quality) & np.isfinite(rate), rate, np.nan)
-    fused, fconf, fqual = fuse_modulations(shown, confidence, quality,
-                                           settings.agreement_per_min, settings.min_agreeing,
-                                           settings.min_support, settings.fusion_quality_power)
-    fconf = breathing_confidence.calibrated(kind, fconf, fqual)
-    return [Estimate("rr", name, a, b, r, c, q) for a, b, r, c, q in zip(
-        np.asarray(time_s).tolist(), np.asarray(emitted_s).tolist(), fused.tolist(),
-        fconf.tolist(), fqual.tolist())]
+# ---------------------------------------------------------------- whole path
+
+
+def pulse_breathing_chain(kind: str, settings: RateSettings, fs: float) -> Chain:
+    """Breathing from one PPG or ECG channel at raw rate ``fs`` as a chain of stages:
+    raw ``(x, t)`` -> :class:`BeatDetection` -> :class:`Resampling` ->
+    :class:`ModulationSpectra` -> :class:`ModulationTrackers` -> :class:`ModulationQuality`
+    -> :class:`ModulationFusion` -> :class:`BreathingRates`."""
+    if settings.quantity != "rr":
+        raise ParameterError(f"settings.quantity={settings.quantity!r} must be 'rr'")
+    params = replace(beat_params(kind, fs), interval_tolerance=settings.beat_interval_tolerance)
+    decimation = settings.decimation(fs)
+    spectra = ModulationSpectra.for_settings(settings, fs / decimation)
+    rates = spectra.rates
+    return Chain((BeatDetection(params), Resampling(params, decimation), spectra,
+                  ModulationTrackers(rates, tracker_params(settings, rates),
+                                     float(settings.emission_power)),
+                  ModulationQuality(rates, settings.confidence_halfwidth_per_min
+                                    / (rates[1] - rates[0])),
+                  ModulationFusion(kind, settings, rates, spectra.filter_delay_s,
+                                   float(np.median(rates)))))
 
 
 class PulseBreathing:
-    """Breathing rate from one PPG or ECG channel: ``update(x, t) -> list[Estimate]``.
+    """Breathing rate from one PPG or ECG channel: ``update(x, t) -> list[Estimate]``;
+    owns the state of its :func:`pulse_breathing_chain`.
 
     Parameters
     ----------
@@ -641,10 +1253,11 @@ class PulseBreathing:
 
     Notes
     -----
-    Each estimate describes the centre of its window (``time_s``); ``emitted_s`` is the
-    timestamp of the newest raw sample any of its values depended on: an evenly
-    resampled value waits for the next beat and the detector's look-ahead, so the delay
-    is half a window plus about one beat interval and 0.25 s.
+    Each estimate describes the centre of its window, less the causal modulation
+    filters' group delay at its rate (``time_s``); ``emitted_s`` is the timestamp of the
+    newest raw sample any of its values depended on: an evenly resampled value waits for
+    the next beat and the detector's look-ahead, so the delay is half a window plus
+    about one beat interval and 0.25 s, plus the filters' delay.
 
     After each update, :attr:`last_modulations` holds the per-modulation rates
     (withheld = NaN), confidences and qualities of the hops just reported, (P, 3) each,
@@ -664,26 +1277,18 @@ class PulseBreathing:
     """
 
     def __init__(self, name: str, kind: str, settings: RateSettings, fs: float):
-        if settings.quantity != "rr":
-            raise ParameterError(f"settings.quantity={settings.quantity!r} must be 'rr'")
         self.name, self.kind, self.settings = name, kind, settings
-        self.beat_params = replace(beat_params(kind, fs),
-                                   interval_tolerance=settings.beat_interval_tolerance)
-        self.decimation = settings.decimation(fs)
-        self.bank = ModulationBank(settings, fs / self.decimation)
-        self.rates = self.bank.grid.rates_per_min
-        params = tracker_params(settings, self.rates)
-        self.trackers = [tracker_mod.RidgeTracker(self.rates, params, settings.emission_power)
-                         for _ in MODULATIONS]
+        self.chain = pulse_breathing_chain(kind, settings, fs)
+        beats, resampling, spectra, self.tracker_stage, self.quality_stage, self.fusion_stage = \
+            self.chain.stages
+        self.beat_params, self.decimation = beats.params, resampling.decimation
+        self.bank = ModulationBank(settings, spectra.fs_analysis, spectra)
+        self.rates = spectra.rates
+        self._after_beats = Chain(self.chain.stages[1:])
         self.reset()
 
     def reset(self) -> None:
-        self.beat_state = beat_initial_state(self.beat_params)
-        self.resample_state = resample_initial_state()
-        self.bank.reset()
-        for tracker in self.trackers:
-            tracker.reset()
-        self._held: list[ModulationHops] = []
+        self.state = self.chain.initial_state()
         self.last_beats = Beats.empty()
         e = np.empty((0, 3))
         self.last_modulations = (e, e, e)
@@ -696,92 +1301,60 @@ class PulseBreathing:
         if x.shape != t.shape or x.ndim != 1:
             raise ParameterError(f"x.shape={x.shape} and t.shape={t.shape} must be equal "
                                  "and 1-D")
-        self.beat_state, beats = detect_step(self.beat_state, x, t, self.beat_params)
-        self.last_beats = beats
-        self.resample_state, samples = resample_step(self.resample_state, beats, t,
-                                                     self.decimation, self.beat_params)
-        hops = self.bank.update(samples)
-        if len(hops) == 0:
+        beat_state, beats = self.chain.stages[0].step(self.state[0], (x, t))
+        rest, out = self._after_beats.step(self.state[1:], beats)
+        self.state = (beat_state, *rest)
+        self.last_beats = beats.beats
+        if len(out) == 0:
             return []
-        outputs = [tracker.update(hops.spectra[:, c], hops.integrity[:, c])
-                   for c, tracker in enumerate(self.trackers)]
-        rate = np.column_stack([o[0] for o in outputs])
-        conf = np.column_stack([o[1] for o in outputs])
-        index = outputs[0][2]
-        lag = self.settings.lag_hops
-        if lag == 0:
-            return self._estimates(hops, rate, conf, hops.emitted_s)
-        # Fixed-lag smoothing: the outputs refer to hops up to ``lag`` back.
-        held = ModulationHops.concat(self._held + [hops])
-        first_index = self.trackers[0].hops_seen - len(held)
-        self._held = [held.take(slice(max(0, len(held) - lag), None))]
-        if len(index) == 0:
-            return []
-        pos = index - first_index
-        return self._estimates(held.take(pos), rate, conf, held.emitted_s[pos + lag])
+        return self._estimates(out)
 
-    def modulation_quality(self, hops: ModulationHops, rate: np.ndarray) -> np.ndarray:
-        """Quality (P, 3) of each modulation's rate: integrity x concentration at the
-        rate (over the bins below half the beat rate) x depth score."""
-        s = self.settings
-        step = self.rates[1] - self.rates[0]
-        halfwidth = s.confidence_halfwidth_per_min / step
-        limit = 0.5 * np.where(np.isfinite(hops.beat_rate), hops.beat_rate, np.inf)
-        open_bins = (self.rates[None, :] < limit[:, None]).sum(axis=1)
-        quality = np.empty_like(rate)
-        for c in range(3):
-            conc = peak_concentration(hops.spectra[:, c], (rate[:, c] - self.rates[0]) / step,
-                                      halfwidth, open_bins)
-            quality[:, c] = quality_mod.quality_index(hops.integrity[:, c],
-                                                      conc * depth_score(hops.depth[:, c]))
-        return quality
+    def _estimates(self, out: BreathingRates) -> list[Estimate]:
+        self.last_modulations = (out.modulation_rate, out.modulation_confidence,
+                                 out.modulation_quality)
+        name = self.name
+        return [Estimate("rr", name, a, b, r, c, q) for a, b, r, c, q in zip(
+            out.time_s.tolist(), out.emitted_s.tolist(), out.rate.tolist(),
+            out.confidence.tolist(), out.quality.tolist())]
 
     def track_hops(self, hops: ModulationHops) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Rate, confidence and quality (P, 3) per modulation of a whole record's hops
-        from fresh trackers (the live trackers are not touched; without lag equal to
+        from fresh trackers (the live state is not touched; without lag equal to
         :meth:`update` over the same record). The fusion's inputs, for tuning it."""
-        params = self.trackers[0].params
-        rate, conf = np.empty((len(hops), 3)), np.empty((len(hops), 3))
-        for c in range(3):
-            tracker = tracker_mod.RidgeTracker(self.rates, params, self.settings.emission_power)
-            rate[:, c], conf[:, c], _ = tracker.update(hops.spectra[:, c], hops.integrity[:, c])
-        return rate, conf, self.modulation_quality(hops, rate)
-
-    def _estimates(self, hops: ModulationHops, rate: np.ndarray, conf: np.ndarray,
-                   emitted_s: np.ndarray) -> list[Estimate]:
-        quality = self.modulation_quality(hops, rate)
-        shown = np.where((quality >= self.settings.min_quality) & np.isfinite(rate), rate,
-                         np.nan)
-        self.last_modulations = (shown, conf, quality)
-        estimates = fused_estimates(self.name, self.kind, self.settings, hops.time_s,
-                                    emitted_s, rate, conf, quality)
-        grid = self.bank.grid.rates_per_min
-        return [replace(e, time_s=e.time_s - float(np.interp(
-            e.rate_per_min if np.isfinite(e.rate_per_min) else np.median(grid), grid,
-            self.bank.filter_delay_s))) for e in estimates]
+        rated = self.quality_stage.batch(self.tracker_stage.batch(hops))
+        return rated.rate, rated.confidence, rated.quality
 
     def hops_batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> ModulationHops:
         """Modulation hops of a whole record in one call: the batch twin of the first
         three stages (``zero_phase`` for the offline estimates)."""
         x = np.asarray(x, dtype=np.float64)
         t = np.asarray(t, dtype=np.float64)
-        if len(x) < self.bank.min_window * self.decimation:
-            return self.bank._empty()  # shorter than the shortest window: no hop at all
+        stage = self.bank.stage
+        if len(x) < stage.min_window * self.decimation:
+            return stage.empty()  # shorter than the shortest window: no hop at all
         beats = detect_batch(x, t, self.beat_params, zero_phase)
-        samples = resample_batch(beats, t, self.decimation, self.beat_params)
-        return self.bank.batch(samples, zero_phase)
+        # One compiled call over the record (equal to resample_batch, the plain twin).
+        _, samples = resample_step(resample_initial_state(), beats, t, self.decimation,
+                                   self.beat_params)
+        return stage.hops_batch(samples, zero_phase)
 
     def offline(self, x: np.ndarray, t: np.ndarray) -> list[Estimate]:
         """The non-causal twin over a whole record: zero-phase filters, a Viterbi ridge
-        and forward-backward confidence per modulation, then the same fusion. Every
-        estimate used the whole record, so ``emitted_s`` is the last timestamp."""
+        and forward-backward confidence per modulation, then the same quality and
+        fusion. Every estimate used the whole record, so ``emitted_s`` is the last
+        timestamp."""
         hops = self.hops_batch(x, t, zero_phase=True)
         if len(hops) == 0:
             return []
-        params = self.trackers[0].params
+        params = self.tracker_stage.params
         rate, conf = np.empty((len(hops), 3)), np.empty((len(hops), 3))
         for c in range(3):
             rate[:, c], conf[:, c] = offline_track(hops.spectra[:, c], hops.integrity[:, c],
                                                    self.rates, params,
                                                    self.settings.emission_power)
-        return self._estimates(hops, rate, conf, np.full(len(hops), float(t[-1])))
+        hops = replace(hops, emitted_s=np.full(len(hops), float(t[-1])))
+        # Zero-phase filters delay nothing: offline estimates describe their window centre.
+        fusion = replace(self.fusion_stage,
+                         filter_delay_s=np.zeros_like(self.fusion_stage.filter_delay_s))
+        return self._estimates(fusion.batch(self.quality_stage.batch(
+            TrackedModulations(hops, rate, conf))))

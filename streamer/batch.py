@@ -222,7 +222,8 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
     """
     from estimators.config import get_profile
     from estimators.errors import ParameterError
-    from estimators.monitor import offline_estimates
+    from estimators.monitor import offline_estimates, record_gaps
+    from streamer.runner import gap_event
     from streamer.channels import select
     from streamer.runner import Runner
     from streamer.sinks.estimate_log import EstimateLog, read_log, write_offline_rows
@@ -260,7 +261,9 @@ def process_recording(path, options: BatchOptions) -> list[dict]:
         with EstimateLog(offline_path, "offline", str(path), mapping,
                          dict(config, mode="offline"), if_exists=if_exists,
                          inputs=inputs) as off:
-            write_offline_rows(off, estimates, recording.markers, math.nan)
+            write_offline_rows(off, estimates, recording.markers, math.nan,
+                               [gap_event(recording.info.name, gap) for gap in
+                                record_gaps(recording.timestamps, recording.info.fs)])
         references = find_references(path, options.reference_suffixes,
                                      options.reference_patterns, options.recording_pattern)
         if not references:

@@ -752,8 +752,9 @@ def cmd_profiles(args) -> int:
 
 
 def cmd_offline(args) -> int:
-    from estimators.monitor import RateMonitor, offline_estimates
+    from estimators.monitor import RateMonitor, offline_estimates, record_gaps
     from streamer.channels import missing_reference_warning, select
+    from streamer.runner import gap_event
     from streamer.sinks.estimate_log import EstimateLog, write_offline_rows
     from streamer.sources.files import read_recording, recording_files
 
@@ -792,7 +793,9 @@ def cmd_offline(args) -> int:
                                       recording.info.fs, profile)
         elapsed = time.perf_counter() - start
         per_row = 1e3 * elapsed / max(1, len(estimates))
-        write_offline_rows(out, estimates, recording.markers, per_row)
+        gaps = [gap_event(recording.info.name, gap)
+                for gap in record_gaps(recording.timestamps, recording.info.fs)]
+        write_offline_rows(out, estimates, recording.markers, per_row, gaps)
     beat_words = ""
     if beat_files is not None:
         from streamer.beat_session import write_offline

@@ -176,6 +176,17 @@ class MarkerQueue:
         return taken
 
 
+def gap_event(name: str, gap: Gap) -> SourceEvent:
+    """The ``"gap"`` event of a hole in stream ``name``'s timestamps where the engine
+    restarts: the same words in live, replay and offline logs."""
+    return SourceEvent(
+        "gap",
+        f"stream '{name}' skipped {gap.missing_s:.3f} s of samples (timestamps jump "
+        f"from {gap.before_s:.3f} s to {gap.after_s:.3f} s); estimates restart from the "
+        f"samples after the gap",
+        gap.after_s, {"missing_s": gap.missing_s, "before_s": gap.before_s, "restart": True})
+
+
 class Runner:
     """Runs one source through the engine into the sinks.
 
@@ -337,14 +348,7 @@ class Runner:
         """The engine restarted at a gap in the timestamps: a ``"gap"`` event in the log,
         unless the source reported this hole itself (the LSL source does). Either way the
         display hears that the estimates start afresh (``detail["restart"]``)."""
-        name = self.source.info.name
-        event = SourceEvent(
-            "gap",
-            f"stream '{name}' skipped {gap.missing_s:.3f} s of samples (timestamps jump "
-            f"from {gap.before_s:.3f} s to {gap.after_s:.3f} s); estimates restart from the "
-            f"samples after the gap",
-            gap.after_s, {"missing_s": gap.missing_s, "before_s": gap.before_s,
-                          "restart": True})
+        event = gap_event(self.source.info.name, gap)
         self._write_markers(self.markers.due(gap.after_s, inclusive=False))
         if gap.before_s <= self._announced_gap_s <= gap.after_s:
             self._notify(Update([], None, None, event))

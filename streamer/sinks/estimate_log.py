@@ -326,21 +326,35 @@ class EstimateLog(TableFile):
         self._write(format_marker(marker))
 
 
-def write_offline_rows(log: EstimateLog, estimates, markers, compute_ms: float) -> None:
-    """The offline twin's rows (in ``time_s`` order) with a recording's markers among
-    them: a marker at ``t`` after every row with ``time_s <= t``, markers without a time
-    last. Offline rows describe their window centre (the twin sees the whole record), so
-    that is what a marker is placed by; live and replay rows are placed by
-    ``emitted_s`` (:class:`streamer.runner.MarkerQueue`)."""
-    timed = sorted((m for m in markers if not math.isnan(m.time_s)), key=lambda m: m.time_s)
+def write_offline_rows(log: EstimateLog, estimates, markers, compute_ms: float,
+                       events=()) -> None:
+    """The offline twin's rows (in ``time_s`` order) with a recording's markers and
+    events (``SourceEvent``, e.g. the gaps where the twin restarts) among them: a marker
+    or event at ``t`` after every row with ``time_s <= t``, markers without a time last.
+    Offline rows describe their window centre (the twin sees the whole record), so that
+    is what a marker is placed by; live and replay rows are placed by ``emitted_s``
+    (:class:`streamer.runner.MarkerQueue`)."""
+    timed = sorted([(m.time_s, 0, i, m) for i, m in enumerate(markers)
+                    if not math.isnan(m.time_s)]
+                   + [(e.time_s, 1, i, e) for i, e in enumerate(events)])
     rest = [m for m in markers if math.isnan(m.time_s)]
+
+    def put(item) -> None:
+        _, is_event, _, what = item
+        if is_event:
+            log.write_event(what.kind, what.message, what.time_s)
+        else:
+            log.write_marker(what)
+
     m = 0
     for est in estimates:
-        while m < len(timed) and timed[m].time_s < est.time_s:
-            log.write_marker(timed[m])
+        while m < len(timed) and timed[m][0] < est.time_s:
+            put(timed[m])
             m += 1
         log.write(est, compute_ms)
-    for marker in timed[m:] + rest:
+    for item in timed[m:]:
+        put(item)
+    for marker in rest:
         log.write_marker(marker)
 
 

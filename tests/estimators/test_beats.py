@@ -86,3 +86,41 @@ def test_ecg_fiducial_is_the_r_peak(rng):
     assert np.abs(offline_s - truth[late]).max() < 0.2 / fs
     lag = live_s - truth[late]
     assert 0 < np.median(lag) < 0.02 and np.ptp(lag) < 1.0 / fs
+
+
+def _pulse_train(truth_s, t):
+    """PPG-like beats of one fixed shape in seconds (systolic wave 0.12 s after the beat,
+    a dicrotic wave of 0.3 of its height at 0.5 s; our own construction), so the
+    steepest point of every upstroke is the same time after its beat."""
+    x = np.zeros_like(t)
+    for beat in truth_s:
+        tau = t - beat
+        x += (np.exp(-0.5 * ((tau - 0.12) / 0.05) ** 2)
+              + 0.3 * np.exp(-0.5 * ((tau - 0.5) / 0.056) ** 2))
+    return x
+
+
+@pytest.mark.parametrize("zero_phase", [False, True])
+def test_ppg_template_alignment_steadies_the_intervals(rng, zero_phase):
+    # White noise (3 % of the pulse height) moves the steepest sample of each upstroke;
+    # aligning the whole upstroke with the template of the last beats does not. Measured
+    # when written (RMS interval error): live 1.2 ms aligned against 6.7 ms at the
+    # steepest sample, offline 1.0 against 2.3 ms; asserted: at most half.
+    import dataclasses
+
+    from streamer.beat_compare import interval_errors_ms, match_beats
+    fs = 125.0
+    truth = 0.6 + np.cumsum(sinus_intervals_ms(rng, 300)) / 1e3
+    t = np.arange(int((truth[-1] + 1.0) * fs)) / fs
+    x = _pulse_train(truth, t) + rng.normal(0.0, 0.03, len(t))
+    aligned = beat_params("ppg", fs)
+    plain = dataclasses.replace(aligned, align_before=0)
+    rms = []
+    for params in (aligned, plain):
+        beats = detect_batch(x, t, params, zero_phase=zero_phase).time_s
+        lag = match_beats(beats, truth, 0.3).median_offset_s
+        match = match_beats(beats - lag, truth, 0.15)
+        assert match.sensitivity >= 0.99
+        errors = interval_errors_ms(beats - lag, truth, match)[10:]
+        rms.append(np.sqrt(np.mean(errors ** 2)))
+    assert rms[0] <= 0.5 * rms[1]

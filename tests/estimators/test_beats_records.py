@@ -18,7 +18,7 @@ import pytest
 
 from estimators import hrv as H
 from estimators.beats import beat_params, detect_batch
-from streamer.beat_compare import match_beats
+from streamer.beat_compare import interval_errors_ms, match_beats
 
 pytestmark = pytest.mark.data
 
@@ -122,13 +122,19 @@ MONITOR_AGREEMENT = 0.05
 monitor's mean heart rate (Numerics) over the record within 5 % (our own sanity check
 of the reference: XQRS counts T waves as beats on some ICU records)."""
 
+CROSS_LEAD_AGREEMENT = 0.98
+"""XQRS on lead II serves as the reference unless it disagrees (F1 below 0.98) with XQRS
+on both leads V and aVR of the same record while those two agree with each other: the
+leads are simultaneous, so the same QRS complexes must be found on all. Then XQRS marked
+another wave on lead II (on 03
+and 06 a P wave as tall as the QRS, 0.14-0.18 s before the QRS that leads V and aVR
+show; on 09 and 13 T waves: looked at, measured when written) and XQRS on lead V is the
+reference instead (our own check of the reference)."""
+
 KNOWN_DISAGREEMENTS = {
-    "03": "close-coupled premature beats (0.23 s after the one before) fall inside the "
-          "detector's 0.25 s refractory window: 593 beats detected, XQRS 623, monitor "
-          "about 613 (F1 0.88, measured)",
-    "06": "both count the same beats (654 and 656, monitor about 655) but mark different "
-          "waves: XQRS a broad wave 0.16 s before the narrow spike the detector takes as "
-          "the R peak (F1 0.03, measured)",
+    "03": "lead II's P wave is as tall as its narrow QRS (0.18 s later): the detector's "
+          "energy peak sometimes falls on the P wave and the R-wave search does not "
+          "reach the QRS (F1 0.959 against XQRS on lead V, measured)",
 }
 
 
@@ -168,6 +174,13 @@ def test_f1_against_xqrs_bidmc(shared_data, record):
     names = [c.name for c in recording.info.channels]
     x, t, fs = recording.samples[:, names.index("II")], recording.timestamps, recording.info.fs
     reference = _xqrs(x, fs)
+    if "V" in names and "AVR" in names:
+        v = _xqrs(recording.samples[:, names.index("V")], fs)
+        avr = _xqrs(recording.samples[:, names.index("AVR")], fs)
+        if (_f1(t[v], t[avr]) >= CROSS_LEAD_AGREEMENT
+                and max(_f1(t[reference], t[v]), _f1(t[reference], t[avr]))
+                < CROSS_LEAD_AGREEMENT):
+            reference = v
     monitor = np.genfromtxt(folder / f"bidmc_{record}_Numerics.csv", delimiter=",",
                             skip_header=1)[:, 1]
     expected = np.nanmean(monitor) / 60.0 * (t[-1] - t[0])
@@ -176,3 +189,69 @@ def test_f1_against_xqrs_bidmc(shared_data, record):
                     f"{expected:.0f}: not a reference here")
     beats = detect_batch(x, t, beat_params("ecg", fs))
     assert _f1(beats.time_s, t[reference]) >= 0.98
+
+
+# ------------------------------------------------------------- PPG against ECG
+
+INTERVAL_TOLERANCE_S = 0.020
+"""PPG intervals agree with the ECG's when within 20 ms (the issue's bound)."""
+
+ALIGN_WINDOW_S = 0.04
+"""Window within which PPG beats shifted by a candidate lag count as aligned with ECG
+beats when the lag is searched (our own choice: a few times the fiducial jitter, far
+below a beat interval)."""
+
+
+def _transit_delay_s(ppg_s, ecg_s):
+    """Median delay of the PPG beats behind the ECG beats of the same record: the lag
+    (0-1.5 s, 5 ms steps) that aligns most beats within :data:`ALIGN_WINDOW_S`, then the
+    median offset of the beats matched at that lag. (The lag is searched rather than
+    taken from the next PPG beat: on BIDMC the PPG trails by 0.45-0.66 s, often most of
+    a beat interval.)"""
+    def aligned(lag):
+        q = ppg_s - lag
+        j = np.clip(np.searchsorted(q, ecg_s), 1, len(q) - 1)
+        return np.sum(np.minimum(np.abs(q[j] - ecg_s), np.abs(q[j - 1] - ecg_s))
+                      <= ALIGN_WINDOW_S)
+    lags = np.arange(0.0, 1.5, 0.005)
+    lag = lags[int(np.argmax([aligned(u) for u in lags]))]
+    return lag + match_beats(ppg_s - lag, ecg_s, MATCH_S).median_offset_s
+
+
+@pytest.mark.slow
+def test_ppg_intervals_against_ecg_bidmc(shared_data):
+    # Target from the issue: PPG beats against the ECG beats of the same record, the
+    # pulse transit delay removed by its median, intervals within 20 ms for >= 95 % of
+    # beats. Both live (causal); ECG beats from lead II. Scored: the intervals between
+    # consecutive PPG beats matched (EC57 window) to consecutive ECG beats, pooled over
+    # BIDMC 01-26; the PPG beats' sensitivity against the ECG's is reported beside it
+    # (an unmatched ECG beat has no PPG interval to score). Measured when written:
+    # 95.5 % of 17 706 intervals within 20 ms (read at the steepest sample, without the
+    # template alignment: 93.5 %), 19 records >= 95 %, worst 03 (lead II's beat jumps to
+    # a tall P wave) 57.7 %, 19 83.0 %, 14, 25 and 26 90-91 %; sensitivity 96.1 %.
+    from streamer.sources.files import read_recording
+    folder = shared_data / "bidmc" / "bidmc_csv"
+    within = scored = matched = ecg_beats = 0
+    lines = []
+    for record in BIDMC_RECORDS:
+        path = folder / f"bidmc_{record}_Signals.csv.gz"
+        if not path.is_file():
+            pytest.skip(f"{path} not found")
+        recording = read_recording(path)
+        names = [c.name for c in recording.info.channels]
+        t, fs = recording.timestamps, recording.info.fs
+        ppg = detect_batch(recording.samples[:, names.index("PLETH")], t,
+                           beat_params("ppg", fs)).time_s
+        ecg = detect_batch(recording.samples[:, names.index("II")], t,
+                           beat_params("ecg", fs)).time_s
+        shifted = ppg - _transit_delay_s(ppg, ecg)
+        match = match_beats(shifted, ecg, MATCH_S)
+        errors = interval_errors_ms(shifted, ecg, match)
+        ok = int(np.sum(np.abs(errors) <= 1e3 * INTERVAL_TOLERANCE_S))
+        within, scored = within + ok, scored + len(errors)
+        matched, ecg_beats = matched + match.true_positives, ecg_beats + len(ecg)
+        lines.append(f"{record} {ok / len(errors):.3f}")
+    print(f"PPG vs ECG intervals within 20 ms: {within / scored:.2%} of {scored}; "
+          f"sensitivity {matched / ecg_beats:.2%}; per record " + ", ".join(lines))
+    assert within / scored >= 0.95
+    assert matched / ecg_beats >= 0.95

@@ -38,6 +38,26 @@ def test_fit_recovers_a_known_probability(rng):
     assert np.all((prob >= B.PROB_FLOOR) & (prob <= B.PROB_CEIL))
 
 
+def test_isotonic_steps_hold_enough_rows_and_stay_off_the_extremes(rng):
+    # True probability 0.1 + 0.8 * score: a plain pool-adjacent-violators fit reads 0 and
+    # 1 at the ends of the score's range from a few rows; every pooled step holds at
+    # least MIN_STEP_ROWS rows, so its value stays near the truth there.
+    from estimators.calibration import fit_isotonic
+    score = rng.uniform(0.0, 1.0, 3000)
+    within = rng.uniform(size=3000) < 0.1 + 0.8 * score
+    plain = fit_isotonic(score, within)[1]
+    assert plain[0] == 0.0 and plain[-1] == 1.0
+    knots_score, knots_prob = B.fit_pooled_isotonic(score, within)
+    assert np.all(np.diff(knots_prob) >= 0) and np.all(np.diff(knots_score) > 0)
+    # Every step holds at least MIN_STEP_ROWS rows, so there are at most 30 steps.
+    assert 1 < len(knots_prob) <= 3000 // B.MIN_STEP_ROWS
+    # A step of >= 100 rows at either end: within 3 binomial standard errors
+    # (sqrt(0.1 * 0.9 / 100) = 0.03) of the truth there, whose mean over the lowest or
+    # highest 100 rows is within 0.03 of 0.1 or 0.9 (a larger end step: a little more).
+    assert 0.1 - 0.09 <= knots_prob[0] <= 0.1 + 0.03 + 0.09
+    assert 0.9 - 0.03 - 0.09 <= knots_prob[-1] <= 0.9 + 0.09
+
+
 def test_map_round_trips_through_json(rng):
     raw, quality, within, _ = synthetic_rows(rng, 500)
     fitted = B.BreathingMap({"ppg": B.fit_kind(raw, quality, within)}, {"note": "test"})

@@ -39,8 +39,11 @@ TESTED_KERNELS = {"forward_filter", "backward_pass", "backward_mass", "viterbi",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
                   "rhythm_scores", "hop_rhythm", "predict", "cancel_columns",
                   "normalise_or_prior", "spectral_margins", "kth_largest", "limit_sample",
-                  "limit_chunk", "preprocess_channels", "track_channels"}
-"""Kernels with a test here (``cancel_columns`` in test_motion.py,
+                  "limit_chunk", "preprocess_channels", "track_channels", "resample_chunk",
+                  "modulation_frames", "shape_modulation_spectra", "track_ridges",
+                  "modulation_quality", "fuse_rates", "interp_point", "calibrate_breathing"}
+"""Kernels with a test here (the breathing-from-the-pulse kernels, ``resample_chunk`` to
+``calibrate_breathing`` and ``interp_point``, in test_stage_conformance_breathing.py; ``cancel_columns`` in test_motion.py,
 ``harmonic_score`` in test_quality.py, ``spectral_margins`` in test_calibration.py,
 ``track_block`` also
 through ``RidgeTracker.track`` in test_tracker.py)."""

@@ -481,6 +481,42 @@ def test_file_replay_writes_a_gap_event_between_the_rows_around_the_hole(tmp_pat
     assert after.sum() > 150 and np.all(np.abs(hr["rate_per_min"][after] - AFTER[0]) <= 5.0)
 
 
+def test_the_offline_log_holds_the_same_gap_event_where_its_twin_restarts(tmp_path,
+                                                                          hole_record):
+    """``offline`` of a CSV with a 10-minute hole: the twin restarts there like live,
+    and its log says so with the replay's words, between the rows from before the hole
+    and the rows after it (offline rows are dated by their window centre)."""
+    from streamer import cli
+
+    x, t, k = hole_record
+    csv_path = tmp_path / "sensor.csv"
+    np.savetxt(csv_path, np.column_stack([t, x[:, 0]]), delimiter=",", header="time_s,PPG",
+               comments="", fmt="%.6f")
+    log_path = tmp_path / "offline.csv"
+    assert cli.main(["offline", str(csv_path), "--channel", "PPG=ppg", "--log",
+                     str(log_path), "-q"]) == 0
+    lines = log_lines(log_path.read_text())
+    gap_lines = [i for i, line in enumerate(lines)
+                 if line.startswith("# event") and " gap: " in line]
+    assert len(gap_lines) == 1
+    at = gap_lines[0]
+    # A CSV recording is named by its path, in replay as here.
+    assert lines[at] == (f"# event {t[k]:.4f} gap: stream '{csv_path}' skipped 600.000 s of "
+                         f"samples (timestamps jump from {t[k - 1]:.3f} s to {t[k]:.3f} s); "
+                         f"estimates restart from the samples after the gap")
+    time_col = log_lines_header(log_path.read_text()).index("time_s")
+    rows_before = [line for line in lines[:at] if not line.startswith("#")]
+    rows_after = [line for line in lines[at + 1:] if not line.startswith("#")]
+    assert rows_before and rows_after
+    assert all(float(r.split(",")[time_col]) <= t[k - 1] for r in rows_before)
+    assert all(float(r.split(",")[time_col]) >= t[k] for r in rows_after)
+
+
+def log_lines_header(text: str) -> list[str]:
+    """The column names of a log."""
+    return next(line for line in text.splitlines() if line.startswith("emitted_s,")).split(",")
+
+
 class AnnouncingSource:
     """A live-like source: its chunks go through the LSL source's timing check, which
     announces the hole itself."""

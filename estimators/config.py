@@ -100,6 +100,9 @@ class RateSettings:
     motion_trust : where the motion gain trusts the coherent canceller (leaves alone what
         it removed): ``track`` near the pulse the tracker expects (the default, see
         :mod:`estimators.motion`), ``everywhere`` or ``nowhere`` (for comparisons).
+    refine_radius_per_min : motion stage only: the tracked rate moves uphill to the
+        nearest peak of the canceller's residual spectrum (harmonic sum, no motion gain),
+        at most this far (:mod:`estimators.refine`); 0 switches the refinement off.
     """
 
     quantity: str = "hr"
@@ -137,6 +140,12 @@ class RateSettings:
     motion_line_ratio: tuple = (10.0, 40.0)
     motion_confidence_penalty: float = 0.5
     motion_trust: str = "track"
+    # Half the confidence half-width (4 bpm): a small move onto the peak the tracked rate
+    # sits on, never across to a line the gain kept apart from it. Fixed a priori, not
+    # tuned; on SPC 2015 records 01-12, radii of 1-4 grid bins (0.7-2.9 bpm) gave mean
+    # AAEs within 0.02 bpm of each other, 0.17-0.2 bpm better than no refinement
+    # (measured once, in-sample, while choosing the mechanism).
+    refine_radius_per_min: float = 2.0
 
     def __post_init__(self):
         if self.recent_window_s is None:
@@ -207,6 +216,8 @@ class RateSettings:
                f"0 < start < full")
         _check(0 <= self.motion_confidence_penalty <= 1,
                f"motion_confidence_penalty={self.motion_confidence_penalty} must be in [0, 1]")
+        _check(self.refine_radius_per_min >= 0,
+               f"refine_radius_per_min={self.refine_radius_per_min} must be >= 0")
         _check(self.motion_trust in MOTION_TRUST,
                f"motion_trust={self.motion_trust!r} must be one of {', '.join(MOTION_TRUST)}")
 

@@ -42,6 +42,7 @@ from estimators import evidence as evidence_mod
 from estimators import motion as motion_mod
 from estimators import quality as quality_mod
 from estimators import rate_now as now_mod
+from estimators import refine as refine_mod
 from estimators import tracker as tracker_mod
 from estimators.config import PROFILES, SIGNAL_KINDS, Profile, RateSettings, get_profile
 from estimators.errors import ParameterError
@@ -156,6 +157,10 @@ class HopBlock:
     """Band spectra (P, F) of the end-weighted columns over the newest part of each
     window (made like ``spectra``: de-shape or plain), or None when the settings ask for
     none. Their peak is the rate the newest samples carry (:mod:`estimators.rate_now`)."""
+    refine: np.ndarray | None = None
+    """Motion stage only: band spectra (P, F) the tracked rate is refined on, the
+    harmonic sum of the canceller's residual with no motion gain
+    (:mod:`estimators.refine`)."""
 
     def __len__(self) -> int:
         return len(self.time_s)
@@ -293,13 +298,16 @@ def fuse_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
     recent = None
     if all(b.recent is not None for b in blocks):
         recent = fuse([b.recent for b in blocks])
+    refine = None
+    if all(b.refine is not None for b in blocks):
+        refine = fuse([b.refine for b in blocks])
     lines = [b.motion_lines for b in blocks if b.motion_lines is not None]
     references = [b.reference_integrity for b in blocks if b.reference_integrity is not None]
     return HopBlock(fuse([b.spectra for b in blocks]), blocks[0].time_s,
                     np.max([b.emitted_s for b in blocks], axis=0), weights.max(axis=0),
                     magnitude, motion_lines=np.max(lines, axis=0) if lines else None,
                     reference_integrity=np.min(references, axis=0) if references else None,
-                    recent=recent)
+                    recent=recent, refine=refine)
 
 
 def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.ndarray,
@@ -421,6 +429,8 @@ class _Output:
         lag = self.settings.lag_hops
         if lag == 0:
             rate, conf, frac = self.tracker.track(block.spectra, block.integrity, block.magnitude)
+            rate = refine_mod.refine_rate(block.refine, self.rates, rate,
+                                          self.settings.refine_radius_per_min)
             return Tracked(block, rate, conf, frac, block.emitted_s)
         rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
@@ -431,6 +441,8 @@ class _Output:
         referred = take_hops(held, pos)
         newest = held.emitted_s[pos + lag]
         self._held = [take_hops(held, np.arange(max(0, len(held) - lag - 1), len(held)))]
+        rate = refine_mod.refine_rate(referred.refine, self.rates, rate,
+                                      self.settings.refine_radius_per_min)
         return Tracked(referred, rate, conf, None, newest)
 
     def estimates(self, tracked: "Tracked", channel_rates: np.ndarray | None = None
@@ -728,7 +740,7 @@ class RateMonitor:
             hop = {key: take_hops(blocks[key], slice(p, p + 1)) for key in hr_keys
                    if key in blocks}
             for key, suppressor in self.motion.items():
-                spectra, lines = suppressor.update(
+                spectra, lines, refine = suppressor.update_with_refine(
                     hop[key].columns, None if acc is None else acc[p:p + 1],
                     self._expected_pulse(key))
                 # While the stage warms up again its output is not what the motion
@@ -736,7 +748,7 @@ class RateMonitor:
                 # missing (the blind family) until a window has passed.
                 hop[key] = dataclasses.replace(
                     hop[key], spectra=spectra, magnitude=spectra, columns=None,
-                    motion_lines=lines, reference_integrity=(
+                    motion_lines=lines, refine=refine, reference_integrity=(
                         np.zeros(1) if self._untrusted_hops > 0 else reference[p:p + 1]))
             if ("hr", FUSED) in self.outputs:
                 hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in hr_keys
@@ -908,6 +920,8 @@ def _offline_stretch(monitor: RateMonitor, samples: np.ndarray,
         rate, conf, _ = tracker_mod.offline_track(block.spectra, weights, out.tracker.params,
                                                   out.tracker.power, out.rates,
                                                   block.magnitude)
+        rate = refine_mod.refine_rate(block.refine, out.rates, rate,
+                                      out.settings.refine_radius_per_min)
         new = estimates_from_track(key[0], key[1], block, rate, conf, out.rates, out.settings,
                                    np.full(len(block), end),
                                    channel_rates=_stacked(channel_rates)

@@ -291,6 +291,14 @@ def harmonic_support(magnitude: np.ndarray, params: MotionParams) -> np.ndarray:
     return _band_normalised(out, slice(0, out.shape[1]))
 
 
+def residual_support(residual_magnitude: np.ndarray, params: MotionParams) -> np.ndarray:
+    """The harmonic sum (:func:`harmonic_support`) of the canceller's residual magnitude
+    with no motion gain: (P, F) -> (P, band bins). Where the tracked rate is read
+    (:mod:`estimators.refine`): the gain picks the pulse's peak, but its slope across
+    the peak would move it."""
+    return harmonic_support(_band_normalised(residual_magnitude, params.band), params)
+
+
 def expected_pulse(posterior: np.ndarray, halfwidth_bins: float) -> np.ndarray:
     """Where the tracker expects the pulse, in [0, 1] per band bin: the posterior
     divided by its largest value, then the largest value within ``halfwidth_bins`` on
@@ -391,6 +399,14 @@ class MotionSuppressor:
 
     def update(self, ppg_columns: np.ndarray, acc_columns: np.ndarray | None = None,
                expected: np.ndarray | None = None):
+        return self.update_with_refine(ppg_columns, acc_columns, expected)[:2]
+
+    def update_with_refine(self, ppg_columns: np.ndarray,
+                           acc_columns: np.ndarray | None = None,
+                           expected: np.ndarray | None = None):
+        """:meth:`update`, and the spectra the tracked rate is refined on (P, band
+        bins): :func:`residual_support` of the canceller's residual, no gain
+        (:mod:`estimators.refine`)."""
         n = self.params.n_bins
         ppg_columns = np.asarray(ppg_columns)[:, :n]
         if acc_columns is None:
@@ -407,4 +423,5 @@ class MotionSuppressor:
         self.state, cleaned = gain_step(self.state, np.abs(residual),
                                         reference * (1.0 - gate * trust), self.params)
         self.state.hops += len(ppg_columns)
-        return harmonic_support(cleaned, self.params), motion_lines(reference, self.params)
+        return (harmonic_support(cleaned, self.params), motion_lines(reference, self.params),
+                residual_support(np.abs(residual), self.params))

@@ -100,6 +100,9 @@ class RateSettings:
     motion_trust : where the motion gain trusts the coherent canceller (leaves alone what
         it removed): ``track`` near the pulse the tracker expects (the default, see
         :mod:`estimators.motion`), ``everywhere`` or ``nowhere`` (for comparisons).
+    start_prior_above_per_min : the tracker's posterior before its first hop (and after a
+        restart) is uniform up to this rate and tapers above it
+        (:func:`estimators.tracker.start_posterior`); 0: uniform.
     refine_radius_per_min : motion stage only: the tracked rate moves uphill to the
         nearest peak of the canceller's residual spectrum (harmonic sum, no motion gain),
         at most this far (:mod:`estimators.refine`); 0 switches the refinement off.
@@ -146,6 +149,7 @@ class RateSettings:
     # AAEs within 0.02 bpm of each other, 0.17-0.2 bpm better than no refinement
     # (measured once, in-sample, while choosing the mechanism).
     refine_radius_per_min: float = 2.0
+    start_prior_above_per_min: float = 0.0
 
     def __post_init__(self):
         if self.recent_window_s is None:
@@ -216,6 +220,8 @@ class RateSettings:
                f"0 < start < full")
         _check(0 <= self.motion_confidence_penalty <= 1,
                f"motion_confidence_penalty={self.motion_confidence_penalty} must be in [0, 1]")
+        _check(self.start_prior_above_per_min >= 0,
+               f"start_prior_above_per_min={self.start_prior_above_per_min} must be >= 0")
         _check(self.refine_radius_per_min >= 0,
                f"refine_radius_per_min={self.refine_radius_per_min} must be >= 0")
         _check(self.motion_trust in MOTION_TRUST,
@@ -367,6 +373,12 @@ PROFILES = {
                 # the harmonic concentration of a correct pulse peak; the confidence and
                 # quality fields still say how much to trust each estimate.
                 min_quality=0.1,
+                # Before its first hop the tracker finds rates above 180 bpm less likely
+                # (estimators.tracker.start_posterior): about the age-predicted maximal
+                # heart rate at 40 years (208 - 0.7 age; Tanaka et al. 2001, from memory).
+                # A record starting at rest with a strong second harmonic otherwise starts
+                # at twice the rate (SPC 2015 record 03: 210 bpm for 2-4 s, measured).
+                start_prior_above_per_min=180.0,
                 # The end-weighted column gets no motion stage: on running wrist PPG its
                 # peak follows the cadence (SPC 2015 records 01-12: the rate now 16 bpm
                 # off with it, 2.6 without), so the rate now is the forecast alone.

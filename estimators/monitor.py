@@ -411,7 +411,9 @@ class _Output:
         self.calibrate = True  # set by the monitor: heart rate from PPG channels only
         self.tracker = tracker_mod.RidgeTracker(grid_rates, params, settings.emission_power,
                                                 True, quality_mod.CHANCE_FACTOR,
-                                                quality_mod.CONCENTRATION_SPAN)
+                                                quality_mod.CONCENTRATION_SPAN,
+                                                tracker_mod.start_posterior(
+                                                    grid_rates, settings.start_prior_above_per_min))
         self._held: list[HopBlock] = []
         self._smoothing: dict = {}
 
@@ -919,7 +921,7 @@ def _offline_stretch(monitor: RateMonitor, samples: np.ndarray,
         # Rate at the spectral peak near the Viterbi ridge (as live reads it near the mode).
         rate, conf, _ = tracker_mod.offline_track(block.spectra, weights, out.tracker.params,
                                                   out.tracker.power, out.rates,
-                                                  block.magnitude)
+                                                  block.magnitude, out.tracker.start)
         rate = refine_mod.refine_rate(block.refine, out.rates, rate,
                                       out.settings.refine_radius_per_min)
         new = estimates_from_track(key[0], key[1], block, rate, conf, out.rates, out.settings,

@@ -84,6 +84,36 @@ def initial_posterior(n_bins: int) -> np.ndarray:
     return np.full(n_bins, 1.0 / n_bins)
 
 
+START_TAPER_PER_MIN = 20.0
+"""Width (standard deviation, per minute) of the start prior's taper above its knee
+(:func:`start_posterior`): twice the spread of measured maximal heart rates around their
+age prediction (about 10 bpm; Tanaka, Monahan & Seals, J. Am. Coll. Cardiol.
+37(1):153-156, 2001, from memory), so a rate 20 bpm above the knee keeps 61 % of the
+weight and one 40 bpm above, 14 %."""
+
+
+def start_posterior(rates: np.ndarray, taper_above_per_min: float) -> np.ndarray:
+    """The posterior before the first hop (and after a restart): uniform up to
+    ``taper_above_per_min``, a Gaussian taper of width :data:`START_TAPER_PER_MIN`
+    above it, normalised; uniform when ``taper_above_per_min`` is 0.
+
+    Before any evidence, a tracker started on a resting pulse whose second harmonic
+    outgrows its fundamental (a wrist PPG at rest can do this for seconds) would lock
+    on twice the rate, as likely a priori as the rate itself; the taper makes rates
+    above the usual maximal heart rate less likely at the start only. Later hops are
+    not affected (the transitions carry the posterior).
+
+    >>> start_posterior(np.array([100.0, 180.0, 200.0]), 180.0).round(3).tolist()
+    [0.384, 0.384, 0.233]
+    """
+    rates = np.asarray(rates, dtype=np.float64)
+    if taper_above_per_min <= 0:
+        return initial_posterior(len(rates))
+    excess = np.maximum(rates - taper_above_per_min, 0.0) / START_TAPER_PER_MIN
+    weight = np.exp(-0.5 * excess ** 2)
+    return weight / weight.sum()
+
+
 def read_posterior(posterior: np.ndarray, rates: np.ndarray, halfwidth_bins: float,
                    spectra: np.ndarray | None = None):
     """Rate and confidence per hop from posteriors (P, F).
@@ -179,8 +209,10 @@ def smooth_all(emissions: np.ndarray, weights: np.ndarray, params: TrackerParams
     return post / post.sum(axis=1, keepdims=True)
 
 
-def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerParams) -> np.ndarray:
-    """Globally optimal bin path (P,) through tempered emissions (offline twin)."""
+def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerParams,
+                 start: np.ndarray | None = None) -> np.ndarray:
+    """Globally optimal bin path (P,) through tempered emissions (offline twin);
+    ``start`` (F,): the prior of the first hop's bin (None: uniform)."""
     emissions = np.atleast_2d(emissions)
     n_hops, n_bins = emissions.shape
     if n_hops == 0:
@@ -190,6 +222,8 @@ def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerPara
     for a in range(0, n_hops, OFFLINE_BLOCK_HOPS):  # row by row: no (P, F) temporaries
         part = slice(a, a + OFFLINE_BLOCK_HOPS)
         log_e[part] = np.log(emissions[part]) * weights[part, None]
+    if start is not None:
+        log_e[0] += np.log(np.maximum(start, 1e-300))
     mix = params.jump_probability
     log_t = np.log((1.0 - mix) * params.transition + mix / n_bins)
     log_jump = np.log(mix / n_bins) if mix > 0 else -np.inf
@@ -199,13 +233,15 @@ def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerPara
 
 
 def offline_track(spectra: np.ndarray, weights: np.ndarray, params: TrackerParams,
-                  power: float, rates: np.ndarray, readout: np.ndarray | None = None):
+                  power: float, rates: np.ndarray, readout: np.ndarray | None = None,
+                  start: np.ndarray | None = None):
     """The offline twin of the tracker over a whole record: the Viterbi ridge and the
     forward-backward posterior mass within the half-width of it.
 
     Returns ``(rate, confidence, path)`` per hop: the rate of the highest peak of
     ``readout`` (default ``spectra``) near the ridge (:func:`refine_peak`), the mass
-    near the ridge clipped to [0, 1], and the ridge's bins.
+    near the ridge clipped to [0, 1], and the ridge's bins. ``start`` (F,): the
+    posterior before the first hop (None: uniform), as the live tracker starts.
 
     Notes
     -----
@@ -223,12 +259,12 @@ def offline_track(spectra: np.ndarray, weights: np.ndarray, params: TrackerParam
         part = slice(a, a + OFFLINE_BLOCK_HOPS)
         emissions[part] = emissions_from_spectra(spectra[part], power)
     weights = np.ascontiguousarray(np.clip(weights, 0.0, 1.0), dtype=np.float64)
-    path = viterbi_path(emissions, weights, params)
+    path = viterbi_path(emissions, weights, params, start)
     if len(path) == 0:
         empty = np.empty(0)
         return empty, empty, path
-    _, alphas = forward_step(initial_posterior(emissions.shape[1]), emissions, weights,
-                             params)
+    _, alphas = forward_step(initial_posterior(emissions.shape[1]) if start is None
+                             else start, emissions, weights, params)
     mass = np.empty(len(path))
     _kernels.backward_mass(emissions, weights, params.transition, params.jump_probability,
                            alphas, path.astype(np.float64), float(params.halfwidth_bins),
@@ -252,8 +288,12 @@ class RidgeTracker:
     """
 
     def __init__(self, rates_per_min: np.ndarray, params: TrackerParams, emission_power: float,
-                 check_rhythm: bool = False, chance_factor: float = 1.5, span: float = 0.3):
+                 check_rhythm: bool = False, chance_factor: float = 1.5, span: float = 0.3,
+                 start: np.ndarray | None = None):
         self.rates = np.asarray(rates_per_min, dtype=np.float64)
+        # The posterior before the first hop and after every reset (start_posterior).
+        self.start = (initial_posterior(len(self.rates)) if start is None
+                      else np.asarray(start, dtype=np.float64) / np.sum(start))
         self.params, self.power = params, emission_power
         self.step = float(self.rates[1] - self.rates[0])
         self.offset_bins = float(self.rates[0] / self.step)
@@ -264,7 +304,7 @@ class RidgeTracker:
         self.reset()
 
     def reset(self) -> None:
-        self.posterior = initial_posterior(len(self.rates))
+        self.posterior = self.start.copy()
         self.hops_seen = 0
         self._hist_alpha: list[np.ndarray] = []
         self._hist_em: list[np.ndarray] = []

@@ -64,7 +64,7 @@ def climb_to_peak(spectra: np.ndarray, rates: np.ndarray, rate_per_min: np.ndarr
     >>> climb_to_peak(spectra, rates, np.array([1.2]), 4).tolist()
     [3.0]
     >>> climb_to_peak(spectra, rates, np.array([1.2]), 1).tolist()  # stopped on the slope
-    [1.5]
+    [2.0]
     """
     spectra = np.atleast_2d(np.asarray(spectra, dtype=np.float64))
     rate_per_min = np.asarray(rate_per_min, dtype=np.float64)

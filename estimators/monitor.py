@@ -42,6 +42,7 @@ from estimators import evidence as evidence_mod
 from estimators import motion as motion_mod
 from estimators import quality as quality_mod
 from estimators import rate_now as now_mod
+from estimators import refine as refine_mod
 from estimators import tracker as tracker_mod
 from estimators.config import PROFILES, SIGNAL_KINDS, Profile, RateSettings, get_profile
 from estimators.errors import ParameterError
@@ -167,6 +168,10 @@ class HopBlock:
     """Band spectra (P, F) of the end-weighted columns over the newest part of each
     window (made like ``spectra``: de-shape or plain), or None when the settings ask for
     none. Their peak is the rate the newest samples carry (:mod:`estimators.rate_now`)."""
+    refine: np.ndarray | None = None
+    """Motion stage only: band spectra (P, F) the tracked rate is refined on, the
+    harmonic sum of the canceller's residual with no motion gain
+    (:mod:`estimators.refine`)."""
 
     def __len__(self) -> int:
         return len(self.time_s)
@@ -431,13 +436,16 @@ def fuse_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
     recent = None
     if all(b.recent is not None for b in blocks):
         recent = fuse([b.recent for b in blocks])
+    refine = None
+    if all(b.refine is not None for b in blocks):
+        refine = fuse([b.refine for b in blocks])
     lines = [b.motion_lines for b in blocks if b.motion_lines is not None]
     references = [b.reference_integrity for b in blocks if b.reference_integrity is not None]
     return HopBlock(fuse([b.spectra for b in blocks]), blocks[0].time_s,
                     np.max([b.emitted_s for b in blocks], axis=0), weights.max(axis=0),
                     magnitude, motion_lines=np.max(lines, axis=0) if lines else None,
                     reference_integrity=np.min(references, axis=0) if references else None,
-                    recent=recent)
+                    recent=recent, refine=refine)
 
 
 def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.ndarray,
@@ -652,9 +660,11 @@ def tracker_stage(settings: RateSettings, grid_rates: np.ndarray,
     params = tracker_mod.make_params(step, settings.hop_s, settings.max_change_per_min_per_s,
                                      settings.jump_probability,
                                      settings.confidence_halfwidth_per_min, settings.lag_hops)
+    start = (None if settings.start_prior_above_per_min == 0 else
+             tracker_mod.start_posterior(grid_rates, settings.start_prior_above_per_min))
     return tracker_mod.RidgeTrack(grid_rates, params, settings.emission_power, True,
                                   quality_mod.CHANCE_FACTOR, quality_mod.CONCENTRATION_SPAN,
-                                  n_channels)
+                                  n_channels, start)
 
 
 @dataclass(frozen=True, eq=False)
@@ -732,7 +742,12 @@ class MotionTracking:
     ``p - 1`` (:func:`estimators.motion.expected_pulse`); then every heart-rate output
     (channels, then fused) takes one step of its tracker (a one-channel
     :class:`~estimators.tracker.RidgeTrack`, or with fixed-lag smoothing a
-    :class:`~estimators.tracker.LagTrack`, whose outputs refer to earlier hops).
+    :class:`~estimators.tracker.LagTrack`, whose outputs refer to earlier hops; both
+    start, and start again, from the settings' start prior), and each rate is refined
+    on the refinement spectra of the hop it refers to (the motion stage's third output,
+    the canceller's residual; :func:`refined`, within ``refine_radius_per_min``, 0:
+    not refined). The refinement feeds nothing back: the trackers' states and the
+    expected pulse do not see it.
 
     Input :class:`ExerciseHops`: the heart-rate channels' :class:`HopBlock` (with
     complex columns for the motion stage) by key, and the accelerometer axes' blocks by
@@ -754,6 +769,7 @@ class MotionTracking:
     reference_names: tuple
     trust: str
     window_hops: int
+    refine_radius_per_min: float = 0.0
 
     def initial_state(self) -> MotionTrackingState:
         return MotionTrackingState(tuple(m.initial_state() for m in self.motion),
@@ -771,17 +787,20 @@ class MotionTracking:
                                          self.tracker.params.halfwidth_bins)
 
     def _track(self, tracker_state, held: tuple, block: HopBlock):
-        """One hop of one output's tracker: ``(state, held, Tracked)``."""
+        """One hop of one output's tracker, its rate refined on the hops' refinement
+        spectra (:func:`refined`): ``(state, held, Tracked)``."""
         if isinstance(self.tracker, tracker_mod.RidgeTrack):
             tracker_state, out = self.tracker.step(tracker_state, tracker_mod.TrackInput(
                 block.spectra[None], block.integrity[None], block.magnitude[None]))
-            return tracker_state, held, Tracked(block, out.rate[0], out.confidence[0],
-                                                out.concentration[0], block.emitted_s)
-        tracker_state, out = self.tracker.step(tracker_state, tracker_mod.TrackInput(
-            block.spectra, block.integrity, block.magnitude))
-        held, tracked = lagged_tracked(held, block, out, tracker_state.hops_seen,
-                                       self.tracker.params.lag_hops)
-        return tracker_state, held, tracked
+            tracked = Tracked(block, out.rate[0], out.confidence[0], out.concentration[0],
+                              block.emitted_s)
+        else:
+            tracker_state, out = self.tracker.step(tracker_state, tracker_mod.TrackInput(
+                block.spectra, block.integrity, block.magnitude))
+            held, tracked = lagged_tracked(held, block, out, tracker_state.hops_seen,
+                                           self.tracker.params.lag_hops)
+        return (tracker_state, held,
+                refined(tracked, self.tracker.rates, self.refine_radius_per_min))
 
     def step(self, state: MotionTrackingState, x) -> tuple[MotionTrackingState, tuple]:
         blocks, references = x
@@ -805,7 +824,7 @@ class MotionTracking:
                    if key in blocks}
             for i, key in enumerate(self.motion_keys):
                 guide = MotionTrackingState((), tuple(trackers), (), missing, untrusted)
-                motion_states[i], (spectra, lines) = self.motion[i].step(
+                motion_states[i], (spectra, lines, refine) = self.motion[i].step(
                     motion_states[i], (hop[key].columns, None if acc is None else
                                        acc[p:p + 1], self._expected(guide, key)))
                 # While the stage warms up again its output is not what the motion
@@ -813,7 +832,7 @@ class MotionTracking:
                 # missing (the blind family) until a window has passed.
                 hop[key] = dataclasses.replace(
                     hop[key], spectra=spectra, magnitude=spectra, columns=None,
-                    motion_lines=lines, reference_integrity=(
+                    motion_lines=lines, refine=refine, reference_integrity=(
                         np.zeros(1) if untrusted > 0 else reference[p:p + 1]))
             if ("hr", FUSED) in self.keys:
                 hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in self.keys
@@ -876,7 +895,7 @@ class _Output:
         self.filter_delay_s = filter_delay_s  # causal group delay per grid rate (F,)
         stage = tracker_stage(settings, grid_rates)
         self.tracker = tracker_mod.RidgeTracker(grid_rates, stage.params, stage.power, True,
-                                                stage.chance_factor, stage.span)
+                                                stage.chance_factor, stage.span, stage.start)
         self.report = Report(quantity, source, grid_rates, settings, calibrate,
                              filter_delay_s)
         self.reset()
@@ -899,13 +918,14 @@ class _Output:
         lag = self.settings.lag_hops
         if lag == 0:
             rate, conf, frac = self.tracker.track(block.spectra, block.integrity, block.magnitude)
-            return Tracked(block, rate, conf, frac, block.emitted_s)
+            return refined(Tracked(block, rate, conf, frac, block.emitted_s), self.rates,
+                           self.settings.refine_radius_per_min)
         rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
         self._held, tracked = lagged_tracked(
             self._held, block, tracker_mod.LagOutput(rate, conf, index),
             self.tracker.hops_seen, lag)
-        return tracked
+        return refined(tracked, self.rates, self.settings.refine_radius_per_min)
 
     def estimates(self, tracked: "Tracked", channel_rates: np.ndarray | None = None
                   ) -> list[Estimate]:
@@ -953,6 +973,18 @@ def _stacked(rates: list) -> np.ndarray | None:
     if len(rates) < 2 or len({len(r) for r in rates}) != 1:
         return None
     return np.array(rates, dtype=np.float64)
+
+
+def refined(tracked: Tracked, rates: np.ndarray, radius_per_min: float) -> Tracked:
+    """The tracker output with each rate moved onto the nearest peak of its hop's
+    refinement spectra (``block.refine``, the motion stage's residual;
+    :func:`estimators.refine.refine_rate`) within ``radius_per_min``; as it is when the
+    hops carry none. The confidence and the concentration score stay those of the
+    tracked rate, as the tracker gave them."""
+    if tracked.block.refine is None or len(tracked) == 0:
+        return tracked
+    return dataclasses.replace(tracked, rate=refine_mod.refine_rate(
+        tracked.block.refine, rates, tracked.rate, radius_per_min))
 
 
 def concat_blocks(blocks: Sequence[HopBlock]) -> HopBlock:
@@ -1088,12 +1120,13 @@ class RateMonitor:
             tracker = tracker_stage(hr, self.paths[first].grid.rates_per_min)
             if hr.lag_hops:
                 tracker = tracker_mod.LagTrack(tracker.rates, tracker.params, tracker.power,
-                                               True, tracker.chance_factor, tracker.span)
+                                               True, tracker.chance_factor, tracker.span,
+                                               tracker.start)
             self.motion_tracking = MotionTracking(
                 tuple(key for key in self.outputs if key[0] == "hr"), tuple(self.motion),
                 tuple(self.motion.values()), tracker,
                 tuple(self.motion_paths), hr.motion_trust,
-                int(round(hr.window_s / hr.hop_s)))
+                int(round(hr.window_s / hr.hop_s)), hr.refine_radius_per_min)
         self._motion_state = (None if self.motion_tracking is None
                               else self.motion_tracking.initial_state())
         # Channels of a group are tracked together (one compiled call) unless the motion
@@ -1407,7 +1440,9 @@ def _offline_stretch(monitor: RateMonitor, samples: np.ndarray,
         # Rate at the spectral peak near the Viterbi ridge (as live reads it near the mode).
         rate, conf, _ = tracker_mod.offline_track(block.spectra, weights, out.tracker.params,
                                                   out.tracker.power, out.rates,
-                                                  block.magnitude)
+                                                  block.magnitude, out.tracker.start)
+        rate = refine_mod.refine_rate(block.refine, out.rates, rate,
+                                      out.settings.refine_radius_per_min)
         new = estimates_from_track(key[0], key[1], block, rate, conf, out.rates, out.settings,
                                    np.full(len(block), end),
                                    channel_rates=_stacked(channel_rates)

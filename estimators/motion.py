@@ -291,6 +291,14 @@ def harmonic_support(magnitude: np.ndarray, params: MotionParams) -> np.ndarray:
     return _band_normalised(out, slice(0, out.shape[1]))
 
 
+def residual_support(residual_magnitude: np.ndarray, params: MotionParams) -> np.ndarray:
+    """The harmonic sum (:func:`harmonic_support`) of the canceller's residual magnitude
+    with no motion gain: (P, F) -> (P, band bins). Where the tracked rate is read
+    (:mod:`estimators.refine`): the gain picks the pulse's peak, but its slope across
+    the peak would move it."""
+    return harmonic_support(_band_normalised(residual_magnitude, params.band), params)
+
+
 def expected_pulse(posterior: np.ndarray, halfwidth_bins: float) -> np.ndarray:
     """Where the tracker expects the pulse, in [0, 1] per band bin: the posterior
     divided by its largest value, then the largest value within ``halfwidth_bins`` on
@@ -391,6 +399,14 @@ class MotionSuppressor:
 
     def update(self, ppg_columns: np.ndarray, acc_columns: np.ndarray | None = None,
                expected: np.ndarray | None = None):
+        return self.update_with_refine(ppg_columns, acc_columns, expected)[:2]
+
+    def update_with_refine(self, ppg_columns: np.ndarray,
+                           acc_columns: np.ndarray | None = None,
+                           expected: np.ndarray | None = None):
+        """:meth:`update`, and the spectra the tracked rate is refined on (P, band
+        bins): :func:`residual_support` of the canceller's residual, no gain
+        (:mod:`estimators.refine`)."""
         n = self.params.n_bins
         ppg_columns = np.asarray(ppg_columns)[:, :n]
         if acc_columns is None:
@@ -407,7 +423,8 @@ class MotionSuppressor:
         self.state, cleaned = gain_step(self.state, np.abs(residual),
                                         reference * (1.0 - gate * trust), self.params)
         self.state.hops += len(ppg_columns)
-        return harmonic_support(cleaned, self.params), motion_lines(reference, self.params)
+        return (harmonic_support(cleaned, self.params), motion_lines(reference, self.params),
+                residual_support(np.abs(residual), self.params))
 
 
 @dataclass(frozen=True, eq=False)
@@ -415,10 +432,13 @@ class MotionStage:
     """Stage (:mod:`estimators.stage`) of the motion suppression of one heart-rate
     channel: input ``(ppg_columns (P, F), acc_columns (P, F, K), expected (P, band
     bins) or None)`` as :meth:`MotionSuppressor.update` takes them, output ``(spectra,
-    lines)`` (P, band bins) each, state :class:`MotionState`. The same computation as
-    :class:`MotionSuppressor` (which owns a state of this stage), on a copy of the
-    state. Given the expected pulse per hop the stage is a function of its hops, so its
-    batch is one step over the whole record from the initial state."""
+    lines, refine)`` (P, band bins) each: the tracked spectra, the motion-line marks and
+    the spectra the tracked rate is refined on (:func:`residual_support`,
+    :mod:`estimators.refine`); state :class:`MotionState`. The same computation as
+    :meth:`MotionSuppressor.update_with_refine` (the suppressor owns a state of this
+    stage), on a copy of the state. Given the expected pulse per hop the stage is a
+    function of its hops, so its batch is one step over the whole record from the
+    initial state."""
 
     params: MotionParams
     n_refs: int
@@ -431,7 +451,7 @@ class MotionStage:
         suppressor.params, suppressor.n_refs = self.params, self.n_refs
         suppressor.state = MotionState(*(np.array(getattr(state, name)) for name in (
             "cov", "cross", "power", "count", "ppg_mean", "acc_mean")), state.hops)
-        out = suppressor.update(*x)
+        out = suppressor.update_with_refine(*x)
         return suppressor.state, out
 
     def batch(self, x) -> tuple:
@@ -443,4 +463,4 @@ class MotionStage:
                 for lo, hi in zip(edges[:-1], edges[1:])]
 
     def join(self, parts) -> tuple:
-        return tuple(np.concatenate([p[i] for p in parts]) for i in range(2))
+        return tuple(np.concatenate([p[i] for p in parts]) for i in range(3))

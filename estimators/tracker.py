@@ -20,6 +20,11 @@ within ``confidence_halfwidth`` of the posterior mode; the **confidence** is the
 mass in that interval, so it falls when the posterior splits (e.g. between the pulse
 and a double or half of it, or between pulse and cadence).
 
+Before the first hop (and after a restart) the posterior is uniform, or the start prior
+(:func:`start_posterior`: rates above a knee tapered) that the stages take as ``start``
+and their ``initial_state`` normalises (:func:`first_posterior`); the offline twin starts
+from it too.
+
 Fixed-lag smoothing of ``L`` hops runs the backward recursion over the newest ``L + 1``
 hops; the estimate then refers to hop ``p - L`` and its delay grows by ``L * hop_s``.
 
@@ -83,6 +88,36 @@ def make_params(grid_step_per_min: float, hop_s: float, max_change_per_min_per_s
 def initial_posterior(n_bins: int) -> np.ndarray:
     """Uniform over the band: nothing is known before the first hop."""
     return np.full(n_bins, 1.0 / n_bins)
+
+
+START_TAPER_PER_MIN = 20.0
+"""Width (standard deviation, per minute) of the start prior's taper above its knee
+(:func:`start_posterior`): twice the spread of measured maximal heart rates around their
+age prediction (about 10 bpm; Tanaka, Monahan & Seals, J. Am. Coll. Cardiol.
+37(1):153-156, 2001, from memory), so a rate 20 bpm above the knee keeps 61 % of the
+weight and one 40 bpm above, 14 %."""
+
+
+def start_posterior(rates: np.ndarray, taper_above_per_min: float) -> np.ndarray:
+    """The posterior before the first hop (and after a restart): uniform up to
+    ``taper_above_per_min``, a Gaussian taper of width :data:`START_TAPER_PER_MIN`
+    above it, normalised; uniform when ``taper_above_per_min`` is 0.
+
+    Before any evidence, a tracker started on a resting pulse whose second harmonic
+    outgrows its fundamental (a wrist PPG at rest can do this for seconds) would lock
+    on twice the rate, as likely a priori as the rate itself; the taper makes rates
+    above the usual maximal heart rate less likely at the start only. Later hops are
+    not affected (the transitions carry the posterior).
+
+    >>> start_posterior(np.array([100.0, 180.0, 200.0]), 180.0).round(3).tolist()
+    [0.384, 0.384, 0.233]
+    """
+    rates = np.asarray(rates, dtype=np.float64)
+    if taper_above_per_min <= 0:
+        return initial_posterior(len(rates))
+    excess = np.maximum(rates - taper_above_per_min, 0.0) / START_TAPER_PER_MIN
+    weight = np.exp(-0.5 * excess ** 2)
+    return weight / weight.sum()
 
 
 def read_posterior(posterior: np.ndarray, rates: np.ndarray, halfwidth_bins: float,
@@ -180,8 +215,10 @@ def smooth_all(emissions: np.ndarray, weights: np.ndarray, params: TrackerParams
     return post / post.sum(axis=1, keepdims=True)
 
 
-def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerParams) -> np.ndarray:
-    """Globally optimal bin path (P,) through tempered emissions (offline twin)."""
+def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerParams,
+                 start: np.ndarray | None = None) -> np.ndarray:
+    """Globally optimal bin path (P,) through tempered emissions (offline twin);
+    ``start`` (F,): the prior of the first hop's bin (None: uniform)."""
     emissions = np.atleast_2d(emissions)
     n_hops, n_bins = emissions.shape
     if n_hops == 0:
@@ -191,6 +228,8 @@ def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerPara
     for a in range(0, n_hops, OFFLINE_BLOCK_HOPS):  # row by row: no (P, F) temporaries
         part = slice(a, a + OFFLINE_BLOCK_HOPS)
         log_e[part] = np.log(emissions[part]) * weights[part, None]
+    if start is not None:
+        log_e[0] += np.log(np.maximum(start, 1e-300))
     mix = params.jump_probability
     log_t = np.log((1.0 - mix) * params.transition + mix / n_bins)
     log_jump = np.log(mix / n_bins) if mix > 0 else -np.inf
@@ -200,13 +239,15 @@ def viterbi_path(emissions: np.ndarray, weights: np.ndarray, params: TrackerPara
 
 
 def offline_track(spectra: np.ndarray, weights: np.ndarray, params: TrackerParams,
-                  power: float, rates: np.ndarray, readout: np.ndarray | None = None):
+                  power: float, rates: np.ndarray, readout: np.ndarray | None = None,
+                  start: np.ndarray | None = None):
     """The offline twin of the tracker over a whole record: the Viterbi ridge and the
     forward-backward posterior mass within the half-width of it.
 
     Returns ``(rate, confidence, path)`` per hop: the rate of the highest peak of
     ``readout`` (default ``spectra``) near the ridge (:func:`refine_peak`), the mass
-    near the ridge clipped to [0, 1], and the ridge's bins.
+    near the ridge clipped to [0, 1], and the ridge's bins. ``start`` (F,): the
+    posterior before the first hop (None: uniform), as the live tracker starts.
 
     Notes
     -----
@@ -224,12 +265,12 @@ def offline_track(spectra: np.ndarray, weights: np.ndarray, params: TrackerParam
         part = slice(a, a + OFFLINE_BLOCK_HOPS)
         emissions[part] = emissions_from_spectra(spectra[part], power)
     weights = np.ascontiguousarray(np.clip(weights, 0.0, 1.0), dtype=np.float64)
-    path = viterbi_path(emissions, weights, params)
+    path = viterbi_path(emissions, weights, params, start)
     if len(path) == 0:
         empty = np.empty(0)
         return empty, empty, path
-    _, alphas = forward_step(initial_posterior(emissions.shape[1]), emissions, weights,
-                             params)
+    _, alphas = forward_step(initial_posterior(emissions.shape[1]) if start is None
+                             else start, emissions, weights, params)
     mass = np.empty(len(path))
     _kernels.backward_mass(emissions, weights, params.transition, params.jump_probability,
                            alphas, path.astype(np.float64), float(params.halfwidth_bins),
@@ -291,6 +332,27 @@ def _join_hops(parts):
                          for f in first.__dataclass_fields__))
 
 
+def _checked_start(start: np.ndarray | None, n_bins: int) -> np.ndarray | None:
+    """A tracker stage's ``start`` as float64 (None stays None), checked."""
+    if start is None:
+        return None
+    start = np.asarray(start, dtype=np.float64)
+    if start.shape != (n_bins,):
+        raise ParameterError(f"start.shape={start.shape} must be ({n_bins},)")
+    if not (np.all(start >= 0) and np.isfinite(np.sum(start)) and np.sum(start) > 0):
+        raise ParameterError("start must be finite weights >= 0, not all zero")
+    return start
+
+
+def first_posterior(start: np.ndarray | None, n_bins: int) -> np.ndarray:
+    """The posterior before the first hop (and after a restart) of a tracker whose
+    start prior is ``start`` (F,) (e.g. :func:`start_posterior`): ``start`` normalised
+    to sum 1; uniform (:func:`initial_posterior`) when it is None."""
+    if start is None:
+        return initial_posterior(n_bins)
+    return np.asarray(start, dtype=np.float64) / np.sum(start)
+
+
 @dataclass(frozen=True, eq=False)
 class RidgeTrack:
     """Stage (:mod:`estimators.stage`): the causal tracker without lag for C channels on
@@ -303,6 +365,10 @@ class RidgeTrack:
     numpy composition of the same steps (:func:`emissions_from_spectra`,
     :func:`forward_step`, :func:`read_posterior` and the concentration score), the twin
     the compiled kernel is tested against.
+
+    ``start`` (F,): the start prior of every channel (:func:`start_posterior`), whose
+    normalisation is the posterior before the first hop (:func:`first_posterior`);
+    None: uniform.
     """
 
     rates: np.ndarray
@@ -312,6 +378,10 @@ class RidgeTrack:
     chance_factor: float = 1.5
     span: float = 0.3
     n_channels: int = 1
+    start: np.ndarray | None = None
+
+    def __post_init__(self):
+        object.__setattr__(self, "start", _checked_start(self.start, len(self.rates)))
 
     @property
     def step_per_min(self) -> float:
@@ -322,7 +392,8 @@ class RidgeTrack:
         return float(self.rates[0] / self.step_per_min)
 
     def initial_state(self) -> TrackState:
-        return TrackState(np.tile(initial_posterior(len(self.rates)), (self.n_channels, 1)))
+        return TrackState(np.tile(first_posterior(self.start, len(self.rates)),
+                                  (self.n_channels, 1)))
 
     def step(self, state: TrackState, x: TrackInput) -> tuple[TrackState, TrackOutput]:
         spectra = np.ascontiguousarray(x.spectra, dtype=np.float64)
@@ -352,7 +423,8 @@ class RidgeTrack:
         # The general tracker without lag: rhythm score, emissions, forward filter and
         # read-out in numpy (the same steps LagTrack takes).
         plain = LagTrack(self.rates, dataclasses.replace(self.params, lag_hops=0),
-                         self.power, self.check_rhythm, self.chance_factor, self.span)
+                         self.power, self.check_rhythm, self.chance_factor, self.span,
+                         self.start)
         out = plain.batch(TrackInput(spectra, weights, readout))
         n_bins, halfwidth = len(self.rates), float(self.params.halfwidth_bins)
         position = (out.rate - self.rates[0]) / self.step_per_min
@@ -408,7 +480,8 @@ class LagTrack:
     step (:func:`forward_step`); the smoothed posterior of the oldest of the newest
     ``L + 1`` hops (:func:`smooth_oldest`) read by :func:`read_posterior` on that hop's
     read-out spectrum. Without lag the hot path is :class:`RidgeTrack` (compiled, the
-    same numbers)."""
+    same numbers). ``start``: the posterior before the first hop, as
+    :class:`RidgeTrack` takes it."""
 
     rates: np.ndarray
     params: TrackerParams
@@ -416,11 +489,16 @@ class LagTrack:
     check_rhythm: bool = False
     chance_factor: float = 1.5
     span: float = 0.3
+    start: np.ndarray | None = None
+
+    def __post_init__(self):
+        object.__setattr__(self, "start", _checked_start(self.start, len(self.rates)))
 
     def initial_state(self) -> LagState:
         n_bins = len(self.rates)
         empty = np.empty((0, n_bins))
-        return LagState(initial_posterior(n_bins), 0, empty, empty, np.empty(0), empty)
+        return LagState(first_posterior(self.start, n_bins), 0, empty, empty, np.empty(0),
+                        empty)
 
     def rhythm(self, spectra: np.ndarray, readout: np.ndarray) -> np.ndarray:
         """Rhythm score per hop (see :func:`estimators._kernels.rhythm_scores`); ones when
@@ -495,7 +573,8 @@ class RidgeTracker:
     """
 
     def __init__(self, rates_per_min: np.ndarray, params: TrackerParams, emission_power: float,
-                 check_rhythm: bool = False, chance_factor: float = 1.5, span: float = 0.3):
+                 check_rhythm: bool = False, chance_factor: float = 1.5, span: float = 0.3,
+                 start: np.ndarray | None = None):
         self.rates = np.asarray(rates_per_min, dtype=np.float64)
         self.params, self.power = params, emission_power
         self.step = float(self.rates[1] - self.rates[0])
@@ -505,10 +584,18 @@ class RidgeTracker:
         self.check_rhythm = bool(check_rhythm)
         self.chance_factor, self.span = float(chance_factor), float(span)
         self.stage = RidgeTrack(self.rates, params, emission_power, self.check_rhythm,
-                                self.chance_factor, self.span)
+                                self.chance_factor, self.span, start=start)
         self.lagged = LagTrack(self.rates, params, emission_power, self.check_rhythm,
-                               self.chance_factor, self.span)
+                               self.chance_factor, self.span, start)
         self.reset()
+
+    @property
+    def start(self) -> np.ndarray | None:
+        """The posterior before the first hop and after every :meth:`reset`
+        (:func:`first_posterior` of the start prior); None when it is uniform."""
+        if self.stage.start is None:
+            return None
+        return first_posterior(self.stage.start, len(self.rates))
 
     def reset(self) -> None:
         self.memory = self.lagged.initial_state()

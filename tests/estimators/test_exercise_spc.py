@@ -20,6 +20,8 @@ estimates that are right.
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 from scipy import io
@@ -39,15 +41,18 @@ EXERCISE = get_profile("exercise-wrist")
 ROWS = {"ppg1": 1, "ppg2": 2, "accx": 3, "accy": 4, "accz": 5}  # row 0 is the ECG
 KINDS = {"ppg1": "ppg", "ppg2": "ppg", "accx": "acc", "accy": "acc", "accz": "acc"}
 CONFIGS = {
-    "ppg1+ppg2": (("ppg1", "ppg2"), FUSED),
-    "with acc": (("ppg1", "ppg2", "accx", "accy", "accz"), FUSED),
+    "ppg1+ppg2": (("ppg1", "ppg2"), FUSED, EXERCISE),
+    "with acc": (("ppg1", "ppg2", "accx", "accy", "accz"), FUSED, EXERCISE),
+    # The same, with the rate read at the tracked (gained) peak (estimators/refine.py).
+    "unrefined": (("ppg1", "ppg2", "accx", "accy", "accz"), FUSED, dataclasses.replace(
+        EXERCISE, hr=dataclasses.replace(EXERCISE.hr, refine_radius_per_min=0.0))),
 }
 
 
-def scored(sig: np.ndarray, bpm0: np.ndarray, channels, source) -> dict:
+def scored(sig: np.ndarray, bpm0: np.ndarray, channels, source, profile=EXERCISE) -> dict:
     samples = sig[[ROWS[c] for c in channels]].T
     t = np.arange(len(samples)) / FS
-    estimates = RateMonitor([(c, KINDS[c]) for c in channels], FS, EXERCISE).update(samples, t)
+    estimates = RateMonitor([(c, KINDS[c]) for c in channels], FS, profile).update(samples, t)
     mine = [e for e in estimates if e.quantity == "hr" and e.source == source]
     emitted = np.array([e.emitted_s for e in mine])
     rate = np.array([e.rate_per_min for e in mine])
@@ -77,8 +82,8 @@ def results(shared_data):
         sig = np.asarray(io.loadmat(path)["sig"], dtype=np.float64)
         bpm0 = np.asarray(io.loadmat(folder / f"{name}_BPMtrace.mat")["BPM0"],
                           dtype=np.float64).ravel()
-        out[name] = {config: scored(sig, bpm0, channels, source)
-                     for config, (channels, source) in CONFIGS.items()}
+        out[name] = {config: scored(sig, bpm0, channels, source, profile)
+                     for config, (channels, source, profile) in CONFIGS.items()}
     return out
 
 
@@ -115,6 +120,17 @@ def test_accelerometer_aided_fused_beats_ppg_only(results):
     # PPG is clean enough alone: 0.6-0.9 bpm against 0.8-1.3 with the accelerometer).
     for name, a, b in zip(RECORDS, full, ppg_only):
         assert a < b or max(a, b) <= 1.5, name
+
+
+def test_refinement_lowers_the_error(results):
+    """Reading the rate on the canceller's residual peak (estimators/refine.py) instead
+    of the gained peak: measured when written, mean AAE 1.54 -> 1.18 bpm over records
+    01-12, every record better (least: 01, 1.70 -> 1.64). The guard: at least 0.1 bpm
+    better on the mean, and no record more than 0.1 bpm worse."""
+    refined, unrefined = aae(results, "with acc"), aae(results, "unrefined")
+    print("unrefined", np.round(unrefined, 2), "refined", np.round(refined, 2))
+    assert refined.mean() <= unrefined.mean() - 0.1
+    assert np.all(refined <= unrefined + 0.1)
 
 
 def test_confident_estimates_are_within_tolerance(results):

@@ -397,8 +397,11 @@ def test_a_cadence_crossing_the_heart_rate_is_tracked(rng, case):
 def test_a_wrong_lock_on_the_cadence_is_left(rng):
     # A record that starts mid-run: before the canceller has its references' statistics
     # the stronger cadence wins; the tracker must leave it once the pulse is clean.
+    # Motion five times the pulse: at three times, the profile's motion gain (2 since
+    # the leave-one-record-out choice of this round) keeps the cadence off from the
+    # start, and there is no wrong lock to leave.
     rate_fn, cadence_fn = CROSSINGS["both move"]
-    t, x = running_wrist(rng, rate_fn, cadence_fn, duration_s=60.0)
+    t, x = running_wrist(rng, rate_fn, cadence_fn, duration_s=60.0, motion_gain=5.0)
     time_s, rate, _ = heart(RateMonitor(ALL, FS, EXERCISE).update(x, t), FUSED)
     early = time_s < 12.0
     assert (np.abs(rate - cadence_fn(time_s)) < 5.0)[early].mean() > 0.5  # locked wrong

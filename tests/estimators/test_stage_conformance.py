@@ -19,9 +19,11 @@ import pytest
 
 from estimators import motion as motion_mod
 from estimators import rate_now as now_mod
+from estimators import tracker as tracker_mod
 from estimators.config import get_profile
 from estimators.monitor import (ChannelGroup, ExerciseHops, GroupReport, GroupTracking,
                                 RateMonitor, Report, tracker_stage)
+from estimators.refine import climb_to_peak
 from estimators.tracker import LagTrack, TrackInput
 from estimators.stage import Chain, Parallel
 from tests import signals
@@ -225,6 +227,30 @@ def tracker_lagged():
     return stage, TrackInput(blocks.spectra[0], blocks.integrity[0], blocks.magnitude[0])
 
 
+START_KNEE = 60.0
+"""A start prior tapering above 60 bpm: it weighs on the first hops of these 70-90 bpm
+pulses (exercise-wrist's 180 bpm hardly would), so the cases below check a start that
+matters (``test_the_start_prior_cases_start_from_it``)."""
+
+
+def tracker_start_prior():
+    """Three channels whose trackers start from a start prior (``initial_state``)."""
+    blocks = _blocks("ppg", 3)
+    settings = dataclasses.replace(HR, start_prior_above_per_min=START_KNEE)
+    stage = tracker_stage(settings, _group("ppg", 3).grid.rates_per_min, 3)
+    return stage, TrackInput(blocks.spectra, blocks.integrity, blocks.magnitude)
+
+
+def tracker_lagged_start_prior():
+    blocks = _blocks("ppg", 1)
+    settings = dataclasses.replace(HR, start_prior_above_per_min=START_KNEE)
+    base = tracker_stage(settings, _group("ppg", 1).grid.rates_per_min, 1)
+    params = dataclasses.replace(base.params, lag_hops=3)
+    stage = LagTrack(base.rates, params, base.power, True, base.chance_factor, base.span,
+                     base.start)
+    return stage, TrackInput(blocks.spectra[0], blocks.integrity[0], blocks.magnitude[0])
+
+
 def group_tracking_ppg():
     grid = _group("ppg", 3).grid.rates_per_min
     return GroupTracking(tracker_stage(HR, grid, 3)), _blocks("ppg", 3)
@@ -316,7 +342,7 @@ CASES = [front_end_ppg, front_end_ecg, front_end_resp, spectrum_ppg, spectrum_sh
          spectrum_resp, transform_deshape, transform_plain, transform_sharpened,
          transform_keeps_columns, motion_stage, exercise_tracking_one_ppg,
          exercise_tracking_fused, exercise_tracking_lagged, tracker_ppg, tracker_lagged,
-         group_tracking_ppg,
+         tracker_start_prior, tracker_lagged_start_prior, group_tracking_ppg,
          report_heart_rate, report_fused, report_ecg, report_breathing, group_report_ppg,
          rate_now_heart_rate, channel_group_chain, heart_rate_path_ppg,
          heart_rate_path_ecg, breathing_path_belt]
@@ -328,7 +354,8 @@ def test_conformance(case, rng):
 
 
 @pytest.mark.parametrize("case", [front_end_ppg, tracker_ppg, heart_rate_path_ppg,
-                                  motion_stage, exercise_tracking_fused],
+                                  motion_stage, exercise_tracking_fused,
+                                  tracker_start_prior],
                          ids=lambda case: case.__name__)
 def test_conformance_without_jit(case):
     check_without_jit(__name__, case.__name__)
@@ -358,6 +385,54 @@ def test_lagged_exercise_outputs_keep_their_motion_lines():
     assert np.all(np.diff(at) >= 1) and at[-1] == len(x) - 3
     np.testing.assert_array_equal(lagged.block.motion_lines, hops.motion_lines[at])
     assert lagged.block.motion_lines.max() > 0.0  # the accelerometer marks some lines
+
+
+def test_the_start_prior_cases_start_from_it():
+    """The start prior is each tracker stage's initial state, and it changes what the
+    first hops give (the cases above are not a uniform start under another name)."""
+    for case, plain in ((tracker_start_prior, tracker_ppg),
+                        (tracker_lagged_start_prior, tracker_lagged)):
+        stage, x = case()
+        uniform, _ = plain()
+        want = tracker_mod.start_posterior(stage.rates, START_KNEE)
+        assert uniform.start is None
+        np.testing.assert_allclose(np.reshape(stage.initial_state().posterior, (-1, len(want))),
+                                   np.broadcast_to(want, (3 if case is tracker_start_prior
+                                                          else 1, len(want))), rtol=1e-14)
+        ours, theirs = stage.batch(x), uniform.batch(x)
+        assert not np.allclose(ours.confidence[..., :4], theirs.confidence[..., :4]), \
+            case.__name__
+
+
+def test_the_exercise_cases_refine_and_start_from_the_prior():
+    """The exercise cases run the shipped mechanisms: their trackers start from the
+    exercise-wrist start prior (180 bpm), and every rate is the unrefined tracker's
+    rate climbed on the hop's refinement spectra (the motion stage's third output),
+    within the 2 bpm radius; with fixed-lag smoothing, on the spectra of the hop the
+    output refers to."""
+    for case in (exercise_tracking_fused, exercise_tracking_lagged):
+        stage, x = case()
+        grid = stage.tracker.rates
+        start = tracker_mod.start_posterior(grid, 180.0)
+        assert EXERCISE.start_prior_above_per_min == 180.0
+        np.testing.assert_allclose(stage.initial_state().trackers[0].posterior.ravel(),
+                                   start, rtol=1e-14)
+        assert stage.refine_radius_per_min == EXERCISE.refine_radius_per_min == 2.0
+        tracked, blocks = stage.batch(x)
+        unrefined, _ = dataclasses.replace(stage, refine_radius_per_min=0.0).batch(x)
+        radius_bins = int(round(2.0 / (grid[1] - grid[0])))
+        moved = []
+        for key, out in tracked.items():
+            refine = out.block.refine
+            assert refine is not None and refine.shape == out.block.spectra.shape, key
+            at = np.searchsorted(blocks[key].time_s, out.block.time_s)
+            np.testing.assert_array_equal(refine, blocks[key].refine[at])
+            np.testing.assert_allclose(
+                out.rate, climb_to_peak(refine, grid, unrefined[key].rate, radius_bins),
+                rtol=0, atol=1e-12)
+            np.testing.assert_array_equal(out.confidence, unrefined[key].confidence)
+            moved.append(np.mean(np.abs(out.rate - unrefined[key].rate) > 0.01))
+        assert max(moved) > 0.2, case.__name__  # the refinement does move rates
 
 
 def test_rate_now_changes_only_the_rate_now_fields():

@@ -12,7 +12,8 @@ when the product has no mass the prediction ``A @ alpha_{p-1}`` is kept.
 Backward: ``beta_{P-1} = 1 / F``,
 ``beta_{p-1}(g) = normalise(sum_f A[f, g] e_p(f) ** w_p beta_p(f))``.
 Viterbi: ``d_p(f) = max_g (d_{p-1}(g) + log A[f, g]) + w_p log e_p(f)``,
-``d_0 = w_0 log e_0``.
+``d_0 = w_0 log e_0`` (plus ``log start`` when a start prior is given; the forward
+filter then starts from ``alpha_{-1} = start`` instead of the uniform posterior).
 """
 
 from __future__ import annotations
@@ -81,10 +82,12 @@ def backward(em: np.ndarray, weights: np.ndarray, a: np.ndarray) -> np.ndarray:
     return beta
 
 
-def smoothed(em: np.ndarray, weights: np.ndarray, a: np.ndarray) -> np.ndarray:
-    """Posterior marginals given every hop, from a uniform start."""
+def smoothed(em: np.ndarray, weights: np.ndarray, a: np.ndarray,
+             start: np.ndarray | None = None) -> np.ndarray:
+    """Posterior marginals given every hop, from a uniform start (or ``start``)."""
     n_bins = em.shape[1]
-    _, alphas = forward(np.full(n_bins, 1.0 / n_bins), em, weights, a)
+    _, alphas = forward(np.full(n_bins, 1.0 / n_bins) if start is None else start, em,
+                        weights, a)
     post = alphas * backward(em, weights, a)
     return post / post.sum(axis=1, keepdims=True)
 
@@ -101,13 +104,17 @@ def fixed_lag(em: np.ndarray, weights: np.ndarray, a: np.ndarray, lag: int) -> n
     return np.array(out).reshape(-1, n_bins)
 
 
-def viterbi(em: np.ndarray, weights: np.ndarray, a: np.ndarray) -> tuple[np.ndarray, float]:
-    """Most probable bin path ``(P,)`` and its log score."""
+def viterbi(em: np.ndarray, weights: np.ndarray, a: np.ndarray,
+            start: np.ndarray | None = None) -> tuple[np.ndarray, float]:
+    """Most probable bin path ``(P,)`` and its log score (``start``: the first bin's
+    prior; None: uniform, which adds only a constant)."""
     n_hops, n_bins = em.shape
     with np.errstate(divide="ignore"):
         log_a = np.log(a)
     log_e = np.log(em) * np.clip(weights, 0.0, 1.0)[:, None]
     score = log_e[0].copy()
+    if start is not None:
+        score += np.log(start)
     back = np.zeros((n_hops, n_bins), dtype=np.int64)
     for p in range(1, n_hops):
         cand = score[None, :] + log_a  # cand[f, g]: come from g into f

@@ -1193,6 +1193,41 @@ SCAN_HEIGHTS, SCAN_INTERVALS, SCAN_POLARITIES, SCAN_UPSTROKES = 4, 5, 6, 7
 
 
 @kernel
+def beat_front_end(x, limiter, block, rank, margin, max_abs, last_accepted, detect_sos,
+                   zi_detect, feature_sos, zi_feature, level_sos, zi_level, last_band, fs,
+                   out_slope, out_band, out_feature, out_level):
+    """The causal filters of beat detection over one chunk, in one call (the compiled
+    twin of ``estimators.beats._front_end`` up to the ECG's moving average).
+
+    Each raw sample is accepted by :func:`limit_sample` (by finiteness and ``max_abs``
+    alone when ``block`` is 0) or held at the last accepted value (``last_accepted``
+    before the chunk); the held samples go through the three filters (:func:`sos_filter`)
+    into ``out_band`` (detection band-pass), ``out_feature`` and ``out_level``;
+    ``out_slope`` is the band-pass's slope per second (``last_band``: its value before the
+    chunk). ``limiter`` and the three filter states are updated in place; returns the
+    last accepted value."""
+    n = x.shape[0]
+    held = np.empty(n)
+    for k in range(n):
+        v = x[k]
+        if block == 0:
+            accepted = np.isfinite(v) and abs(v) <= max_abs
+        else:
+            accepted = limit_sample(v, limiter, block, rank, margin, max_abs)
+        if accepted:
+            last_accepted = v
+        held[k] = last_accepted
+    sos_filter(detect_sos, held, zi_detect, out_band)
+    sos_filter(feature_sos, held, zi_feature, out_feature)
+    sos_filter(level_sos, held, zi_level, out_level)
+    previous = last_band
+    for k in range(n):
+        out_slope[k] = (out_band[k] - previous) * fs
+        previous = out_band[k]
+    return last_accepted
+
+
+@kernel
 def numpy_sum(x, lo, n, square):
     """Sum of ``x[lo:lo + n]`` (of its squares when ``square``) associated as numpy's
     ``add.reduce`` does (pairwise: eight running sums per block of at most 128 values,
@@ -1373,8 +1408,8 @@ def aligned_offset(detect, kk, before, after, shift, upstrokes, n_upstrokes, int
 def scan_beats(detect, feature, level, band, times, offset, k_stop, is_ppg, fs, refractory,
                lookahead, search, integrate, qrs_half, max_gap, threshold_fraction,
                interval_tolerance, align_before, align_after, align_shift, cycle_share,
-               template_min_beats, scan, heights, intervals, polarities, upstrokes, out_index, out_position,
-               out_ready, out_ready_s, out_features, out_time_s):
+               template_min_beats, scan, heights, intervals, polarities, upstrokes,
+               out_index, out_position, out_ready, out_ready_s, out_features, out_time_s):
     """Decide the beat candidates from ``scan[SCAN_NEXT]`` up to raw index ``k_stop``
     (the compiled twin of ``estimators.beats._scan``, which documents the rules).
 

@@ -54,7 +54,7 @@ from scipy import signal
 
 from estimators import _kernels
 from estimators.errors import ParameterError
-from estimators.preprocess import Limiter, causal_sos, limit_batch, limit_step
+from estimators.preprocess import MAX_ABS, Limiter, causal_sos, limit_batch, limit_step
 
 MODULATIONS = ("intensity", "amplitude", "frequency")
 """Names of the three respiratory modulations, in the column order used throughout."""
@@ -328,12 +328,18 @@ def _detection_signal(params: BeatParams, state: BeatState, x: np.ndarray):
     ``state``; returns ``(detect, band, zi_detect, zi_integrate)``."""
     band, zi_detect = causal_sos(params.detect_sos, x, state.zi_detect)
     prev = np.concatenate(([state.last_band], band[:-1]))
-    slope = (band - prev) * params.fs
+    detect, zi_integrate = _integrate(params, state, (band - prev) * params.fs)
+    return detect, band, zi_detect, zi_integrate
+
+
+def _integrate(params: BeatParams, state: BeatState, slope: np.ndarray):
+    """The detection signal from the band-pass's slope: the slope itself (PPG), or the
+    moving average of its square over ``params.integrate`` samples (ECG); returns it and
+    the moving average's state after it."""
     if params.integrate == 0:
-        return slope, band, zi_detect, state.zi_integrate
+        return slope, state.zi_integrate
     taps = np.full(params.integrate, 1.0 / params.integrate)
-    energy, zi_integrate = signal.lfilter(taps, [1.0], slope ** 2, zi=state.zi_integrate)
-    return energy, band, zi_detect, zi_integrate
+    return signal.lfilter(taps, [1.0], slope ** 2, zi=state.zi_integrate)
 
 
 def _parabolic(y: np.ndarray, i: int) -> float:
@@ -520,9 +526,10 @@ def _scan(state: _ScanMemory, params: BeatParams, detect: np.ndarray, feature: n
 
 
 def _front_end(state: BeatState, x: np.ndarray, params: BeatParams):
-    """The causal filters of one chunk after ``state``: ``(detect, feature, level, band,
-    the held samples' last accepted value, the filter and limiter states after it)``.
-    Pure: the limiter state is copied before it is carried on."""
+    """The causal filters of one chunk after ``state``, one numpy call at a time (the
+    twin of :func:`estimators._kernels.beat_front_end` that :func:`detect_batch` runs):
+    ``(detect, feature, level, band, the held samples' last accepted value, the filter
+    and limiter states after it)``. Pure: the limiter state is copied first."""
     limiter = state.limiter.copy()
     x, last_accepted = _hold_rejected(x, limit_step(params.limiter, limiter, x),
                                       state.last_accepted)
@@ -536,8 +543,9 @@ def _front_end(state: BeatState, x: np.ndarray, params: BeatParams):
 def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
                 params: BeatParams) -> tuple[BeatState, Beats]:
     """Filter one chunk and decide every candidate it completes (``step(state, inputs,
-    params) -> (state, output)``); the candidates are decided by the compiled
-    :func:`estimators._kernels.scan_beats` (its numpy twin is :func:`detect_batch`).
+    params) -> (state, output)``): the filters run in the compiled
+    :func:`estimators._kernels.beat_front_end` and the candidates are decided by
+    :func:`estimators._kernels.scan_beats` (the numpy twin is :func:`detect_batch`).
 
     Parameters
     ----------
@@ -555,8 +563,16 @@ def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
     n = len(x)
     if n == 0:
         return state, Beats.empty()
-    x = np.asarray(x, dtype=np.float64)
-    detect, feature, level, band, last_accepted, filters = _front_end(state, x, params)
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    limiter, zi_detect = state.limiter.copy(), state.zi_detect.copy()
+    zi_feature, zi_level = state.zi_feature.copy(), state.zi_level.copy()
+    slope, band, feature, level = np.empty(n), np.empty(n), np.empty(n), np.empty(n)
+    last_accepted = _kernels.beat_front_end(
+        x, limiter, params.limiter.block, params.limiter.rank, float(params.limiter.margin),
+        MAX_ABS, state.last_accepted, params.detect_sos, zi_detect, params.feature_sos,
+        zi_feature, params.level_sos, zi_level, state.last_band, params.fs, slope, band,
+        feature, level)
+    detect, zi_integrate = _integrate(params, state, slope)
     offset = state.count - len(state.detect)
     all_detect = np.concatenate((state.detect, detect))
     all_feature = np.concatenate((state.feature, feature))
@@ -580,7 +596,8 @@ def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
         polarities, upstrokes, index, position, ready, ready_s, features, time_s)
     keep = min(len(all_detect), params.keep)
     cut = len(all_detect) - keep
-    new = BeatState(*filters[:4], filters[4], float(band[-1]), last_accepted, count,
+    new = BeatState(zi_detect, zi_integrate, zi_feature, zi_level, limiter, float(band[-1]),
+                    float(last_accepted), count,
                     all_detect[cut:].copy(), all_feature[cut:].copy(), all_level[cut:].copy(),
                     all_band[cut:].copy(), all_times[cut:].copy(), scan, heights, intervals,
                     polarities, upstrokes)

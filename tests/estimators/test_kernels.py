@@ -43,13 +43,14 @@ TESTED_KERNELS = {"forward_filter", "backward_pass", "backward_mass", "viterbi",
                   "shape_modulation_spectra", "track_ridges", "modulation_quality",
                   "fuse_rates", "interp_point", "calibrate_breathing", "numpy_sum",
                   "sorted_copy", "upper_quartile", "small_median", "vertex_offset",
-                  "beat_candidates", "remember", "aligned_offset", "scan_beats"}
+                  "beat_candidates", "remember", "aligned_offset", "scan_beats",
+                  "beat_front_end"}
 """Kernels with a test here (the breathing-from-the-pulse kernels, ``resample_chunk`` to
 ``calibrate_breathing`` and ``interp_point``, in test_stage_conformance_breathing.py; ``cancel_columns`` in test_motion.py,
 ``harmonic_score`` in test_quality.py, ``spectral_margins`` in test_calibration.py,
 ``track_block`` also
-through ``RidgeTracker.track`` in test_tracker.py; the beat detection kernels, ``numpy_sum``
-to ``scan_beats``, here and through ``detect_step`` against ``detect_batch`` in
+through ``RidgeTracker.track`` in test_tracker.py; the beat detection kernels, ``beat_front_end``
+and ``numpy_sum`` to ``scan_beats``, here and through ``detect_step`` against ``detect_batch`` in
 test_beats.py and test_stage_conformance_breathing.py)."""
 
 
@@ -458,13 +459,61 @@ def test_aligned_offset_equals_the_numpy_alignment(rng, with_intervals):
         assert n_up == TEMPLATE_BEATS and aligned > 20  # the template was used
 
 
+@pytest.mark.parametrize("kind", ["ppg", "ecg"])
+@pytest.mark.parametrize("limited", [True, False])
+def test_beat_front_end_equals_the_filters_one_call_at_a_time(rng, kind, limited):
+    # Chunk by chunk, both carrying their states: held samples (NaN, spikes, values
+    # beyond MAX_ABS), the three filters, the slope, the last accepted value and the
+    # filter and limiter states equal to the last bit.
+    import dataclasses
+
+    from estimators.beats import _front_end, beat_initial_state, beat_params
+    from estimators.preprocess import MAX_ABS, NO_LIMIT
+    fs = 125.0
+    params = beat_params(kind, fs)
+    if not limited:
+        params = dataclasses.replace(params, limiter=NO_LIMIT)
+    x = spiky_rhythm(rng, 3000, fs)[1]
+    x[700] = 2e100
+    start = beat_initial_state(params)
+    for label, fn in both(_kernels.beat_front_end):
+        state = start
+        limiter, zi = start.limiter.copy(), [z.copy() for z in (start.zi_detect,
+                                                                start.zi_feature,
+                                                                start.zi_level)]
+        last_accepted = 0.0
+        for lo in range(0, len(x), 97):
+            chunk = np.ascontiguousarray(x[lo:lo + 97])
+            detect, feature, level, band, held_last, filters = _front_end(state, chunk, params)
+            out = [np.empty(len(chunk)) for _ in range(4)]
+            last_accepted = fn(chunk, limiter, params.limiter.block, params.limiter.rank,
+                               float(params.limiter.margin), MAX_ABS, last_accepted,
+                               params.detect_sos, zi[0], params.feature_sos, zi[1],
+                               params.level_sos, zi[2], state.last_band, fs, *out)
+            np.testing.assert_array_equal(out[0], np.diff(np.concatenate((
+                [state.last_band], band))) * fs, err_msg=label)
+            if kind == "ppg":
+                np.testing.assert_array_equal(out[0], detect, err_msg=label)
+            for got, want in zip(out[1:], (band, feature, level)):
+                np.testing.assert_array_equal(got, want, err_msg=label)
+            assert last_accepted == held_last, label
+            for got, want in zip((zi[0], zi[1], zi[2], limiter),
+                                 (filters[0], filters[2], filters[3], filters[4])):
+                np.testing.assert_array_equal(got, want, err_msg=label)
+            state = dataclasses.replace(state, zi_detect=filters[0], zi_integrate=filters[1],
+                                        zi_feature=filters[2], zi_level=filters[3],
+                                        limiter=filters[4], last_accepted=held_last,
+                                        last_band=float(band[-1]))
+        assert np.isnan(x).any() and last_accepted == x[np.isfinite(x)][-1]
+
+
 def test_scan_beats_plain_path_equals_the_compiled_one(rng):
     # The whole scan on the two kinds through detect_step with the plain Python paths of
     # the beat kernels swapped in (the numpy twin comparison is in test_beats.py).
     import estimators.beats as beats_mod
     from tests.beat_signals import ecg_from_beats, sinus_intervals_ms
     names = ("scan_beats", "aligned_offset", "beat_candidates", "numpy_sum", "sorted_copy",
-             "upper_quartile", "small_median", "vertex_offset", "remember")
+             "upper_quartile", "small_median", "vertex_offset", "remember", "beat_front_end")
     fs = 125.0
     truth = 0.6 + np.cumsum(sinus_intervals_ms(rng, 40)) / 1e3
     x_ecg, t = ecg_from_beats(truth, fs, truth[-1] + 1.0, rng)

@@ -188,7 +188,7 @@ BREATHING_KERNELS = ("resample_chunk", "modulation_frames", "shape_modulation_sp
                      "track_ridges", "modulation_quality", "fuse_rates", "calibrate_breathing",
                      "scan_beats", "aligned_offset", "beat_candidates", "numpy_sum",
                      "sorted_copy", "upper_quartile", "small_median", "vertex_offset",
-                     "remember")
+                     "remember", "beat_front_end")
 
 
 def test_each_kernel_equals_its_plain_python_path(monkeypatch):

@@ -166,9 +166,8 @@ def track(x: np.ndarray, t: np.ndarray, fs: float, kind: str, profile,
         lo, hi, _, order = RAW_ECG_CHAINS[chain]
         path = monitor.paths[("hr", "x")]
         top = min(hi, 0.4 * path.geometry.fs_analysis)  # anti-alias edge, as the engine's
-        path.pre.chain = FilterChain(signal.butter(order, [lo, top], btype="bandpass", fs=fs,
-                                                   output="sos"), False, None)
-        path.pre.reset()
+        monitor.use_chain("x", FilterChain(signal.butter(order, [lo, top], btype="bandpass",
+                                                         fs=fs, output="sos"), False, None))
     step = int(round(CHUNK_S * fs))
     rows = [e for start in range(0, len(x), step)
             for e in monitor.update(x[start:start + step, None], t[start:start + step])

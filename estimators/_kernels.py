@@ -414,6 +414,25 @@ def preprocess_chunk(x, t, sos_pre, zi_pre, envelope, sos_post, zi_post, scalars
 
 
 @kernel
+def preprocess_channels(x, t, sos_pre, zi_pre, envelope, sos_post, zi_post, scalars, limiter,
+                        block, rank, margin, max_abs, decimation, min_run, out):
+    """:func:`preprocess_chunk` for ``C`` channels sharing one chain, in one call.
+
+    ``x`` (C, n) raw samples, ``t`` (n,) their timestamps; ``zi_pre`` (C, S, 2),
+    ``zi_post`` (C, S', 2), ``scalars`` (C, 7) and ``limiter`` (C, L) each channel's
+    carried state (updated in place); ``out`` (C, 4, J) receives each channel's values,
+    timestamps, running rejected and stuck counts. Every channel has seen as many
+    samples, so each writes the same number of analysis samples, which is returned."""
+    n_out = 0
+    for c in range(x.shape[0]):
+        n_out = preprocess_chunk(x[c], t, sos_pre, zi_pre[c], envelope, sos_post, zi_post[c],
+                                 scalars[c], limiter[c], block, rank, margin, max_abs,
+                                 decimation, min_run, out[c, 0], out[c, 1], out[c, 2],
+                                 out[c, 3])
+    return n_out
+
+
+@kernel
 def harmonic_score(power, centre, offset, halfwidth, chance_factor, span):
     """How much of the band's ``power`` (F,) sits on the harmonic family of a rate.
 
@@ -554,6 +573,19 @@ def track_block(spectra, readout, weights, alpha, transition, mix, power, floor,
         else:
             out_concentration[p] = harmonic_score(pw, position, offset, halfwidth,
                                                   chance_factor, span)
+
+
+@kernel
+def track_channels(spectra, readout, weights, alpha, transition, mix, power, floor, halfwidth,
+                   offset, chance_factor, span, check_rhythm, out_position, out_confidence,
+                   out_concentration):
+    """:func:`track_block` for ``C`` channels on one grid, in one call: ``spectra`` and
+    ``readout`` (C, P, F), ``weights`` (C, P), ``alpha`` (C, F) each channel's posterior
+    (updated in place), the outputs (C, P)."""
+    for c in range(spectra.shape[0]):
+        track_block(spectra[c], readout[c], weights[c], alpha[c], transition, mix, power,
+                    floor, halfwidth, offset, chance_factor, span, check_rhythm,
+                    out_position[c], out_confidence[c], out_concentration[c])
 
 
 @kernel

@@ -34,6 +34,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from estimators import _kernels
+from estimators.stft import fft_rows
 
 
 @dataclass(frozen=True)
@@ -105,7 +106,7 @@ def deshape(magnitude: np.ndarray, grid: DeshapeGrid, gamma: float) -> np.ndarra
     """
     magnitude = np.atleast_2d(magnitude)
     soft = magnitude ** gamma
-    cepstrum = np.fft.irfft(soft, grid.n_fft, axis=1)
+    cepstrum = fft_rows(np.fft.irfft, soft, grid.n_fft)
     lo = cepstrum[:, grid.q_low]
     hi = cepstrum[:, grid.q_low + 1]
     u = (1.0 - grid.q_weight) * lo + grid.q_weight * hi

@@ -46,10 +46,12 @@ from estimators import tracker as tracker_mod
 from estimators.config import PROFILES, SIGNAL_KINDS, Profile, RateSettings, get_profile
 from estimators.errors import ParameterError
 from estimators.estimate import Estimate
-from estimators.preprocess import Analysis, Limiter, Preprocessor, STUCK_RUN_S
+from estimators.preprocess import (FilterChain, FrontEnd, Limiter, STUCK_RUN_S,
+                                   chain_group_delay_s, design_chain)
 from estimators.respiration import MIN_FS_HZ, PulseBreathing
-from estimators.stft import (Columns, HopGatherer, SlidingSTFT, batch_hop_count,
-                             gather_hops, stft_blocks)
+from estimators.stage import Chain, Parallel
+from estimators.stft import (Columns, HopGatherer, SpectrumStage, batch_hop_count,
+                             gather_hops)
 
 FUSED = "fused"
 
@@ -170,20 +172,29 @@ class HopBlock:
         return len(self.time_s)
 
 
+def _by_rows(fn, array: np.ndarray, *args) -> np.ndarray:
+    """``fn`` (which maps (P, n) to (P, m)) over an array with any leading axes."""
+    out = fn(array.reshape(-1, array.shape[-1]), *args)
+    return out.reshape(array.shape[:-1] + out.shape[-1:])
+
+
 def column_spectra(columns: Columns, grid: deshape_mod.DeshapeGrid,
                    settings: RateSettings) -> tuple[np.ndarray, np.ndarray]:
     """Band spectra of the columns (de-shape by default, else plain magnitude) and the
-    band of the plain magnitude."""
-    if len(columns) == 0:
-        empty = np.empty((0, len(grid.freqs_hz)))
+    band of the plain magnitude; the columns may carry a channel axis (every channel's
+    columns then go through one call)."""
+    spectra = columns.spectra
+    if spectra.shape[-2] == 0:
+        empty = np.empty(spectra.shape[:-1] + (len(grid.freqs_hz),))
         return empty, empty
     if settings.sharpen:
-        magnitude = deshape_mod.squeeze(columns.spectra, columns.spectra_dw, grid.n_fft)
+        magnitude = _by_rows(lambda v, dw: deshape_mod.squeeze(v, dw, grid.n_fft), spectra,
+                             columns.spectra_dw.reshape(-1, spectra.shape[-1]))
     else:
-        magnitude = np.abs(columns.spectra)
-    band = deshape_mod.plain(magnitude, grid)
+        magnitude = np.abs(spectra)
+    band = _by_rows(deshape_mod.plain, magnitude, grid)
     if settings.deshape:
-        return deshape_mod.deshape(magnitude, grid, settings.gamma), band
+        return _by_rows(deshape_mod.deshape, magnitude, grid, settings.gamma), band
     return band, band
 
 
@@ -194,51 +205,181 @@ def recent_spectra(columns: Columns, grid: deshape_mod.DeshapeGrid,
     and its peak only has to tell one rate from another several bpm away."""
     if columns.recent is None:
         return None
+    if columns.recent.shape[-2] == 0:
+        return np.empty(columns.recent.shape[:-1] + (len(grid.freqs_hz),))
     magnitude = np.abs(columns.recent)
-    if settings.deshape and len(columns):
-        return deshape_mod.deshape(magnitude, grid, settings.gamma)
-    return deshape_mod.plain(magnitude, grid) if len(columns) else \
-        np.empty((0, len(grid.freqs_hz)))
+    if settings.deshape:
+        return _by_rows(deshape_mod.deshape, magnitude, grid, settings.gamma)
+    return _by_rows(deshape_mod.plain, magnitude, grid)
 
 
 def window_integrity(columns: Columns, decimation: int) -> np.ndarray:
-    """Integrity per column from the running counts of rejected (non-finite or out of
-    range) and stuck raw samples carried beside the frames (``aux`` rows 0 and 1)."""
-    if len(columns) == 0:
-        return np.empty(0)
+    """Integrity per column (and channel) from the running counts of rejected
+    (non-finite or out of range) and stuck raw samples carried beside the frames
+    (``aux`` rows 0 and 1)."""
     raw = (columns.last_count - columns.first_count) * decimation
     flagged = columns.aux_last - columns.aux_before
+    if len(columns) == 0:
+        return np.empty(flagged.shape[1:])
     return quality_mod.integrity(flagged[0] / raw, flagged[1] / raw)
 
 
-class ChannelPath:
-    """One channel, one quantity: pre-process, sliding STFT, band spectra."""
+@dataclass(frozen=True)
+class ChannelBlocks:
+    """The per-hop output of C channels of one geometry: :class:`HopBlock`'s fields
+    with a leading channel axis (``spectra`` (C, P, F), ``integrity`` (C, P), ...),
+    and the hop facts ``time_s``, ``emitted_s`` (P,) they share. ``channel(c)`` is
+    channel ``c``'s :class:`HopBlock` (views)."""
 
-    def __init__(self, name: str, kind: str, settings: RateSettings, fs: float,
-                 chain_kind: str | None = None):
-        self.name, self.kind, self.settings = name, kind, settings
+    spectra: np.ndarray
+    time_s: np.ndarray
+    emitted_s: np.ndarray
+    integrity: np.ndarray
+    magnitude: np.ndarray
+    columns: np.ndarray | None = None
+    recent: np.ndarray | None = None
+
+    def __len__(self) -> int:
+        return len(self.time_s)
+
+    def channel(self, c: int) -> HopBlock:
+        return HopBlock(self.spectra[c], self.time_s, self.emitted_s, self.integrity[c],
+                        self.magnitude[c],
+                        None if self.columns is None else self.columns[c],
+                        recent=None if self.recent is None else self.recent[c])
+
+    def hops(self, index) -> "ChannelBlocks":
+        """The hops ``index`` (a slice or index array) of every channel."""
+        pick = (lambda a: None if a is None else a[:, index])
+        return ChannelBlocks(pick(self.spectra), self.time_s[index], self.emitted_s[index],
+                             pick(self.integrity), pick(self.magnitude), pick(self.columns),
+                             pick(self.recent))
+
+    @staticmethod
+    def concat(parts) -> "ChannelBlocks":
+        def join(name, axis):
+            arrays = [getattr(p, name) for p in parts]
+            return None if arrays[0] is None else np.concatenate(arrays, axis=axis)
+        return ChannelBlocks(join("spectra", 1), join("time_s", 0), join("emitted_s", 0),
+                             join("integrity", 1), join("magnitude", 1), join("columns", 1),
+                             join("recent", 1))
+
+
+@dataclass(frozen=True, eq=False)
+class BandSpectra:
+    """Stage (:mod:`estimators.stage`): STFT columns of C channels -> their band spectra
+    (:class:`ChannelBlocks`): de-shape (or the plain magnitude, optionally
+    synchrosqueezed first), the band of the plain magnitude the rate is read from, the
+    end-weighted columns' spectra and each window's integrity. Every channel's columns
+    go through one call of each transform. No state (``None``): each hop is its own."""
+
+    grid: deshape_mod.DeshapeGrid
+    settings: RateSettings
+    decimation: int
+    keep_columns: bool = False
+    """Keep the complex columns (the motion stage needs them)."""
+
+    def initial_state(self):
+        return None
+
+    def step(self, state, columns: Columns):
+        return None, self.batch(columns)
+
+    def batch(self, columns: Columns) -> ChannelBlocks:
+        spectra, magnitude = column_spectra(columns, self.grid, self.settings)
+        return ChannelBlocks(spectra, columns.time_s, columns.emitted_s,
+                             window_integrity(columns, self.decimation), magnitude,
+                             columns.spectra if self.keep_columns else None,
+                             recent_spectra(columns, self.grid, self.settings))
+
+    def split(self, columns: Columns, bounds) -> list:
+        edges = [0, *[int(b) for b in bounds], len(columns)]
+        return [columns.hops(slice(lo, hi)) for lo, hi in zip(edges[:-1], edges[1:])]
+
+    def join(self, parts) -> ChannelBlocks:
+        return ChannelBlocks.concat(parts)
+
+
+def front_end(kind: str, settings: RateSettings, fs: float, geometry: "PathGeometry",
+              n_channels: int = 1, chain: FilterChain | None = None) -> FrontEnd:
+    """The front-end stage of ``n_channels`` channels of ``kind`` for ``settings``: the
+    kind's filter chain (or ``chain``), the path's decimation, stuck-run length and a
+    limiter learning over one analysis window."""
+    if chain is None:
+        chain = design_chain(kind, settings.quantity, fs, geometry.fs_analysis)
+    return FrontEnd(chain, geometry.decimation, max(3, int(round(settings.stuck_run_s * fs))),
+                    Limiter.for_window(settings.window_s, fs), n_channels)
+
+
+class ChannelGroup:
+    """Channels of one kind and quantity advancing together: the :class:`Chain` of
+    front end (:class:`~estimators.preprocess.FrontEnd`), sliding STFT
+    (:class:`~estimators.stft.SpectrumStage`) and band spectra (:class:`BandSpectra`),
+    each stage handling every channel at once (one compiled pass, one FFT call per
+    frame length, one call per transform). This class only owns the chain's state.
+
+    ``update(samples (n, C), t) -> ChannelBlocks``; ``batch`` the whole record (causal
+    or zero-phase), ``batch_blocks`` the same in blocks of hops.
+    """
+
+    def __init__(self, names, kind: str, settings: RateSettings, fs: float,
+                 chain_kind: str | None = None, keep_columns: bool = False,
+                 chain: FilterChain | None = None):
+        self.names, self.kind, self.settings, self.fs = list(names), kind, settings, fs
         self.geometry = g = PathGeometry.of(settings, fs)
-        self.pre = Preprocessor(chain_kind or kind, settings.quantity, fs, g.decimation,
-                                Limiter.for_window(settings.window_s, fs))
-        self.pre.min_run = max(3, int(round(settings.stuck_run_s * fs)))
-        self.stft = SlidingSTFT(g.window, g.min_window, g.hop, g.n_fft, settings.sharpen,
-                                g.recent)
         self.grid = deshape_mod.make_grid(g.fs_analysis, g.n_fft, settings.analysis_band_hz)
-        self.keep_columns = False  # set by the monitor when the motion stage needs them
+        self.front = front_end(chain_kind or kind, settings, fs, g, len(self.names), chain)
+        self.spectrum = SpectrumStage(g.window, g.min_window, g.hop, g.n_fft,
+                                      settings.sharpen, g.recent)
+        self.transform = BandSpectra(self.grid, settings, g.decimation, keep_columns)
+        self.chain = Chain((self.front, self.spectrum, self.transform))
+        self.reset()
 
     def reset(self) -> None:
-        self.pre.reset()
-        self.stft.reset()
+        self.state = self.chain.initial_state()
+
+    def update(self, samples: np.ndarray, t: np.ndarray) -> ChannelBlocks:
+        self.state, blocks = self.chain.step(self.state, (samples, t))
+        return blocks
+
+    def batch_blocks(self, samples: np.ndarray, t: np.ndarray, zero_phase: bool,
+                     block_hops: int | None = None):
+        """The hops of the whole record in consecutive blocks of at most ``block_hops``
+        (default :data:`estimators.stft.BATCH_BLOCK_HOPS`): ``(n_hops, generator of
+        ChannelBlocks)``. The front end runs over the whole record first (zero-phase
+        filters need every sample); each block's complex columns are freed once its
+        spectra are made (kept only with ``keep_columns``, for the motion stage)."""
+        analysis = (self.front.offline if zero_phase else self.front.batch)((samples, t))
+        g = self.geometry
+        n_hops = batch_hop_count(analysis.values.shape[1], g.min_window, g.hop)
+        return n_hops, (self.transform.batch(c)
+                        for c in self.spectrum.blocks(analysis, block_hops))
+
+    def group_delay_s(self, freqs_hz: np.ndarray) -> np.ndarray:
+        """The causal chain's group delay at ``freqs_hz`` (:func:`chain_group_delay_s`)."""
+        return chain_group_delay_s(self.front.chain, self.fs, freqs_hz)
+
+
+class ChannelPath:
+    """One channel, one quantity: a :class:`ChannelGroup` of one channel whose outputs
+    are :class:`HopBlock` (pre-process, sliding STFT, band spectra)."""
+
+    def __init__(self, name: str, kind: str, settings: RateSettings, fs: float,
+                 chain_kind: str | None = None, keep_columns: bool = False,
+                 chain: FilterChain | None = None):
+        self.name, self.kind, self.settings = name, kind, settings
+        self.group = ChannelGroup([name], kind, settings, fs, chain_kind, keep_columns, chain)
+        self.geometry, self.grid = self.group.geometry, self.group.grid
+
+    @property
+    def keep_columns(self) -> bool:
+        return self.group.transform.keep_columns
+
+    def reset(self) -> None:
+        self.group.reset()
 
     def update(self, x: np.ndarray, t: np.ndarray) -> HopBlock:
-        analysis = self.pre.update(x, t)
-        columns = self.stft.update(analysis.values, analysis.timestamps,
-                                   (analysis.cum_rejected, analysis.cum_stuck))
-        integrity = window_integrity(columns, self.geometry.decimation)
-        spectra, magnitude = column_spectra(columns, self.grid, self.settings)
-        return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
-                        columns.spectra if self.keep_columns else None,
-                        recent=recent_spectra(columns, self.grid, self.settings))
+        return self.group.update(np.asarray(x)[:, None], t).channel(0)
 
     def batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool) -> HopBlock:
         """The whole record in one call (causal twin, or zero-phase for offline).
@@ -246,34 +387,22 @@ class ChannelPath:
         The columns are formed block by block (:meth:`batch_blocks`) and only what is
         made of them is kept, so a long record never holds every complex column."""
         n_hops, blocks = self.batch_blocks(x, t, zero_phase)
-        return gather_hops(n_hops, blocks, self._block(Columns(
-            np.empty((0, self.geometry.n_fft // 2 + 1), complex), None, np.empty(0),
-            np.empty(0), np.empty(0, np.int64), np.empty(0, np.int64), np.empty((2, 0)),
-            np.empty((2, 0)), np.empty((0, self.geometry.n_fft // 2 + 1), complex)
-            if self.geometry.recent else None)))
+        n_bins, none = len(self.grid.freqs_hz), np.empty(0)
+        empty = HopBlock(np.empty((0, n_bins)), none, none, none, np.empty((0, n_bins)),
+                         np.empty((0, self.geometry.n_fft // 2 + 1), complex)
+                         if self.keep_columns else None,
+                         recent=np.empty((0, n_bins)) if self.geometry.recent else None)
+        return gather_hops(n_hops, blocks, empty)
 
     def batch_blocks(self, x: np.ndarray, t: np.ndarray, zero_phase: bool,
                      block_hops: int | None = None):
-        """The hops of :meth:`batch` in consecutive blocks of at most ``block_hops``
-        (default :data:`estimators.stft.BATCH_BLOCK_HOPS`): ``(n_hops, generator of
-        HopBlock)``. Pre-processing runs over the whole record first (its filters see
-        every sample, as in :meth:`batch`); each block's complex columns are freed once
-        its spectra are made (kept only with ``keep_columns``, for the motion stage)."""
-        g = self.geometry
-        analysis: Analysis = self.pre.batch(x, t, zero_phase)
-        n_hops = batch_hop_count(len(analysis.values), g.min_window, g.hop)
-        columns = stft_blocks(analysis.values, analysis.timestamps, g.window, g.min_window,
-                              g.hop, g.n_fft, self.settings.sharpen,
-                              (analysis.cum_rejected, analysis.cum_stuck), block_hops,
-                              g.recent)
-        return n_hops, (self._block(c) for c in columns)
+        """:meth:`ChannelGroup.batch_blocks` of the one channel, as :class:`HopBlock`."""
+        n_hops, blocks = self.group.batch_blocks(np.asarray(x)[:, None], t, zero_phase,
+                                                 block_hops)
+        return n_hops, (b.channel(0) for b in blocks)
 
-    def _block(self, columns: Columns) -> HopBlock:
-        integrity = window_integrity(columns, self.geometry.decimation)
-        spectra, magnitude = column_spectra(columns, self.grid, self.settings)
-        return HopBlock(spectra, columns.time_s, columns.emitted_s, integrity, magnitude,
-                        columns.spectra if self.keep_columns else None,
-                        recent=recent_spectra(columns, self.grid, self.settings))
+    def group_delay_s(self, freqs_hz: np.ndarray) -> np.ndarray:
+        return self.group.group_delay_s(freqs_hz)
 
 
 def _peak_normalised(spectra: np.ndarray) -> np.ndarray:
@@ -318,7 +447,8 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
                          smoothing: dict | None = None,
                          channel_rates: np.ndarray | None = None,
                          calibrate: bool = True,
-                         filter_delay_s: np.ndarray | None = None) -> list[Estimate]:
+                         filter_delay_s: np.ndarray | None = None,
+                         calibrated=None) -> list[Estimate]:
     """Estimate records from tracker output aligned with ``block`` (same hops).
 
     ``concentration`` is the harmonic concentration score at each rate; computed here
@@ -336,7 +466,13 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     ``filter_delay_s`` (F,): the causal filters' group delay at each rate of
     ``rates_grid``; an estimate then describes its window centre minus that delay at
     its rate (at the median delay when it has no rate), so ``delay_s`` is honest. None
-    (zero-phase, offline): the window centre."""
+    (zero-phase, offline): the window centre.
+
+    ``calibrated(measures, raw_confidence)``, when given, stands in for
+    :func:`estimators.calibration.calibrated_confidence` and may fill the array it
+    returns later: the function then returns a function that builds the estimates once
+    it has (a group's reports calibrate all their channels in one call,
+    :class:`GroupReport`)."""
     step = rates_grid[1] - rates_grid[0]
     halfwidth = settings.confidence_halfwidth_per_min / step
     posterior_mass = np.asarray(confidence, dtype=np.float64)
@@ -371,7 +507,8 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
             np.ones(len(quality)) if block.reference_integrity is None
             else block.reference_integrity])
         if calibrate:
-            confidence = calibration_mod.calibrated_confidence(measures, confidence)
+            confidence = (calibration_mod.calibrated_confidence(measures, confidence)
+                          if calibrated is None else calibrated(measures, confidence))
         evidence = [tuple(row) for row in measures.tolist()]
     # The grid reaches the confidence half-width beyond the band, so that a rate on the
     # band's edge is a peak; such rates are shown at the edge (off by less than the
@@ -381,7 +518,8 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
     shown = np.where(withheld, np.nan, np.clip(rate, lo, hi))
     time_s = block.time_s
     if filter_delay_s is not None:
-        at = np.where(np.isfinite(rate), rate, np.median(rates_grid))
+        finite = np.isfinite(rate)
+        at = rate if finite.all() else np.where(finite, rate, np.median(rates_grid))
         time_s = time_s - np.interp(at, rates_grid, filter_delay_s)
     recent = np.full(len(shown), np.nan)
     if block.recent is not None and len(shown):
@@ -390,36 +528,367 @@ def estimates_from_track(quantity: str, source: str, block: HopBlock, rate: np.n
         top = np.argmax(block.recent, axis=1)
         inner = (top > 0) & (top < block.recent.shape[1] - 1) & np.isfinite(shown)
         recent = np.where(inner, np.clip(rates_grid[top], lo, hi), np.nan)
-    return [Estimate(quantity, source, t, e, r, c, q, v, recent_rate_per_min=n)
-            for t, e, r, c, q, v, n in zip(
-                time_s.tolist(), emitted_s.tolist(), shown.tolist(),
-                np.asarray(confidence).tolist(), quality.tolist(), evidence, recent.tolist())]
+
+    def build() -> list[Estimate]:
+        return [Estimate(quantity, source, t, e, r, c, q, v, recent_rate_per_min=n)
+                for t, e, r, c, q, v, n in zip(
+                    time_s.tolist(), emitted_s.tolist(), shown.tolist(),
+                    np.asarray(confidence).tolist(), quality.tolist(), evidence,
+                    recent.tolist())]
+
+    return build() if calibrated is None else build
+
+
+@dataclass(frozen=True, eq=False)
+class Report:
+    """Stage (:mod:`estimators.stage`): the tracker output of one reported (quantity,
+    source) -> its :class:`~estimators.estimate.Estimate` records: quality index
+    (:mod:`estimators.quality`), evidence and calibrated confidence, the shown rate
+    (:func:`estimates_from_track`). Input ``(Tracked, channel_rates)`` (the channels'
+    rates (C, P) for a fused output, else None); output a list of estimates; state the
+    causal averages carried between hops (concentration score, jumpiness)."""
+
+    quantity: str
+    source: str
+    rates: np.ndarray
+    settings: RateSettings
+    calibrate: bool = True
+    filter_delay_s: np.ndarray | None = None
+
+    def initial_state(self) -> dict:
+        return {}
+
+    def step(self, state: dict, x, calibrated=None) -> tuple[dict, list[Estimate]]:
+        """One step; with ``calibrated`` (see :func:`estimates_from_track`) the output is
+        a function that builds the estimates once ``calibrated`` has answered."""
+        tracked, channel_rates = x
+        state = {"last": state.get("last"), "jumps": dict(state.get("jumps", {}))}
+        if len(tracked.rate) == 0:
+            return state, (list if calibrated is not None else [])
+        out = estimates_from_track(self.quantity, self.source, tracked.block, tracked.rate,
+                                   tracked.confidence, self.rates, self.settings,
+                                   tracked.emitted_s, tracked.concentration, state,
+                                   channel_rates, self.calibrate, self.filter_delay_s,
+                                   calibrated)
+        if calibrated is not None:
+            return state, lambda: self._breathing(out())
+        return state, self._breathing(out)
+
+    def _breathing(self, out: list[Estimate]) -> list[Estimate]:
+        """A respiration channel's confidence: P(within 2 breaths/min)."""
+        if self.quantity == "rr":  # a respiration channel: P(within 2 breaths/min)
+            conf = breathing_confidence.calibrated("resp", [e.confidence for e in out],
+                                                   [e.quality for e in out])
+            out = [dataclasses.replace(e, confidence=c) if e.has_rate else e
+                   for e, c in zip(out, conf.tolist())]
+        return out
+
+    def batch(self, x) -> list[Estimate]:
+        return self.step(self.initial_state(), x)[1]
+
+    def split(self, x, bounds) -> list:
+        tracked, channel_rates = x
+        edges = [0, *[int(b) for b in bounds], len(tracked.rate)]
+        return [(tracked.hops(slice(lo, hi)),
+                 None if channel_rates is None else channel_rates[:, lo:hi])
+                for lo, hi in zip(edges[:-1], edges[1:])]
+
+    def join(self, parts) -> list[Estimate]:
+        return [e for part in parts for e in part]
+
+
+class _Deferred:
+    """Collects the calibration calls of several reports, answers them after one call
+    of :func:`estimators.calibration.calibrated_confidence` on all their rows."""
+
+    def __init__(self):
+        self.requests: list = []
+
+    def __call__(self, measures: np.ndarray, raw: np.ndarray) -> np.ndarray:
+        out = np.full(len(measures), np.nan)
+        self.requests.append((measures, np.asarray(raw, dtype=np.float64), out))
+        return out
+
+    def resolve(self) -> None:
+        if not self.requests:
+            return
+        calibrated = calibration_mod.calibrated_confidence(
+            np.concatenate([m for m, _, _ in self.requests]),
+            np.concatenate([r for _, r, _ in self.requests]))
+        a = 0
+        for measures, _, out in self.requests:
+            out[:] = calibrated[a:a + len(measures)]
+            a += len(measures)
+
+
+@dataclass(frozen=True)
+class GroupReport(Parallel):
+    """Stage: the :class:`Report` of each channel of a group side by side (as
+    :class:`~estimators.stage.Parallel`), their heart-rate confidences calibrated in one
+    call for all channels (the map works row by row, so the values are those of a call
+    per channel)."""
+
+    def step(self, state: tuple, x: tuple) -> tuple[tuple, tuple]:
+        if len(self.stages) == 1:  # one channel: nothing to gather
+            s, estimates = self.stages[0].step(state[0], x[0])
+            return (s,), (estimates,)
+        deferred = _Deferred()
+        states, outputs = [], []
+        for report, s, item in zip(self.stages, state, x):
+            s, estimates = report.step(s, item, deferred)
+            states.append(s)
+            outputs.append(estimates)
+        deferred.resolve()
+        return tuple(states), tuple(build() for build in outputs)
+
+    def batch(self, x: tuple) -> tuple:
+        return self.step(self.initial_state(), x)[1]
+
+
+def tracker_stage(settings: RateSettings, grid_rates: np.ndarray,
+                  n_channels: int = 1) -> tracker_mod.RidgeTrack:
+    """The tracker stage of ``n_channels`` outputs of ``settings`` on ``grid_rates``."""
+    step = grid_rates[1] - grid_rates[0]
+    params = tracker_mod.make_params(step, settings.hop_s, settings.max_change_per_min_per_s,
+                                     settings.jump_probability,
+                                     settings.confidence_halfwidth_per_min, settings.lag_hops)
+    return tracker_mod.RidgeTrack(grid_rates, params, settings.emission_power, True,
+                                  quality_mod.CHANCE_FACTOR, quality_mod.CONCENTRATION_SPAN,
+                                  n_channels)
+
+
+@dataclass(frozen=True, eq=False)
+class GroupTracking:
+    """Stage (:mod:`estimators.stage`): the band spectra of C channels
+    (:class:`ChannelBlocks`) -> each channel's tracker output, all channels through one
+    :class:`~estimators.tracker.RidgeTrack` call. The output is a tuple with one
+    ``(Tracked, None)`` per channel: the input of that channel's :class:`Report`."""
+
+    tracker: tracker_mod.RidgeTrack
+
+    def initial_state(self) -> tracker_mod.TrackState:
+        return self.tracker.initial_state()
+
+    def _outputs(self, blocks: ChannelBlocks, out: tracker_mod.TrackOutput) -> tuple:
+        return tuple((Tracked(blocks.channel(c), out.rate[c], out.confidence[c],
+                              out.concentration[c], blocks.emitted_s), None)
+                     for c in range(len(out.rate)))
+
+    @staticmethod
+    def _input(blocks: ChannelBlocks) -> tracker_mod.TrackInput:
+        return tracker_mod.TrackInput(blocks.spectra, blocks.integrity, blocks.magnitude)
+
+    def step(self, state, blocks: ChannelBlocks):
+        state, out = self.tracker.step(state, self._input(blocks))
+        return state, self._outputs(blocks, out)
+
+    def batch(self, blocks: ChannelBlocks) -> tuple:
+        return self._outputs(blocks, self.tracker.batch(self._input(blocks)))
+
+    def split(self, blocks: ChannelBlocks, bounds) -> list:
+        edges = [0, *[int(b) for b in bounds], len(blocks)]
+        return [blocks.hops(slice(lo, hi)) for lo, hi in zip(edges[:-1], edges[1:])]
+
+    def join(self, parts) -> tuple:
+        return tuple((Tracked.concat([p[c][0] for p in parts]), None)
+                     for c in range(len(parts[0])))
+
+
+@dataclass
+class MotionTrackingState:
+    """What :class:`MotionTracking` carries: each motion stage's state, each heart-rate
+    output's tracker state and (with fixed-lag smoothing) the hops it holds back,
+    whether the references are missing, and how many hops the motion stage still
+    trusts no track."""
+
+    motion: tuple
+    trackers: tuple
+    held: tuple
+    references_missing: bool = False
+    untrusted_hops: int = 0
+
+
+@dataclass(frozen=True)
+class ExerciseHops:
+    """Input of :class:`MotionTracking`: the heart-rate channels' blocks by output key
+    and the accelerometer axes' blocks by name, all on the same hops."""
+
+    blocks: dict
+    references: dict
+
+    def __len__(self) -> int:
+        return len(next(iter(self.blocks.values())))
+
+    def __iter__(self):
+        return iter((self.blocks, self.references))
+
+
+@dataclass(frozen=True, eq=False)
+class MotionTracking:
+    """Stage (:mod:`estimators.stage`): the exercise path's heart-rate tracking, hop by
+    hop. The motion stage (:class:`~estimators.motion.MotionStage`) of every PPG
+    channel at hop ``p`` trusts its canceller where the guiding tracker (the fused
+    output when there is one, else the channel's own) expects the pulse after hop
+    ``p - 1`` (:func:`estimators.motion.expected_pulse`); then every heart-rate output
+    (channels, then fused) takes one step of its tracker (a one-channel
+    :class:`~estimators.tracker.RidgeTrack`, or with fixed-lag smoothing a
+    :class:`~estimators.tracker.LagTrack`, whose outputs refer to earlier hops).
+
+    Input :class:`ExerciseHops`: the heart-rate channels' :class:`HopBlock` (with
+    complex columns for the motion stage) by key, and the accelerometer axes' blocks by
+    name, all on the same hops. Output ``(tracked, blocks)`` by output key: the tracker
+    output and the blocks as tracked (motion-suppressed spectra, the fused block);
+    both empty when the input has no hop.
+
+    When the references come back after an absence (their window integrity below
+    :data:`estimators.calibration.REFERENCE_MISSING`), the trackers start afresh and
+    for one window the motion stage trusts no track, as at start-up: the track was made
+    without them and may sit on the cadence. Meanwhile the evidence says the references
+    are missing (the blind family of the confidence map).
+    """
+
+    keys: tuple
+    motion_keys: tuple
+    motion: tuple
+    tracker: tracker_mod.RidgeTrack
+    reference_names: tuple
+    trust: str
+    window_hops: int
+
+    def initial_state(self) -> MotionTrackingState:
+        return MotionTrackingState(tuple(m.initial_state() for m in self.motion),
+                                   (self.tracker.initial_state(),) * len(self.keys),
+                                   ((),) * len(self.keys))
+
+    def _expected(self, state: MotionTrackingState, key) -> np.ndarray | None:
+        guide = state.trackers[self.keys.index(("hr", FUSED) if ("hr", FUSED) in self.keys
+                                               else key)]
+        if self.trust == "everywhere":
+            return np.ones((1, len(self.tracker.rates)))
+        if self.trust == "nowhere" or guide.hops_seen == 0 or state.untrusted_hops > 0:
+            return None
+        return motion_mod.expected_pulse(np.reshape(guide.posterior, -1),
+                                         self.tracker.params.halfwidth_bins)
+
+    def _track(self, tracker_state, held: tuple, block: HopBlock):
+        """One hop of one output's tracker: ``(state, held, Tracked)``."""
+        if isinstance(self.tracker, tracker_mod.RidgeTrack):
+            tracker_state, out = self.tracker.step(tracker_state, tracker_mod.TrackInput(
+                block.spectra[None], block.integrity[None], block.magnitude[None]))
+            return tracker_state, held, Tracked(block, out.rate[0], out.confidence[0],
+                                                out.concentration[0], block.emitted_s)
+        tracker_state, out = self.tracker.step(tracker_state, tracker_mod.TrackInput(
+            block.spectra, block.integrity, block.magnitude))
+        held, tracked = lagged_tracked(held, block, out, tracker_state.hops_seen,
+                                       self.tracker.params.lag_hops)
+        return tracker_state, held, tracked
+
+    def step(self, state: MotionTrackingState, x) -> tuple[MotionTrackingState, tuple]:
+        blocks, references = x
+        refs = [references[name].columns for name in self.reference_names]
+        acc = np.stack(refs, axis=-1) if refs else None
+        n_hops = len(blocks[self.motion_keys[0]])
+        reference = (np.min([references[name].integrity for name in self.reference_names],
+                            axis=0) if self.reference_names else np.zeros(n_hops))
+        motion_states, trackers, held = list(state.motion), list(state.trackers), list(state.held)
+        missing, untrusted = state.references_missing, state.untrusted_hops
+        tracked = {key: [] for key in self.keys}
+        hops = {key: [] for key in self.keys}
+        fresh = self.initial_state()
+        for p in range(n_hops):
+            if self.reference_names and reference[p] < calibration_mod.REFERENCE_MISSING:
+                missing = True
+            elif missing:
+                missing, untrusted = False, self.window_hops
+                trackers = list(fresh.trackers)
+            hop = {key: take_hops(blocks[key], slice(p, p + 1)) for key in self.keys
+                   if key in blocks}
+            for i, key in enumerate(self.motion_keys):
+                guide = MotionTrackingState((), tuple(trackers), (), missing, untrusted)
+                motion_states[i], (spectra, lines) = self.motion[i].step(
+                    motion_states[i], (hop[key].columns, None if acc is None else
+                                       acc[p:p + 1], self._expected(guide, key)))
+                # While the stage warms up again its output is not what the motion
+                # calibration was fitted on: the evidence says the references are
+                # missing (the blind family) until a window has passed.
+                hop[key] = dataclasses.replace(
+                    hop[key], spectra=spectra, magnitude=spectra, columns=None,
+                    motion_lines=lines, reference_integrity=(
+                        np.zeros(1) if untrusted > 0 else reference[p:p + 1]))
+            if ("hr", FUSED) in self.keys:
+                hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in self.keys
+                                                  if key[1] != FUSED])
+            for k, key in enumerate(self.keys):
+                trackers[k], held[k], new = self._track(trackers[k], held[k], hop[key])
+                tracked[key].append(new)
+                hops[key].append(hop[key])
+            untrusted = max(0, untrusted - 1)
+        state = MotionTrackingState(tuple(motion_states), tuple(trackers), tuple(held),
+                                    missing, untrusted)
+        if n_hops == 0:
+            return state, ({}, {})
+        return state, ({key: Tracked.concat(parts) for key, parts in tracked.items()},
+                       {key: concat_blocks(parts) for key, parts in hops.items()})
+
+    def batch(self, x) -> tuple:
+        return self.step(self.initial_state(), x)[1]
+
+    def split(self, x, bounds) -> list:
+        blocks, references = x
+        n = len(blocks[self.motion_keys[0]])
+        edges = [0, *[int(b) for b in bounds], n]
+        return [ExerciseHops({k: take_hops(b, slice(lo, hi)) for k, b in blocks.items()},
+                             {k: take_hops(b, slice(lo, hi)) for k, b in references.items()})
+                for lo, hi in zip(edges[:-1], edges[1:])]
+
+    def join(self, parts) -> tuple:
+        parts = [p for p in parts if p[0]]
+        if not parts:
+            return {}, {}
+        return ({key: Tracked.concat([p[0][key] for p in parts]) for key in parts[0][0]},
+                {key: concat_blocks([p[1][key] for p in parts]) for key in parts[0][1]})
+
+
+def lagged_tracked(held: tuple, block: HopBlock, out, hops_seen: int, lag: int
+                   ) -> tuple[tuple, "Tracked"]:
+    """The hops a lagged tracker output (:class:`~estimators.tracker.LagOutput`) refers
+    to, from the blocks held back (``held``) and the newest ``block``: ``(held,
+    Tracked)``, the new held blocks being the newest ``lag + 1`` hops."""
+    joined = concat_blocks([*held, block])
+    pos = out.index - (hops_seen - len(joined))
+    referred = take_hops(joined, pos)
+    newest = joined.emitted_s[pos + lag]
+    keep = take_hops(joined, np.arange(max(0, len(joined) - lag - 1), len(joined)))
+    return (keep,), Tracked(referred, out.rate, out.confidence, None, newest)
 
 
 class _Output:
-    """One reported (quantity, source): a tracker plus the lag history of hops."""
+    """One reported (quantity, source): its own tracker (the fused output, the motion
+    stage's hop-by-hop tracking and fixed-lag smoothing use it; channels of a group
+    without those are tracked by their group's stage) plus the lag history of hops and
+    the :class:`Report` stage's state."""
 
     def __init__(self, quantity: str, source: str, grid_rates: np.ndarray,
-                 settings: RateSettings, filter_delay_s: np.ndarray | None = None):
+                 settings: RateSettings, filter_delay_s: np.ndarray | None = None,
+                 calibrate: bool = True):
         self.quantity, self.source, self.settings = quantity, source, settings
         self.rates = grid_rates
         self.filter_delay_s = filter_delay_s  # causal group delay per grid rate (F,)
-        step = grid_rates[1] - grid_rates[0]
-        params = tracker_mod.make_params(step, settings.hop_s, settings.max_change_per_min_per_s,
-                                         settings.jump_probability,
-                                         settings.confidence_halfwidth_per_min,
-                                         settings.lag_hops)
-        self.calibrate = True  # set by the monitor: heart rate from PPG channels only
-        self.tracker = tracker_mod.RidgeTracker(grid_rates, params, settings.emission_power,
-                                                True, quality_mod.CHANCE_FACTOR,
-                                                quality_mod.CONCENTRATION_SPAN)
-        self._held: list[HopBlock] = []
-        self._smoothing: dict = {}
+        stage = tracker_stage(settings, grid_rates)
+        self.tracker = tracker_mod.RidgeTracker(grid_rates, stage.params, stage.power, True,
+                                                stage.chance_factor, stage.span)
+        self.report = Report(quantity, source, grid_rates, settings, calibrate,
+                             filter_delay_s)
+        self.reset()
+
+    @property
+    def calibrate(self) -> bool:
+        return self.report.calibrate
 
     def reset(self) -> None:
         self.tracker.reset()
-        self._held = []
-        self._smoothing = {}
+        self._held = ()
+        self.report_state = self.report.initial_state()
 
     def track(self, block: HopBlock) -> "Tracked":
         """Advance the tracker over the hops of ``block``; the raw output for the hops
@@ -433,37 +902,18 @@ class _Output:
             return Tracked(block, rate, conf, frac, block.emitted_s)
         rate, conf, index = self.tracker.update(block.spectra, block.integrity, block.magnitude)
         # Hops the smoothed outputs refer to: held from earlier updates plus this block.
-        self._held.append(block)
-        held = concat_blocks(self._held)
-        first_index = self.tracker.hops_seen - len(held)
-        pos = index - first_index
-        referred = take_hops(held, pos)
-        newest = held.emitted_s[pos + lag]
-        self._held = [take_hops(held, np.arange(max(0, len(held) - lag - 1), len(held)))]
-        return Tracked(referred, rate, conf, None, newest)
+        self._held, tracked = lagged_tracked(
+            self._held, block, tracker_mod.LagOutput(rate, conf, index),
+            self.tracker.hops_seen, lag)
+        return tracked
 
     def estimates(self, tracked: "Tracked", channel_rates: np.ndarray | None = None
                   ) -> list[Estimate]:
-        """Estimate records of tracker output; ``channel_rates`` (C, P): for a fused
-        output, the channels' rates of the same hops."""
-        if len(tracked.rate) == 0:
-            return []
-        out = estimates_from_track(self.quantity, self.source, tracked.block, tracked.rate,
-                                   tracked.confidence, self.rates, self.settings,
-                                   tracked.emitted_s, tracked.concentration,
-                                   self._smoothing, channel_rates, self.calibrate,
-                                   self.filter_delay_s)
-        if self.quantity == "rr":  # a respiration channel: P(within 2 breaths/min)
-            conf = breathing_confidence.calibrated("resp", [e.confidence for e in out],
-                                                   [e.quality for e in out])
-            out = [dataclasses.replace(e, confidence=c) if e.has_rate else e
-                   for e, c in zip(out, conf.tolist())]
+        """Estimate records of tracker output (the :class:`Report` stage);
+        ``channel_rates`` (C, P): for a fused output, the channels' rates of the same
+        hops."""
+        self.report_state, out = self.report.step(self.report_state, (tracked, channel_rates))
         return out
-
-    def update(self, block: HopBlock, channel_rates: np.ndarray | None = None
-               ) -> list[Estimate]:
-        """Estimates of the hops in ``block`` (see :meth:`track`, :meth:`estimates`)."""
-        return self.estimates(self.track(block), channel_rates)
 
 
 @dataclass(frozen=True)
@@ -477,6 +927,15 @@ class Tracked:
     confidence: np.ndarray
     concentration: np.ndarray | None
     emitted_s: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.rate)
+
+    def hops(self, index) -> "Tracked":
+        return Tracked(take_hops(self.block, index), self.rate[index],
+                       self.confidence[index],
+                       None if self.concentration is None else self.concentration[index],
+                       self.emitted_s[index])
 
     @staticmethod
     def concat(parts: Sequence["Tracked"]) -> "Tracked":
@@ -570,49 +1029,92 @@ class RateMonitor:
         self.channels = _normalise_channels(channels)
         self.fs = float(fs)
         hr, rr = self.profile.hr, self.profile.rr
+        motion_on = bool(hr.motion) and any(kind == "ppg" for _, kind in self.channels)
+        self._index = {name: i for i, (name, _) in enumerate(self.channels)}
+        # Channels of one kind and quantity advance together (ChannelGroup: one
+        # front-end pass, one FFT call, one call per transform for all of them).
+        members: dict[tuple[str, str], list[str]] = {}
+        for name, kind in self.channels:
+            quantity = "hr" if kind in ("ppg", "ecg") else "rr" if kind == "resp" else "acc"
+            members.setdefault((quantity, kind), []).append(name)
+        self.groups: dict[tuple[str, str], ChannelGroup] = {}
+        for (quantity, kind), names in members.items():
+            self.groups[(quantity, kind)] = ChannelGroup(
+                names, kind, rr if quantity == "rr" else hr, fs,
+                chain_kind="acc" if quantity == "acc" else None,
+                keep_columns=motion_on and kind in ("ppg", "acc"))
+        self._columns = {gid: [self._index[n] for n in group.names]
+                         for gid, group in self.groups.items()}
+        # One-channel views of the same paths: grids, geometry, and the offline twin,
+        # which runs each channel over its whole record.
         self.paths: dict[tuple[str, str], ChannelPath] = {}
         self.motion_paths: dict[str, ChannelPath] = {}
         for name, kind in self.channels:
+            keep = motion_on and kind in ("ppg", "acc")
             if kind in ("ppg", "ecg"):
-                self.paths[("hr", name)] = ChannelPath(name, kind, hr, fs)
+                self.paths[("hr", name)] = ChannelPath(name, kind, hr, fs, keep_columns=keep)
             elif kind == "resp":
                 self.paths[("rr", name)] = ChannelPath(name, kind, rr, fs)
             else:
-                self.motion_paths[name] = ChannelPath(name, kind, hr, fs, chain_kind="acc")
+                self.motion_paths[name] = ChannelPath(name, kind, hr, fs, chain_kind="acc",
+                                                      keep_columns=keep)
         self.outputs: dict[tuple[str, str], _Output] = {}
-        delays = {key: path.pre.group_delay_s(path.grid.rates_per_min / 60.0)
+        delays = {key: path.group_delay_s(path.grid.rates_per_min / 60.0)
                   for key, path in self.paths.items()}
-        for (quantity, name), path in self.paths.items():
-            self.outputs[(quantity, name)] = _Output(quantity, name, path.grid.rates_per_min,
-                                                     path.settings, delays[(quantity, name)])
         hr_paths = [k for k in self.paths if k[0] == "hr"]
-        if len(hr_paths) >= 2:
-            grid = self.paths[hr_paths[0]].grid.rates_per_min
-            self.outputs[("hr", FUSED)] = _Output("hr", FUSED, grid, hr, np.mean(
-                [delays[k] for k in hr_paths], axis=0))
         # The confidence map is fitted on PPG heart rate; ECG (and a fusion with ECG)
         # keeps the tracker's raw confidence until a map is fitted for it.
-        for (quantity, name), out in self.outputs.items():
-            kinds = ({self.paths[k].kind for k in hr_paths} if name == FUSED
-                     else {self.paths[(quantity, name)].kind})
-            out.calibrate = quantity == "hr" and kinds == {"ppg"}
-        self._index = {name: i for i, (name, _) in enumerate(self.channels)}
+        for (quantity, name), path in self.paths.items():
+            self.outputs[(quantity, name)] = _Output(
+                quantity, name, path.grid.rates_per_min, path.settings,
+                delays[(quantity, name)], quantity == "hr" and path.kind == "ppg")
+        if len(hr_paths) >= 2:
+            grid = self.paths[hr_paths[0]].grid.rates_per_min
+            self.outputs[("hr", FUSED)] = _Output(
+                "hr", FUSED, grid, hr, np.mean([delays[k] for k in hr_paths], axis=0),
+                {self.paths[k].kind for k in hr_paths} == {"ppg"})
         self.last_blocks: dict[tuple[str, str], HopBlock] = {}
         self.motion_spectra: dict[str, HopBlock] = {}
         # Motion stage (estimators.motion) for PPG heart-rate paths when the profile asks.
-        self.motion: dict[tuple[str, str], motion_mod.MotionSuppressor] = {}
-        if hr.motion:
+        self.motion: dict[tuple[str, str], motion_mod.MotionStage] = {}
+        self.motion_tracking: MotionTracking | None = None
+        if motion_on:
             for key, path in self.paths.items():
                 if key[0] == "hr" and path.kind == "ppg":
-                    path.keep_columns = True
-                    self.motion[key] = motion_mod.MotionSuppressor(
-                        hr, path.grid.band, path.geometry.n_fft, len(self.motion_paths))
-            for path in self.motion_paths.values():
-                path.keep_columns = bool(self.motion)
+                    self.motion[key] = motion_mod.MotionStage(
+                        motion_mod.motion_params(hr, path.grid.band, path.geometry.n_fft,
+                                                 hr.hop_s), len(self.motion_paths))
+            first = next(iter(self.motion))
+            tracker = tracker_stage(hr, self.paths[first].grid.rates_per_min)
+            if hr.lag_hops:
+                tracker = tracker_mod.LagTrack(tracker.rates, tracker.params, tracker.power,
+                                               True, tracker.chance_factor, tracker.span)
+            self.motion_tracking = MotionTracking(
+                tuple(key for key in self.outputs if key[0] == "hr"), tuple(self.motion),
+                tuple(self.motion.values()), tracker,
+                tuple(self.motion_paths), hr.motion_trust,
+                int(round(hr.window_s / hr.hop_s)))
+        self._motion_state = (None if self.motion_tracking is None
+                              else self.motion_tracking.initial_state())
+        # Channels of a group are tracked together (one compiled call) unless the motion
+        # stage tracks them hop by hop or fixed-lag smoothing holds hops back.
+        # (tracker -> report per channel: GroupTracking, then GroupReport).
+        self.group_tracking: dict[tuple[str, str], Chain] = {
+            gid: Chain((GroupTracking(tracker_stage(group.settings, group.grid.rates_per_min,
+                                                    len(group.names))),
+                        GroupReport(tuple(self.outputs[(gid[0], name)].report
+                                          for name in group.names))))
+            for gid, group in self.groups.items()
+            if gid[0] != "acc" and group.settings.lag_hops == 0
+            and not (self.motion and gid[0] == "hr")}
+        self._track_states = {gid: chain.initial_state()
+                              for gid, chain in self.group_tracking.items()}
+        self._grouped_keys = {(gid[0], name) for gid in self.group_tracking
+                              for name in self.groups[gid].names}
+        self._rate_now = {quantity: now_mod.RateNow(now_mod.params_for(quantity))
+                          for quantity in ("hr", "rr")}
         self._newest_s = np.nan  # newest timestamp seen (labels never go backwards)
         self._now_states: dict = {}  # (quantity, source) -> rate_now.NowState
-        self._references_missing = False  # motion references lost (exercise profiles)
-        self._untrusted_hops = 0  # hops left in which the motion stage trusts no track
         self._gap_s = gap_threshold_s(self.fs)
         self.last_gaps: list[Gap] = []
         self.pulse_breathing: dict[str, PulseBreathing] = {
@@ -646,16 +1148,17 @@ class RateMonitor:
     def restart(self) -> None:
         """Start every path afresh (filters, windows, trackers, motion stage, breathing
         from pulse), keeping the newest timestamp seen so labels never go backwards."""
-        for path in list(self.paths.values()) + list(self.motion_paths.values()):
-            path.reset()
+        for group in self.groups.values():
+            group.reset()
+        self._track_states = {gid: chain.initial_state()
+                              for gid, chain in self.group_tracking.items()}
         for out in self.outputs.values():
             out.reset()
-        for suppressor in self.motion.values():
-            suppressor.reset()
+        if self.motion_tracking is not None:
+            self._motion_state = self.motion_tracking.initial_state()
         for breathing in self.pulse_breathing.values():
             breathing.reset()
         self._now_states = {}
-        self._references_missing, self._untrusted_hops = False, 0
 
     def reset(self) -> None:
         """As after construction: :meth:`restart`, and no timestamp seen (for a stream
@@ -677,22 +1180,6 @@ class RateMonitor:
                 f"timestamps.shape={timestamps.shape} must be ({samples.shape[0]},)")
         return samples, timestamps
 
-    def _consumer(self, key: tuple[str, str]) -> "_Output":
-        """The output whose track guides the motion stage of ``key``: the fused heart
-        rate when there is one (it is what is reported), else the channel's own."""
-        return self.outputs.get(("hr", FUSED), self.outputs[key])
-
-    def _expected_pulse(self, key: tuple[str, str]) -> np.ndarray | None:
-        """Where the guiding tracker expects the pulse before its next hop; None before
-        it has seen a hop."""
-        tracker = self._consumer(key).tracker
-        trust = self.profile.hr.motion_trust
-        if trust == "everywhere":
-            return np.ones((1, len(tracker.posterior)))
-        if trust == "nowhere" or tracker.hops_seen == 0 or self._untrusted_hops > 0:
-            return None
-        return motion_mod.expected_pulse(tracker.posterior, tracker.params.halfwidth_bins)
-
     def _report(self, keys: list, tracked: dict) -> list[Estimate]:
         """Estimates of the outputs ``keys`` from their tracker output (in the monitor's
         order: the fused output comes after the channels whose rates it reads)."""
@@ -705,60 +1192,15 @@ class RateMonitor:
             estimates.extend(new)
         return estimates
 
-    def _update_outputs(self, keys: list, blocks: dict) -> list[Estimate]:
-        """The outputs ``keys`` advanced over their blocks."""
-        return self._report(keys, {key: self.outputs[key].track(blocks[key]) for key in keys})
-
     def track_with_motion(self, blocks: dict, motion_blocks: dict) -> tuple[list, dict]:
-        """The motion stage and the heart-rate trackers, hop by hop: the motion stage of
-        hop ``p`` trusts its canceller where the trackers' posteriors after hop ``p - 1``
-        expect the pulse (:func:`estimators.motion.expected_pulse`). Returns the
-        heart-rate estimates and the blocks as tracked (motion-suppressed spectra, fused
-        block)."""
-        refs = [motion_blocks[name].columns for name in self.motion_paths]
-        acc = np.stack(refs, axis=-1) if refs else None
-        hr_keys = [key for key in self.outputs if key[0] == "hr"]
-        n_hops = len(blocks[next(iter(self.motion))])
-        reference = (np.min([motion_blocks[name].integrity for name in self.motion_paths],
-                            axis=0) if self.motion_paths else np.zeros(n_hops))
-        window_hops = int(round(self.profile.hr.window_s / self.profile.hr.hop_s))
-        tracked, hops = {key: [] for key in hr_keys}, {key: [] for key in hr_keys}
-        for p in range(n_hops):
-            # References back after an absence: the track was made without them (it may
-            # sit on the cadence), so for one window the motion stage trusts no track,
-            # as at start-up.
-            if self.motion_paths and reference[p] < calibration_mod.REFERENCE_MISSING:
-                self._references_missing = True
-            elif self._references_missing:
-                self._references_missing = False
-                self._untrusted_hops = window_hops
-                for key in hr_keys:
-                    self.outputs[key].tracker.reset()
-            hop = {key: take_hops(blocks[key], slice(p, p + 1)) for key in hr_keys
-                   if key in blocks}
-            for key, suppressor in self.motion.items():
-                spectra, lines = suppressor.update(
-                    hop[key].columns, None if acc is None else acc[p:p + 1],
-                    self._expected_pulse(key))
-                # While the stage warms up again its output is not what the motion
-                # calibration was fitted on: the evidence says the references are
-                # missing (the blind family) until a window has passed.
-                hop[key] = dataclasses.replace(
-                    hop[key], spectra=spectra, magnitude=spectra, columns=None,
-                    motion_lines=lines, reference_integrity=(
-                        np.zeros(1) if self._untrusted_hops > 0 else reference[p:p + 1]))
-            if ("hr", FUSED) in self.outputs:
-                hop[("hr", FUSED)] = fuse_blocks([hop[key] for key in hr_keys
-                                                  if key[1] != FUSED])
-            for key in hr_keys:
-                tracked[key].append(self.outputs[key].track(hop[key]))
-                hops[key].append(hop[key])
-            self._untrusted_hops = max(0, self._untrusted_hops - 1)
-        if n_hops == 0:
+        """The heart-rate outputs of the exercise path over their blocks (the
+        :class:`MotionTracking` stage, then each output's report): the heart-rate
+        estimates and the blocks as tracked (motion-suppressed spectra, fused block)."""
+        self._motion_state, (tracked, hops) = self.motion_tracking.step(
+            self._motion_state, ExerciseHops(blocks, motion_blocks))
+        if not tracked:
             return [], {}
-        estimates = self._report(hr_keys, {key: Tracked.concat(parts)
-                                           for key, parts in tracked.items()})
-        return estimates, {key: concat_blocks(parts) for key, parts in hops.items()}
+        return self._report(list(tracked), tracked), hops
 
     def update(self, samples, timestamps) -> list[Estimate]:
         """Feed a chunk ``(n, channels)`` with timestamps ``(n,)``; return the estimates
@@ -799,27 +1241,66 @@ class RateMonitor:
         estimates.sort(key=lambda e: (e.emitted_s, e.quantity, e.source))
         return estimates
 
+    def use_chain(self, name: str, chain: FilterChain) -> None:
+        """Research benches: replace the filter chain of channel ``name`` (and of the
+        channels that share its group) by ``chain``, and start afresh."""
+        for gid, group in list(self.groups.items()):
+            if name in group.names:
+                self.groups[gid] = ChannelGroup(group.names, group.kind, group.settings,
+                                                self.fs, None if gid[0] != "acc" else "acc",
+                                                group.transform.keep_columns, chain)
+                for other in group.names:
+                    key = (gid[0], other)
+                    if key in self.paths:
+                        path = self.paths[key]
+                        self.paths[key] = ChannelPath(other, path.kind, path.settings,
+                                                      self.fs, None, path.keep_columns, chain)
+        self.restart()
+
     def _with_rate_now(self, estimates: list[Estimate]) -> list[Estimate]:
-        """The estimates (in emitted order) with their rate now and its confidence
-        (:mod:`estimators.rate_now`), each output carrying its own forecast state."""
-        out = []
-        for e in estimates:
-            state = self._now_states.setdefault((e.quantity, e.source), now_mod.NowState())
-            now, conf = now_mod.rate_now_step(state, now_mod.params_for(e.quantity),
-                                              e.emitted_s, e.rate_per_min, e.delay_s,
-                                              e.confidence, e.recent_rate_per_min)
-            out.append(dataclasses.replace(e, rate_now_per_min=now, now_confidence=conf))
+        """The estimates (in emitted order) with their rate now and its confidence: each
+        output's estimates through its :class:`~estimators.rate_now.RateNow` stage,
+        with its own state."""
+        by_output: dict = {}
+        for i, e in enumerate(estimates):
+            by_output.setdefault((e.quantity, e.source), []).append(i)
+        out = list(estimates)
+        for key, index in by_output.items():
+            stage = self._rate_now[key[0]]
+            state = self._now_states.get(key) or stage.initial_state()
+            self._now_states[key], done = stage.step(state, [estimates[i] for i in index])
+            for i, e in zip(index, done):
+                out[i] = e
         return out
+
+    def _track_groups(self) -> tuple[list[Estimate], dict]:
+        """The estimates of every group with a tracking chain (one tracker call for all
+        its channels, then each channel's report), and the heart-rate channels' rates
+        (for a fused output's evidence)."""
+        estimates, channel_rates = [], {}
+        for gid, chain in self.group_tracking.items():
+            self._track_states[gid], per_channel = chain.step(self._track_states[gid],
+                                                              self._group_blocks[gid])
+            for name, new in zip(self.groups[gid].names, per_channel):
+                estimates.extend(new)
+                if gid[0] == "hr":
+                    channel_rates[name] = [e.rate_per_min for e in new]
+        return estimates, channel_rates
 
     def _update_stretch(self, samples: np.ndarray, labels: np.ndarray) -> list[Estimate]:
         """One stretch without a gap; ``labels`` never decrease."""
         if len(labels):
             self._newest_s = float(labels[-1])
         blocks = {}
-        for key, path in self.paths.items():
-            blocks[key] = path.update(samples[:, self._index[key[1]]], labels)
-        for name, path in self.motion_paths.items():
-            self.motion_spectra[name] = path.update(samples[:, self._index[name]], labels)
+        self._group_blocks = {}
+        for gid, group in self.groups.items():
+            grouped = group.update(samples[:, self._columns[gid]], labels)
+            self._group_blocks[gid] = grouped
+            for c, name in enumerate(group.names):
+                if gid[0] == "acc":
+                    self.motion_spectra[name] = grouped.channel(c)
+                else:
+                    blocks[(gid[0], name)] = grouped.channel(c)
         estimates = []
         if self.motion:
             hr_estimates, tracked = self.track_with_motion(blocks, self.motion_spectra)
@@ -828,8 +1309,18 @@ class RateMonitor:
         elif ("hr", FUSED) in self.outputs:
             blocks[("hr", FUSED)] = fuse_blocks([b for (q, _), b in blocks.items() if q == "hr"])
         self.last_blocks = blocks
-        estimates.extend(self._update_outputs(
-            [key for key in self.outputs if not (self.motion and key[0] == "hr")], blocks))
+        grouped, channel_rates = self._track_groups()
+        estimates.extend(grouped)
+        # The outputs no group tracks: fused, lagged (after the channels whose rates the
+        # fused output reads).
+        for key, out in self.outputs.items():
+            if (self.motion and key[0] == "hr") or key in self._grouped_keys:
+                continue
+            new = out.estimates(out.track(blocks[key]), _stacked(list(channel_rates.values()))
+                                if key[1] == FUSED else None)
+            if key[0] == "hr" and key[1] != FUSED:
+                channel_rates[key[1]] = [e.rate_per_min for e in new]
+            estimates.extend(new)
         for name, breathing in self.pulse_breathing.items():
             estimates.extend(breathing.update(samples[:, self._index[name]], labels))
         return estimates

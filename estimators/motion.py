@@ -408,3 +408,39 @@ class MotionSuppressor:
                                         reference * (1.0 - gate * trust), self.params)
         self.state.hops += len(ppg_columns)
         return harmonic_support(cleaned, self.params), motion_lines(reference, self.params)
+
+
+@dataclass(frozen=True, eq=False)
+class MotionStage:
+    """Stage (:mod:`estimators.stage`) of the motion suppression of one heart-rate
+    channel: input ``(ppg_columns (P, F), acc_columns (P, F, K), expected (P, band
+    bins) or None)`` as :meth:`MotionSuppressor.update` takes them, output ``(spectra,
+    lines)`` (P, band bins) each, state :class:`MotionState`. The same computation as
+    :class:`MotionSuppressor` (which owns a state of this stage), on a copy of the
+    state. Given the expected pulse per hop the stage is a function of its hops, so its
+    batch is one step over the whole record from the initial state."""
+
+    params: MotionParams
+    n_refs: int
+
+    def initial_state(self) -> MotionState:
+        return initial_state(self.params, self.n_refs)
+
+    def step(self, state: MotionState, x) -> tuple[MotionState, tuple]:
+        suppressor = MotionSuppressor.__new__(MotionSuppressor)
+        suppressor.params, suppressor.n_refs = self.params, self.n_refs
+        suppressor.state = MotionState(*(np.array(getattr(state, name)) for name in (
+            "cov", "cross", "power", "count", "ppg_mean", "acc_mean")), state.hops)
+        out = suppressor.update(*x)
+        return suppressor.state, out
+
+    def batch(self, x) -> tuple:
+        return self.step(self.initial_state(), x)[1]
+
+    def split(self, x, bounds) -> list:
+        edges = [0, *[int(b) for b in bounds], len(x[0])]
+        return [tuple(None if a is None else a[lo:hi] for a in x)
+                for lo, hi in zip(edges[:-1], edges[1:])]
+
+    def join(self, parts) -> tuple:
+        return tuple(np.concatenate([p[i] for p in parts]) for i in range(2))

@@ -34,6 +34,7 @@ from scipy import signal
 
 from estimators import _kernels
 from estimators.errors import ParameterError
+from estimators.stage import split_arrays
 
 MAX_ABS = 1e100
 """Samples larger in magnitude are rejected whatever the signal's history. Far beyond
@@ -261,7 +262,22 @@ class PreprocessState:
 
     @property
     def count(self) -> int:
-        return int(self.scalars[4])
+        return int(self.scalars.reshape(-1, 7)[0, 4])
+
+    def copy(self) -> "PreprocessState":
+        return PreprocessState(self.zi_pre.copy(), self.zi_post.copy(), self.scalars.copy(),
+                               self.limiter.copy())
+
+    def channel(self, c: int) -> "PreprocessState":
+        """Channel ``c`` of a state of several channels (views, no copy)."""
+        return PreprocessState(self.zi_pre[c], self.zi_post[c], self.scalars[c],
+                               self.limiter[c])
+
+    @staticmethod
+    def stack(states) -> "PreprocessState":
+        """States of single channels as one state of several channels."""
+        return PreprocessState(*(np.stack([getattr(s, name) for s in states])
+                                 for name in ("zi_pre", "zi_post", "scalars", "limiter")))
 
 
 def initial_state(chain: FilterChain, limiter: Limiter = NO_LIMIT) -> PreprocessState:
@@ -289,32 +305,116 @@ class Analysis:
     cum_rejected: np.ndarray
     cum_stuck: np.ndarray
 
+    def __len__(self) -> int:
+        return len(self.timestamps)
+
+    @property
+    def aux(self) -> np.ndarray:
+        """The running counts as the auxiliary series the STFT carries beside its
+        frames: (2, C, J) for several channels (rejected, stuck), (2, J) for one."""
+        return np.stack([self.cum_rejected, self.cum_stuck])
+
+    def channel(self, c: int) -> "Analysis":
+        """Channel ``c`` of a several-channel output (views)."""
+        return Analysis(self.values[c], self.timestamps, self.cum_rejected[c],
+                        self.cum_stuck[c])
+
+    @staticmethod
+    def concat(parts) -> "Analysis":
+        """Outputs one after the other in time (the last axis)."""
+        return Analysis(*(np.concatenate([getattr(p, name) for p in parts], axis=-1)
+                          for name in ("values", "timestamps", "cum_rejected", "cum_stuck")))
+
 
 def preprocess_step(state: PreprocessState, x: np.ndarray, t: np.ndarray, chain: FilterChain,
                     decimation: int, min_run: int,
                     limiter: Limiter = NO_LIMIT) -> tuple[PreprocessState, Analysis]:
-    """Filter one chunk and keep the analysis samples it completes (one compiled pass).
+    """Filter one chunk of one channel and keep the analysis samples it completes: the
+    step of :class:`FrontEnd` for a single channel.
 
     Parameters
     ----------
-    state : carried state (updated in place and returned), from :func:`initial_state`
-        with the same ``limiter``.
+    state : carried state from :func:`initial_state` with the same ``limiter`` (not
+        modified: a new state is returned).
     x, t : raw samples and their timestamps, 1-D float64 of equal length.
     chain : from :func:`design_chain`.
     decimation : integer factor ``M``.
     min_run : identical samples in a row before samples count as stuck.
     limiter : the running range outside which samples are rejected.
     """
-    x = np.ascontiguousarray(x, dtype=np.float64)
-    t = np.ascontiguousarray(t, dtype=np.float64)
-    n_max = (len(x) + decimation - 1) // decimation + 1
-    out = np.empty((4, n_max))
-    n_out = _kernels.preprocess_chunk(
-        x, t, chain.pre, state.zi_pre, bool(chain.envelope),
-        _NO_SECTIONS if chain.post is None else chain.post, state.zi_post, state.scalars,
-        state.limiter, int(limiter.block), int(limiter.rank), float(limiter.margin), MAX_ABS,
-        int(decimation), float(min_run), out[0], out[1], out[2], out[3])
-    return state, Analysis(out[0, :n_out], out[1, :n_out], out[2, :n_out], out[3, :n_out])
+    stage = FrontEnd(chain, int(decimation), int(min_run), limiter)
+    state, out = stage.step(PreprocessState.stack([state]), (np.asarray(x)[:, None], t))
+    return state.channel(0), out.channel(0)
+
+
+@dataclass(frozen=True, eq=False)
+class FrontEnd:
+    """Stage (:mod:`estimators.stage`): the causal pre-processing of ``n_channels``
+    channels that share one chain, in one compiled pass
+    (:func:`estimators._kernels.preprocess_channels`).
+
+    Input ``(samples (n, C), timestamps (n,))``; output :class:`Analysis` with values
+    and counts ``(C, J)`` and timestamps ``(J,)``; state :class:`PreprocessState` with
+    a leading channel axis. :meth:`batch` is the numpy/scipy twin
+    (:func:`preprocess_batch` per channel); :meth:`offline` the zero-phase version the
+    offline twin uses.
+    """
+
+    chain: FilterChain
+    decimation: int
+    min_run: int
+    limiter: Limiter = NO_LIMIT
+    n_channels: int = 1
+
+    def __post_init__(self):
+        if self.decimation < 1 or self.n_channels < 1:
+            raise ParameterError(f"decimation={self.decimation} and "
+                                 f"n_channels={self.n_channels} must be >= 1")
+
+    def initial_state(self) -> PreprocessState:
+        return PreprocessState.stack([initial_state(self.chain, self.limiter)]
+                                     * self.n_channels)
+
+    def _channels(self, samples, timestamps) -> tuple[np.ndarray, np.ndarray]:
+        t = np.ascontiguousarray(timestamps, dtype=np.float64)
+        x = np.asarray(samples, dtype=np.float64).reshape(len(t), self.n_channels)
+        return np.ascontiguousarray(x.T), t
+
+    def step(self, state: PreprocessState, x) -> tuple[PreprocessState, Analysis]:
+        samples, t = self._channels(*x)
+        state = state.copy()
+        n_max = (len(t) + self.decimation - 1) // self.decimation + 1
+        out = np.empty((self.n_channels, 4, n_max))
+        chain, limiter = self.chain, self.limiter
+        n_out = _kernels.preprocess_channels(
+            samples, t, chain.pre, state.zi_pre, bool(chain.envelope),
+            _NO_SECTIONS if chain.post is None else chain.post, state.zi_post,
+            state.scalars, state.limiter, int(limiter.block), int(limiter.rank),
+            float(limiter.margin), MAX_ABS, int(self.decimation), float(self.min_run), out)
+        return state, Analysis(out[:, 0, :n_out], out[0, 1, :n_out], out[:, 2, :n_out],
+                               out[:, 3, :n_out])
+
+    def _whole(self, x, zero_phase: bool) -> Analysis:
+        samples, t = self._channels(*x)
+        parts = [preprocess_batch(row, t, self.chain, self.decimation, self.min_run,
+                                  zero_phase, self.limiter) for row in samples]
+        return Analysis(np.array([p.values for p in parts]).reshape(len(parts), -1),
+                        parts[0].timestamps,
+                        np.array([p.cum_rejected for p in parts]).reshape(len(parts), -1),
+                        np.array([p.cum_stuck for p in parts]).reshape(len(parts), -1))
+
+    def batch(self, x) -> Analysis:
+        return self._whole(x, False)
+
+    def offline(self, x) -> Analysis:
+        """The zero-phase twin (``sosfiltfilt``) over a whole record."""
+        return self._whole(x, True)
+
+    def split(self, x, bounds):
+        return split_arrays(tuple(x), bounds)
+
+    def join(self, parts) -> Analysis:
+        return Analysis.concat(parts)
 
 
 def causal_sos(sos: np.ndarray, x: np.ndarray, zi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -370,32 +470,44 @@ def preprocess_batch(x: np.ndarray, t: np.ndarray, chain: FilterChain, decimatio
 
 
 class Preprocessor:
-    """Owns the state of one channel's chain; ``update(x, t) -> Analysis``.
+    """Owns the state of one channel's :class:`FrontEnd`; ``update(x, t) -> Analysis``.
 
     ``limiter`` is the running range (default: none, only non-finite samples and those
-    beyond :data:`MAX_ABS` are rejected); :class:`estimators.monitor.ChannelPath` gives
-    every path one learnt over its analysis window."""
+    beyond :data:`MAX_ABS` are rejected); ``min_run`` (default: :data:`STUCK_RUN_S`)
+    identical samples in a row count as stuck."""
 
     def __init__(self, kind: str, quantity: str, fs: float, decimation: int,
-                 limiter: Limiter = NO_LIMIT):
+                 limiter: Limiter = NO_LIMIT, min_run: int | None = None):
         self.kind, self.quantity, self.fs, self.decimation = kind, quantity, fs, decimation
-        self.chain = design_chain(kind, quantity, fs, fs / decimation)
-        self.min_run = max(3, int(round(STUCK_RUN_S * fs)))
-        self.limiter = limiter
-        self.state = initial_state(self.chain, limiter)
+        chain = design_chain(kind, quantity, fs, fs / decimation)
+        if min_run is None:
+            min_run = max(3, int(round(STUCK_RUN_S * fs)))
+        self.stage = FrontEnd(chain, int(decimation), int(min_run), limiter)
+        self.reset()
+
+    @property
+    def chain(self) -> FilterChain:
+        return self.stage.chain
+
+    @property
+    def min_run(self) -> int:
+        return self.stage.min_run
+
+    @property
+    def limiter(self) -> Limiter:
+        return self.stage.limiter
 
     def update(self, x: np.ndarray, t: np.ndarray) -> Analysis:
-        self.state, out = preprocess_step(self.state, x, t, self.chain, self.decimation,
-                                          self.min_run, self.limiter)
-        return out
+        self.state, out = self.stage.step(self.state, (x, t))
+        return out.channel(0)
 
     def batch(self, x: np.ndarray, t: np.ndarray, zero_phase: bool = False) -> Analysis:
         """A whole record in one call from the starting state (see :func:`preprocess_batch`)."""
-        return preprocess_batch(x, t, self.chain, self.decimation, self.min_run, zero_phase,
-                                self.limiter)
+        whole = self.stage.offline((x, t)) if zero_phase else self.stage.batch((x, t))
+        return whole.channel(0)
 
     def reset(self) -> None:
-        self.state = initial_state(self.chain, self.limiter)
+        self.state = self.stage.initial_state()
 
     def group_delay_s(self, freqs_hz: np.ndarray) -> np.ndarray:
         """The causal chain's group delay at ``freqs_hz`` (:func:`chain_group_delay_s`)."""

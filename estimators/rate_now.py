@@ -138,6 +138,10 @@ class NowState:
     last_time: float = math.nan
     apart: deque = field(default_factory=deque)  # the newest peaks in a row apart
 
+    def copy(self) -> "NowState":
+        return NowState(deque(self.times), deque(self.rates), list(self.sums), self.anchor,
+                        self.last_rate, self.last_time, deque(self.apart))
+
     def clear(self) -> None:
         self.times.clear()
         self.rates.clear()
@@ -308,3 +312,52 @@ def rate_now_batch(emitted_s: np.ndarray, rate: np.ndarray, delay_s: np.ndarray,
         conf_now[i] = now_confidence(float(confidence[i]), se if v != 0.0 else 0.0,
                                      float(delay_s[i]), params)
     return now, conf_now
+
+
+def _with_now(e, now: float, confidence: float):
+    """The estimate ``e`` with its rate now and that rate's confidence (a new record,
+    built field by field: ``dataclasses.replace`` costs several times as much, and this
+    runs for every estimate)."""
+    return type(e)(e.quantity, e.source, e.time_s, e.emitted_s, e.rate_per_min,
+                   e.confidence, e.quality, e.evidence, now, confidence,
+                   e.recent_rate_per_min)
+
+
+@dataclass(frozen=True)
+class RateNow:
+    """Stage (:mod:`estimators.stage`): the estimates of one output, in hop order, with
+    their rate now and its confidence (:func:`rate_now_step` per estimate, state
+    :class:`NowState`). Input and output are lists of
+    :class:`~estimators.estimate.Estimate`; :meth:`batch` is :func:`rate_now_batch`."""
+
+    params: NowParams
+
+    def initial_state(self) -> NowState:
+        return NowState()
+
+    def step(self, state: NowState, estimates: list) -> tuple[NowState, list]:
+        if not estimates:  # nothing to advance: the state as it was (never changed)
+            return state, []
+        state = state.copy()
+        out = []
+        for e in estimates:
+            now, conf = rate_now_step(state, self.params, e.emitted_s, e.rate_per_min,
+                                      e.delay_s, e.confidence, e.recent_rate_per_min)
+            out.append(_with_now(e, now, conf))
+        return state, out
+
+    def batch(self, estimates: list) -> list:
+        if not estimates:
+            return []
+        column = (lambda name: np.array([getattr(e, name) for e in estimates], dtype=float))
+        now, conf = rate_now_batch(column("emitted_s"), column("rate_per_min"),
+                                   column("delay_s"), column("confidence"), self.params,
+                                   column("recent_rate_per_min"))
+        return [_with_now(e, n, c) for e, n, c in zip(estimates, now.tolist(), conf.tolist())]
+
+    def split(self, estimates: list, bounds) -> list:
+        edges = [0, *[int(b) for b in bounds], len(estimates)]
+        return [estimates[lo:hi] for lo, hi in zip(edges[:-1], edges[1:])]
+
+    def join(self, parts) -> list:
+        return [e for part in parts for e in part]

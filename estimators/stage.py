@@ -105,3 +105,34 @@ def split_arrays(arrays: tuple, bounds: Sequence[int]) -> list[tuple]:
 def join_arrays(parts: Sequence[tuple]) -> tuple:
     """Concatenate tuples of arrays along axis 0: the usual ``join``."""
     return tuple(np.concatenate(column) for column in zip(*parts))
+
+
+@dataclass(frozen=True)
+class Parallel:
+    """Stages side by side (one per channel, say): the input is a tuple with one item
+    per stage, the output the tuple of their outputs, the state the tuple of their
+    states; itself a stage."""
+
+    stages: tuple
+
+    def __post_init__(self):
+        for stage in self.stages:
+            if not isinstance(stage, Stage):
+                raise TypeError(f"{type(stage).__name__} does not speak the stage protocol")
+
+    def initial_state(self) -> tuple:
+        return tuple(stage.initial_state() for stage in self.stages)
+
+    def step(self, state: tuple, x: tuple) -> tuple[tuple, tuple]:
+        pairs = [stage.step(s, item) for stage, s, item in zip(self.stages, state, x)]
+        return tuple(p[0] for p in pairs), tuple(p[1] for p in pairs)
+
+    def batch(self, x: tuple) -> tuple:
+        return tuple(stage.batch(item) for stage, item in zip(self.stages, x))
+
+    def split(self, x: tuple, bounds: Sequence[int]) -> list:
+        pieces = [stage.split(item, bounds) for stage, item in zip(self.stages, x)]
+        return [tuple(parts) for parts in zip(*pieces)]
+
+    def join(self, parts: Sequence[tuple]) -> tuple:
+        return tuple(stage.join([p[i] for p in parts]) for i, stage in enumerate(self.stages))

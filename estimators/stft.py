@@ -31,6 +31,8 @@ full column's does (:mod:`estimators.rate_now` uses it to see a new rate early).
 from __future__ import annotations
 
 import dataclasses
+import functools
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -66,6 +68,31 @@ class Columns:
     def __len__(self) -> int:
         return len(self.time_s)
 
+    def channel(self, c: int) -> "Columns":
+        """Channel ``c`` of columns with a channel axis (views)."""
+        pick = (lambda a: None if a is None else a[c])
+        return Columns(pick(self.spectra), pick(self.spectra_dw), self.time_s,
+                       self.emitted_s, self.first_count, self.last_count,
+                       self.aux_before[:, c], self.aux_last[:, c], pick(self.recent))
+
+    def hops(self, index) -> "Columns":
+        """The hops ``index`` (a slice or index array) of columns with a channel axis."""
+        pick = (lambda a: None if a is None else a[:, index])
+        return Columns(pick(self.spectra), pick(self.spectra_dw), self.time_s[index],
+                       self.emitted_s[index], self.first_count[index],
+                       self.last_count[index], self.aux_before[:, :, index],
+                       self.aux_last[:, :, index], pick(self.recent))
+
+    @staticmethod
+    def concat(parts) -> "Columns":
+        """Columns (with a channel axis) one after the other in time."""
+        def join(name, axis):
+            arrays = [getattr(p, name) for p in parts]
+            return None if arrays[0] is None else np.concatenate(arrays, axis=axis)
+        return Columns(join("spectra", 1), join("spectra_dw", 1), join("time_s", 0),
+                       join("emitted_s", 0), join("first_count", 0), join("last_count", 0),
+                       join("aux_before", 2), join("aux_last", 2), join("recent", 1))
+
 
 def analysis_window(length: int) -> tuple[np.ndarray, np.ndarray]:
     """Periodic Hann of ``length`` samples normalised to unit sum, and its derivative
@@ -81,44 +108,83 @@ def hop_counts(count_before: int, count_after: int, hop_samples: float) -> np.nd
     """Analysis-sample counts ``c_p`` with ``count_before < c_p <= count_after``."""
     p_lo = int(np.floor(count_before / hop_samples)) - 1
     p_hi = int(np.floor(count_after / hop_samples)) + 2
+    if p_hi - p_lo < 8:  # a live step: a hop or two, cheaper without arrays
+        found = [c for c in (math.floor(p * hop_samples + 1e-9)
+                             for p in range(max(p_lo, 1), p_hi + 1))
+                 if count_before < c <= count_after]
+        return np.array(found, dtype=np.int64)
     p = np.arange(max(p_lo, 1), p_hi + 1)
     c = np.floor(p * hop_samples + 1e-9).astype(np.int64)
     return c[(c > count_before) & (c <= count_after)]
 
 
-class _WindowCache:
-    def __init__(self):
-        self._cache: dict[int, tuple[np.ndarray, np.ndarray]] = {}
-
-    def get(self, length: int):
-        if length not in self._cache:
-            self._cache[length] = analysis_window(length)
-        return self._cache[length]
+FFT_ROWS = 32
+"""Rows per FFT call when many columns are transformed at once: numpy's FFT costs
+about a third as much per row in calls of 16-64 rows as in single calls, but more again
+in calls of hundreds of rows (whose arrays leave the cache; measured on 2048-point
+transforms on the development machine). Each row is its own transform, so the
+grouping never changes a value."""
 
 
-def frames_to_columns(frames: list[tuple[np.ndarray, np.ndarray]], n_fft: int,
-                      with_derivative: bool, windows: _WindowCache):
-    """FFT of windowed frames; full-length frames are batched in one call."""
-    n_bins = n_fft // 2 + 1
-    if len(frames) == 1 and not with_derivative:  # the live case: one hop per update
-        w, _ = windows.get(len(frames[0][0]))
-        return np.fft.rfft(frames[0][0] * w, n_fft)[None, :], None
-    spectra = np.empty((len(frames), n_bins), dtype=np.complex128)
-    spectra_dw = np.empty_like(spectra) if with_derivative else None
-    by_len: dict[int, list[int]] = {}
-    for i, (values, _) in enumerate(frames):
-        by_len.setdefault(len(values), []).append(i)
-    for length, idx in by_len.items():
-        w, dw = windows.get(length)
-        block = np.stack([frames[i][0] for i in idx])
-        spectra[idx] = np.fft.rfft(block * w, n_fft, axis=1)
-        if with_derivative:
-            spectra_dw[idx] = np.fft.rfft(block * dw, n_fft, axis=1)
-    return spectra, spectra_dw
+def fft_rows(transform, x: np.ndarray, n: int) -> np.ndarray:
+    """``transform(x, n, axis=-1)`` (``np.fft.rfft`` or ``np.fft.irfft``) in calls of at
+    most :data:`FFT_ROWS` rows written in place; ``x`` has any leading axes."""
+    n_rows = x.size // x.shape[-1] if x.shape[-1] else 0
+    if n_rows <= FFT_ROWS:
+        return transform(x, n, axis=-1)
+    rows = x.reshape(n_rows, x.shape[-1])
+    complex_out = transform is np.fft.rfft
+    out = np.empty((n_rows, n // 2 + 1 if complex_out else n),
+                   dtype=np.complex128 if complex_out else np.float64)
+    for a in range(0, n_rows, FFT_ROWS):
+        transform(rows[a:a + FFT_ROWS], n, axis=-1, out=out[a:a + FFT_ROWS])
+    return out.reshape(x.shape[:-1] + out.shape[-1:])
 
 
-class SlidingSTFT:
-    """Ring-buffered STFT of one analysis-rate signal.
+@functools.lru_cache(maxsize=64)
+def _window(length: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`analysis_window`, computed once per length (read-only arrays)."""
+    w, dw = analysis_window(length)
+    w.flags.writeable = False
+    dw.flags.writeable = False
+    return w, dw
+
+
+@dataclass(frozen=True)
+class Samples:
+    """Input of the STFT stage: ``values`` (C, n) of C channels on one time axis,
+    ``timestamps`` (n,), and ``aux`` (A, C, n) auxiliary series carried beside the
+    frames (running counts). :class:`estimators.preprocess.Analysis` has the same
+    attributes and is what a path feeds."""
+
+    values: np.ndarray
+    timestamps: np.ndarray
+    aux: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.timestamps)
+
+
+@dataclass
+class SpectrumState:
+    """Samples seen (``count``) and the newest ``m + 1`` of them (values (C, K), times
+    (K,), aux (A, C, K)); None before the first input."""
+
+    count: int = 0
+    values: np.ndarray | None = None
+    times: np.ndarray | None = None
+    aux: np.ndarray | None = None
+
+
+@dataclass(frozen=True)
+class SpectrumStage:
+    """Stage (:mod:`estimators.stage`): the sliding STFT of C channels on one time axis.
+
+    Input :class:`Samples` (or :class:`estimators.preprocess.Analysis`); output
+    :class:`Columns` with a leading channel axis (``spectra`` (C, P, n_fft // 2 + 1),
+    ``aux_before``/``aux_last`` (A, C, P)); all channels' frames of a step go through
+    one FFT call per frame length. :meth:`batch` forms every column of a whole record
+    from its hop schedule (:func:`hop_counts`); :meth:`blocks` the same in blocks.
 
     Parameters
     ----------
@@ -130,93 +196,187 @@ class SlidingSTFT:
         of each frame (0: none; see the module notes).
     """
 
+    window_samples: int
+    min_window_samples: int
+    hop_samples: float
+    n_fft: int
+    with_derivative: bool = False
+    recent_samples: int = 0
+
+    def __post_init__(self):
+        window, min_window = self.window_samples, self.min_window_samples
+        # A periodic Hann of one sample is all zero, so frames need at least two.
+        if not 2 <= min_window <= window:
+            raise ParameterError(
+                f"min_window_samples={min_window} must be in [2, {window}]")
+        if self.n_fft < window:
+            raise ParameterError(f"n_fft={self.n_fft} must be >= window_samples={window}")
+        if self.hop_samples <= 0:
+            raise ParameterError(f"hop_samples={self.hop_samples} must be > 0")
+        if self.recent_samples != 0 and not 2 <= self.recent_samples <= window:
+            raise ParameterError(
+                f"recent_samples={self.recent_samples} must be 0 or in [2, {window}]")
+
+    def initial_state(self) -> SpectrumState:
+        return SpectrumState()
+
+    @staticmethod
+    def _arrays(x) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        values = np.asarray(x.values, dtype=np.float64)
+        values = values[None] if values.ndim == 1 else values
+        aux = np.asarray(x.aux, dtype=np.float64)
+        aux = aux.reshape(len(aux), len(values), values.shape[1])
+        return values, np.asarray(x.timestamps, dtype=np.float64), aux
+
+    def step(self, state: SpectrumState, x) -> tuple[SpectrumState, "Columns"]:
+        values, times, aux = self._arrays(x)
+        if state.values is not None:
+            if state.aux.shape[:2] != aux.shape[:2] or len(state.values) != len(values):
+                raise ParameterError("the number of channels and of auxiliary series must "
+                                     "not change")
+            values = np.concatenate((state.values, values), axis=1)
+            times = np.concatenate((state.times, times))
+            aux = np.concatenate((state.aux, aux), axis=2)
+        else:  # the state must not hold views of the caller's arrays
+            values, times, aux = values.copy(), times.copy(), aux.copy()
+        before = state.count
+        count = before + len(x.timestamps)
+        counts = hop_counts(before, count, self.hop_samples)
+        counts = counts[counts >= self.min_window_samples]
+        offset = count - values.shape[1]  # samples before index 0 of the buffer
+        n_buffer = values.shape[1]
+        keep = min(n_buffer, self.window_samples + 1)
+        # The buffer was made here (concatenated), so the new state may hold views of
+        # it; a copy only when most of it would otherwise be kept alive for nothing.
+        tail = ((lambda a: a[..., n_buffer - keep:].copy()) if n_buffer > 2 * keep + 64
+                else (lambda a: a[..., n_buffer - keep:]))
+        new = SpectrumState(count, tail(values), tail(times), tail(aux))
+        lengths = np.minimum(self.window_samples, counts)
+        return new, self.columns(values, times, aux, counts - offset, lengths, counts)
+
+    def _plan(self, x):
+        values, times, aux = self._arrays(x)
+        counts = hop_counts(0, values.shape[1], self.hop_samples)
+        counts = counts[counts >= self.min_window_samples]
+        return values, times, aux, counts, np.minimum(self.window_samples, counts)
+
+    def batch(self, x) -> "Columns":
+        values, times, aux, counts, lengths = self._plan(x)
+        return self.columns(values, times, aux, counts, lengths, counts)
+
+    def blocks(self, x, block_hops: int | None = None):
+        """The columns of :meth:`batch` in consecutive blocks of at most ``block_hops``
+        hops (default :data:`BATCH_BLOCK_HOPS`): a generator of :class:`Columns`."""
+        block_hops = BATCH_BLOCK_HOPS if block_hops is None else int(block_hops)
+        if block_hops < 1:
+            raise ParameterError(f"block_hops={block_hops} must be >= 1")
+        values, times, aux, counts, lengths = self._plan(x)
+        for a in range(0, len(counts), block_hops):
+            part = slice(a, a + block_hops)
+            yield self.columns(values, times, aux, counts[part], lengths[part], counts[part])
+
+    def split(self, x, bounds) -> list:
+        return split_last_axis(x, bounds)
+
+    def join(self, parts) -> "Columns":
+        return Columns.concat(parts)
+
+    def columns(self, values, times, aux, ends, lengths, counts) -> "Columns":
+        """The columns whose frames end (exclusive) at buffer indices ``ends`` with
+        ``lengths`` samples, at sample counts ``counts``: one FFT call per frame length
+        for every channel's frames."""
+        n_channels, n_bins, n_hops = len(values), self.n_fft // 2 + 1, len(counts)
+        parts = {"spectra": [], "spectra_dw": [], "recent": []}
+        # Frame lengths never decrease with the hop (the window grows, then stays), so
+        # hops of one length are consecutive: one run each.
+        cuts = ([0, n_hops] if n_hops < 2 or lengths[0] == lengths[-1] else
+                [0, *(np.flatnonzero(np.diff(lengths)) + 1).tolist(), n_hops])
+        for a, b in zip(cuts[:-1], cuts[1:]):
+            if b == a:
+                continue
+            length = int(lengths[a])
+            w, dw = _window(length)
+            if b - a == 1:  # the live case: one hop, a view of the buffer
+                end = int(ends[a])
+                frames = values[:, None, end - length:end]
+            else:
+                frames = values[:, (ends[a:b] - length)[:, None] + np.arange(length)]
+            parts["spectra"].append(fft_rows(np.fft.rfft, frames * w, self.n_fft))
+            if self.with_derivative:
+                parts["spectra_dw"].append(fft_rows(np.fft.rfft, frames * dw, self.n_fft))
+            if self.recent_samples:
+                r = min(self.recent_samples, length)
+                parts["recent"].append(fft_rows(np.fft.rfft, frames[:, :, length - r:]
+                                                * _window(r)[0], self.n_fft))
+
+        def joined(name, wanted):
+            if not wanted:
+                return None
+            if not parts[name]:
+                return np.empty((n_channels, 0, n_bins), dtype=np.complex128)
+            return (parts[name][0] if len(parts[name]) == 1
+                    else np.concatenate(parts[name], axis=1))
+
+        spectra = joined("spectra", True)
+        spectra_dw = joined("spectra_dw", self.with_derivative)
+        recent = joined("recent", self.recent_samples)
+        starts = ends - lengths
+        first = counts - lengths
+        if n_hops:
+            t_first, t_last = times[starts], times[ends - 1]
+            aux_last = aux[:, :, ends - 1]
+            aux_before = np.where(first > 0, aux[:, :, np.maximum(starts - 1, 0)], 0.0)
+        else:
+            t_first = t_last = np.empty(0)
+            aux_last = aux_before = np.empty(aux.shape[:2] + (0,))
+        return Columns(spectra, spectra_dw, 0.5 * (t_first + t_last), t_last, first,
+                       np.asarray(counts, dtype=np.int64), aux_before, aux_last, recent)
+
+
+def split_last_axis(x, bounds) -> list:
+    """Cut a dataclass of arrays whose last axis is time at ``bounds`` (the ``split``
+    of stages fed :class:`Samples` or :class:`estimators.preprocess.Analysis`)."""
+    n = len(x.timestamps)
+    edges = [0, *[int(b) for b in bounds], n]
+    return [type(x)(**{f.name: getattr(x, f.name)[..., lo:hi]
+                       for f in dataclasses.fields(x)})
+            for lo, hi in zip(edges[:-1], edges[1:])]
+
+
+def _single(values, times, aux) -> Samples:
+    """One channel's samples and auxiliary series as the stage's input."""
+    values = np.asarray(values, dtype=np.float64)
+    aux = (np.stack([np.asarray(a, dtype=np.float64) for a in aux])[:, None, :] if len(aux)
+           else np.empty((0, 1, len(values))))
+    return Samples(values[None], np.asarray(times, dtype=np.float64), aux)
+
+
+class SlidingSTFT:
+    """Owns the state of a one-channel :class:`SpectrumStage`:
+    ``update(values, times, aux=()) -> Columns`` (one channel: ``spectra`` (P, F),
+    ``aux_before``/``aux_last`` (A, P)). Parameters as :class:`SpectrumStage`."""
+
     def __init__(self, window_samples: int, min_window_samples: int, hop_samples: float,
                  n_fft: int, with_derivative: bool = False, recent_samples: int = 0):
-        # A periodic Hann of one sample is all zero, so frames need at least two.
-        if not 2 <= min_window_samples <= window_samples:
-            raise ParameterError(
-                f"min_window_samples={min_window_samples} must be in [2, {window_samples}]")
-        if n_fft < window_samples:
-            raise ParameterError(f"n_fft={n_fft} must be >= window_samples={window_samples}")
-        if hop_samples <= 0:
-            raise ParameterError(f"hop_samples={hop_samples} must be > 0")
-        if recent_samples != 0 and not 2 <= recent_samples <= window_samples:
-            raise ParameterError(
-                f"recent_samples={recent_samples} must be 0 or in [2, {window_samples}]")
-        self.recent = int(recent_samples)
+        self.stage = SpectrumStage(window_samples, min_window_samples, hop_samples, n_fft,
+                                   with_derivative, int(recent_samples))
         self.m, self.m_min, self.hop = window_samples, min_window_samples, hop_samples
         self.n_fft, self.with_derivative = n_fft, with_derivative
-        self._windows = _WindowCache()
+        self.recent = int(recent_samples)
         self.reset()
 
+    @property
+    def count(self) -> int:
+        return self.state.count
+
     def reset(self) -> None:
-        self.count = 0
-        self._rows = 0  # 2 + number of auxiliary series, fixed at the first update
-        self._buf = np.empty((0, 0))
-        self._len = 0
+        self.state = self.stage.initial_state()
 
-    def _append(self, rows: list) -> None:
-        n = len(rows[0])
-        if self._buf.shape[0] != len(rows):
-            if self.count:
-                raise ParameterError("the number of auxiliary series must not change")
-            self._buf = np.empty((len(rows), 2 * self.m + 256))
-            self._len = 0
-        if self._len + n > self._buf.shape[1]:
-            keep = min(self._len, self.m + 1)
-            cap = max(self._buf.shape[1], 2 * (keep + n))
-            buf = np.empty((len(rows), cap))
-            buf[:, :keep] = self._buf[:, self._len - keep:self._len]
-            self._buf, self._len = buf, keep
-        for i, row in enumerate(rows):
-            self._buf[i, self._len:self._len + n] = row
-        self._len += n
-
-    def update(self, values: np.ndarray, times: np.ndarray, aux=()) -> Columns:
+    def update(self, values: np.ndarray, times: np.ndarray, aux=()) -> "Columns":
         """Append analysis samples (and auxiliary series of the same length); return the
         columns of the hops they complete."""
-        before = self.count
-        self._append([values, times, *aux])
-        self.count += len(values)
-        offset = self.count - self._len  # count of samples before buffer index 0
-        counts = []
-        p = max(1, int(before // self.hop))
-        while True:
-            c = int(np.floor(p * self.hop + 1e-9))
-            if c > self.count:
-                break
-            if c > before and c >= self.m_min:
-                counts.append(c)
-            p += 1
-        counts = np.array(counts, dtype=np.int64)
-        lengths = np.minimum(self.m, counts)
-        ends = counts - offset
-        return self._columns(self._buf, ends, lengths, counts)
-
-    def _columns(self, buf, ends, lengths, counts) -> Columns:
-        n_bins = self.n_fft // 2 + 1
-        n_aux = buf.shape[0] - 2
-        if len(counts) == 0:
-            e = np.empty(0)
-            return Columns(np.empty((0, n_bins), complex),
-                           np.empty((0, n_bins), complex) if self.with_derivative else None,
-                           e, e, counts, counts, np.empty((n_aux, 0)), np.empty((n_aux, 0)),
-                           np.empty((0, n_bins), complex) if self.recent else None)
-        frames = [(buf[0, e - L:e], buf[1, e - L:e]) for e, L in zip(ends, lengths)]
-        spectra, spectra_dw = frames_to_columns(frames, self.n_fft, self.with_derivative,
-                                                self._windows)
-        recent = None
-        if self.recent:
-            tails = [(values[-self.recent:], times[-self.recent:]) for values, times in frames]
-            recent, _ = frames_to_columns(tails, self.n_fft, False, self._windows)
-        starts = ends - lengths
-        t_first = buf[1, starts]
-        t_last = buf[1, ends - 1]
-        first = counts - lengths
-        aux_last = buf[2:, ends - 1]
-        aux_before = np.where(first > 0, buf[2:, np.maximum(starts - 1, 0)], 0.0)
-        return Columns(spectra, spectra_dw, 0.5 * (t_first + t_last), t_last, first, counts,
-                       aux_before, aux_last, recent)
+        self.state, columns = self.stage.step(self.state, _single(values, times, aux))
+        return columns.channel(0)
 
 
 BATCH_BLOCK_HOPS = 1024
@@ -227,22 +387,6 @@ block (band spectra), so the whole-record columns (about 1 GB per hour of
 heart-rate hops at 0.25 s) never exist at once. Columns are computed row by row, so
 the block size does not change any value. Our own choice: large enough that the
 per-block Python overhead is negligible (about 4 minutes of hops per block)."""
-
-
-def _batch_plan(values, times, window_samples: int, min_window_samples: int,
-                hop_samples: float, n_fft: int, with_derivative: bool, aux,
-                recent_samples: int = 0):
-    """The validated :class:`SlidingSTFT`, the signal buffer and the hop counts and
-    window lengths of every column of a whole record."""
-    sliding = SlidingSTFT(window_samples, min_window_samples, hop_samples, n_fft,
-                          with_derivative, recent_samples)  # validates the parameters first
-    counts = hop_counts(0, len(values), hop_samples)
-    counts = counts[counts >= min_window_samples]
-    lengths = np.minimum(window_samples, counts)
-    buf = np.vstack([np.asarray(values, dtype=np.float64), np.asarray(times, dtype=np.float64),
-                     *[np.asarray(a, dtype=np.float64) for a in aux]]) if len(values) else \
-        np.empty((2 + len(aux), 0))
-    return sliding, buf, counts, lengths
 
 
 def batch_hop_count(n_values: int, min_window_samples: int, hop_samples: float) -> int:
@@ -260,28 +404,22 @@ def stft_blocks(values: np.ndarray, times: np.ndarray, window_samples: int,
     :class:`Columns`, in hop order. Concatenated, the blocks are :func:`stft_batch`'s
     columns exactly (each column is its own FFT). Nothing is yielded when the record
     has no column."""
-    block_hops = BATCH_BLOCK_HOPS if block_hops is None else int(block_hops)
-    if block_hops < 1:
-        raise ParameterError(f"block_hops={block_hops} must be >= 1")
-    sliding, buf, counts, lengths = _batch_plan(values, times, window_samples,
-                                                min_window_samples, hop_samples, n_fft,
-                                                with_derivative, aux, recent_samples)
-    for a in range(0, len(counts), block_hops):
-        part = slice(a, a + block_hops)
-        yield sliding._columns(buf, counts[part], lengths[part], counts[part])
+    stage = SpectrumStage(window_samples, min_window_samples, hop_samples, n_fft,
+                          with_derivative, int(recent_samples))
+    for block in stage.blocks(_single(values, times, aux), block_hops):
+        yield block.channel(0)
 
 
 def stft_batch(values: np.ndarray, times: np.ndarray, window_samples: int,
                min_window_samples: int, hop_samples: float, n_fft: int,
-               with_derivative: bool = False, aux=(), recent_samples: int = 0) -> Columns:
+               with_derivative: bool = False, aux=(), recent_samples: int = 0) -> "Columns":
     """All columns of a whole signal in one call (the batch twin of :class:`SlidingSTFT`).
 
     It holds every complex column at once; :func:`stft_blocks` gives the same columns
     block by block for long records."""
-    sliding, buf, counts, lengths = _batch_plan(values, times, window_samples,
-                                                min_window_samples, hop_samples, n_fft,
-                                                with_derivative, aux, recent_samples)
-    return sliding._columns(buf, counts, lengths, counts)
+    stage = SpectrumStage(window_samples, min_window_samples, hop_samples, n_fft,
+                          with_derivative, int(recent_samples))
+    return stage.batch(_single(values, times, aux)).channel(0)
 
 
 class HopGatherer:

@@ -29,6 +29,7 @@ emissions and transitions (log domain).
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -242,13 +243,255 @@ def offline_track(spectra: np.ndarray, weights: np.ndarray, params: TrackerParam
     return rate, np.clip(mass, 0.0, 1.0), path
 
 
+@dataclass(frozen=True)
+class TrackInput:
+    """Input of the tracker stage for C channels: ``spectra`` and ``readout`` (C, P, F)
+    (the tracked spectra, and where the rate is read off), ``weights`` (C, P) the
+    emission tempering (the windows' signal integrity)."""
+
+    spectra: np.ndarray
+    weights: np.ndarray
+    readout: np.ndarray
+
+    def __len__(self) -> int:
+        """Hops: the last axis of ``weights`` ((C, P), or (P,) for one channel)."""
+        return self.weights.shape[-1]
+
+
+@dataclass(frozen=True)
+class TrackOutput:
+    """Output of the tracker stage: ``rate`` (C, P) per minute, ``confidence`` (C, P)
+    the posterior mass within the half-width of the mode, ``concentration`` (C, P) the
+    harmonic concentration score at the rate (for the quality index)."""
+
+    rate: np.ndarray
+    confidence: np.ndarray
+    concentration: np.ndarray
+
+
+@dataclass
+class TrackState:
+    """The posterior of each channel (C, F) and the hops seen."""
+
+    posterior: np.ndarray
+    hops_seen: int = 0
+
+
+def _split_hops(x, bounds) -> list:
+    """Cut a dataclass of (C, P, ...) arrays at hop ``bounds``."""
+    n = x.confidence.shape[1] if hasattr(x, "confidence") else x.weights.shape[1]
+    edges = [0, *[int(b) for b in bounds], n]
+    return [type(x)(*(getattr(x, f)[:, lo:hi] for f in x.__dataclass_fields__))
+            for lo, hi in zip(edges[:-1], edges[1:])]
+
+
+def _join_hops(parts):
+    first = parts[0]
+    return type(first)(*(np.concatenate([getattr(p, f) for p in parts], axis=1)
+                         for f in first.__dataclass_fields__))
+
+
+@dataclass(frozen=True, eq=False)
+class RidgeTrack:
+    """Stage (:mod:`estimators.stage`): the causal tracker without lag for C channels on
+    one grid, all of them in one compiled call (:func:`estimators._kernels.track_channels`).
+
+    Input :class:`TrackInput`, output :class:`TrackOutput`, state :class:`TrackState`.
+    Per hop: the rhythm score tempers the emission (with ``check_rhythm``), one forward
+    step, the confidence and the rate read at the highest ``readout`` peak near the mode
+    (parabolic interpolation), the concentration score there. :meth:`batch` is the
+    numpy composition of the same steps (:func:`emissions_from_spectra`,
+    :func:`forward_step`, :func:`read_posterior` and the concentration score), the twin
+    the compiled kernel is tested against.
+    """
+
+    rates: np.ndarray
+    params: TrackerParams
+    power: float
+    check_rhythm: bool = False
+    chance_factor: float = 1.5
+    span: float = 0.3
+    n_channels: int = 1
+
+    @property
+    def step_per_min(self) -> float:
+        return float(self.rates[1] - self.rates[0])
+
+    @property
+    def offset_bins(self) -> float:
+        return float(self.rates[0] / self.step_per_min)
+
+    def initial_state(self) -> TrackState:
+        return TrackState(np.tile(initial_posterior(len(self.rates)), (self.n_channels, 1)))
+
+    def step(self, state: TrackState, x: TrackInput) -> tuple[TrackState, TrackOutput]:
+        spectra = np.ascontiguousarray(x.spectra, dtype=np.float64)
+        readout = np.ascontiguousarray(x.readout, dtype=np.float64)
+        weights = np.ascontiguousarray(np.clip(x.weights, 0.0, 1.0), dtype=np.float64)
+        posterior = np.array(state.posterior, dtype=np.float64, order="C")
+        shape = weights.shape
+        position, confidence, concentration = np.empty(shape), np.empty(shape), np.empty(shape)
+        _kernels.track_channels(spectra, readout, weights, posterior, self.params.transition,
+                                self.params.jump_probability, float(self.power),
+                                EMISSION_FLOOR, float(self.params.halfwidth_bins),
+                                self.offset_bins, self.chance_factor, self.span,
+                                bool(self.check_rhythm), position, confidence, concentration)
+        rate = self.rates[0] + position * self.step_per_min
+        return (TrackState(posterior, state.hops_seen + shape[1]),
+                TrackOutput(rate, confidence, concentration))
+
+    def batch(self, x: TrackInput) -> TrackOutput:
+        rows = [self._batch_channel(x.spectra[c], np.asarray(x.weights[c], dtype=np.float64),
+                                    x.readout[c]) for c in range(len(x.spectra))]
+        return TrackOutput(*(np.array([r[i] for r in rows]).reshape(len(rows), -1)
+                             for i in range(3)))
+
+    def _batch_channel(self, spectra, weights, readout):
+        if len(spectra) == 0:
+            return np.empty(0), np.empty(0), np.empty(0)
+        # The general tracker without lag: rhythm score, emissions, forward filter and
+        # read-out in numpy (the same steps LagTrack takes).
+        plain = LagTrack(self.rates, dataclasses.replace(self.params, lag_hops=0),
+                         self.power, self.check_rhythm, self.chance_factor, self.span)
+        out = plain.batch(TrackInput(spectra, weights, readout))
+        n_bins, halfwidth = len(self.rates), float(self.params.halfwidth_bins)
+        position = (out.rate - self.rates[0]) / self.step_per_min
+        concentration = np.zeros(len(position))
+        for p, centre in enumerate(position.tolist()):
+            # A rate on the grid's first or last bin is a slope, not a peak: no rhythm.
+            if 0 < int(round(centre)) < n_bins - 1:
+                concentration[p] = _kernels.harmonic_score(
+                    np.ascontiguousarray(readout[p] ** 2), centre, self.offset_bins,
+                    halfwidth, self.chance_factor, self.span)
+        return out.rate, out.confidence, concentration
+
+    def split(self, x, bounds) -> list:
+        return _split_hops(x, bounds)
+
+    def join(self, parts):
+        return _join_hops(parts)
+
+
+@dataclass
+class LagState:
+    """What :class:`LagTrack` carries: the posterior (F,), the hops seen, and the
+    newest ``L`` (or fewer) hops' forward posteriors, emissions, weights and read-out
+    spectra, which the backward pass of fixed-lag smoothing needs."""
+
+    posterior: np.ndarray
+    hops_seen: int
+    alphas: np.ndarray
+    emissions: np.ndarray
+    weights: np.ndarray
+    readouts: np.ndarray
+
+
+@dataclass(frozen=True)
+class LagOutput:
+    """Output of :class:`LagTrack`: ``rate``, ``confidence`` (n,) and ``index`` (n,),
+    the hop (counted from the first) each output refers to."""
+
+    rate: np.ndarray
+    confidence: np.ndarray
+    index: np.ndarray
+
+
+@dataclass(frozen=True, eq=False)
+class LagTrack:
+    """Stage (:mod:`estimators.stage`): one channel's tracker in its general form, with
+    fixed-lag smoothing of ``params.lag_hops = L`` hops (``L = 0``: none). Input
+    :class:`TrackInput` of one channel (``spectra``, ``readout`` (P, F), ``weights``
+    (P,)); output :class:`LagOutput` (outputs start once ``L`` hops have been seen);
+    state :class:`LagState`.
+
+    Per hop: the weight times the rhythm score (with ``check_rhythm``), one forward
+    step (:func:`forward_step`); the smoothed posterior of the oldest of the newest
+    ``L + 1`` hops (:func:`smooth_oldest`) read by :func:`read_posterior` on that hop's
+    read-out spectrum. Without lag the hot path is :class:`RidgeTrack` (compiled, the
+    same numbers)."""
+
+    rates: np.ndarray
+    params: TrackerParams
+    power: float
+    check_rhythm: bool = False
+    chance_factor: float = 1.5
+    span: float = 0.3
+
+    def initial_state(self) -> LagState:
+        n_bins = len(self.rates)
+        empty = np.empty((0, n_bins))
+        return LagState(initial_posterior(n_bins), 0, empty, empty, np.empty(0), empty)
+
+    def rhythm(self, spectra: np.ndarray, readout: np.ndarray) -> np.ndarray:
+        """Rhythm score per hop (see :func:`estimators._kernels.rhythm_scores`); ones when
+        the check is off."""
+        spectra = np.ascontiguousarray(np.atleast_2d(spectra), dtype=np.float64)
+        if not self.check_rhythm:
+            return np.ones(len(spectra))
+        step = float(self.rates[1] - self.rates[0])
+        out = np.empty(len(spectra))
+        _kernels.rhythm_scores(spectra, np.ascontiguousarray(readout, dtype=np.float64),
+                               float(self.rates[0] / step), float(self.params.halfwidth_bins),
+                               self.chance_factor, self.span, out)
+        return out
+
+    def step(self, state: LagState, x: TrackInput) -> tuple[LagState, LagOutput]:
+        spectra = np.atleast_2d(x.spectra)
+        readout = spectra if x.readout is None else np.atleast_2d(x.readout)
+        weights = np.clip(x.weights, 0.0, 1.0) * self.rhythm(spectra, readout)
+        emissions = emissions_from_spectra(spectra, self.power)
+        posterior, posts = forward_step(state.posterior, emissions, weights, self.params)
+        first_hop, lag = state.hops_seen, self.params.lag_hops
+        hops_seen = first_hop + len(posts)
+        if lag == 0:
+            rate, conf = read_posterior(posts, self.rates, self.params.halfwidth_bins, readout)
+            return (LagState(posterior, hops_seen, state.alphas, state.emissions,
+                             state.weights, state.readouts),
+                    LagOutput(rate, conf, np.arange(first_hop, hops_seen)))
+        alphas = np.concatenate((state.alphas, posts))
+        held_em = np.concatenate((state.emissions, emissions))
+        held_w = np.concatenate((state.weights, np.clip(weights, 0, 1)))
+        held_sp = np.concatenate((state.readouts, readout))
+        smoothed, index, referred = [], [], []
+        for i in range(len(posts)):
+            end = len(state.alphas) + i + 1  # the held hops after hop i: [end - L - 1, end)
+            if end >= lag + 1:
+                part = slice(end - lag - 1, end)
+                smoothed.append(smooth_oldest(alphas[part], held_em[part], held_w[part],
+                                              self.params))
+                index.append(first_hop + i - lag)
+                referred.append(held_sp[end - lag - 1])
+        keep = slice(max(0, len(alphas) - lag), len(alphas))
+        new = LagState(posterior, hops_seen, alphas[keep].copy(), held_em[keep].copy(),
+                       held_w[keep].copy(), held_sp[keep].copy())
+        if not smoothed:
+            e = np.empty(0)
+            return new, LagOutput(e, e, np.empty(0, dtype=np.int64))
+        rate, conf = read_posterior(np.array(smoothed), self.rates, self.params.halfwidth_bins,
+                                    np.array(referred))
+        return new, LagOutput(rate, conf, np.array(index, dtype=np.int64))
+
+    def batch(self, x: TrackInput) -> LagOutput:
+        return self.step(self.initial_state(), x)[1]
+
+    def split(self, x: TrackInput, bounds) -> list:
+        edges = [0, *[int(b) for b in bounds], len(x.weights)]
+        return [TrackInput(x.spectra[lo:hi], x.weights[lo:hi],
+                           None if x.readout is None else x.readout[lo:hi])
+                for lo, hi in zip(edges[:-1], edges[1:])]
+
+    def join(self, parts) -> LagOutput:
+        return LagOutput(*(np.concatenate([getattr(p, f) for p in parts])
+                           for f in ("rate", "confidence", "index")))
+
+
 class RidgeTracker:
     """Causal tracker owning its posterior and the fixed-lag history.
 
     ``update(spectra, weights) -> (rate, confidence, lag_index)`` for the hops given:
     ``lag_index[i]`` is the index (into all hops seen so far) of the hop that output
     ``i`` refers to; with no lag it is the hop itself. Outputs start once ``L`` hops
-    have been seen.
+    have been seen. :meth:`track` (no lag) steps a one-channel :class:`RidgeTrack`.
     """
 
     def __init__(self, rates_per_min: np.ndarray, params: TrackerParams, emission_power: float,
@@ -261,15 +504,22 @@ class RidgeTracker:
         # check on, hops whose power is not on a harmonic family do not pull the posterior.
         self.check_rhythm = bool(check_rhythm)
         self.chance_factor, self.span = float(chance_factor), float(span)
+        self.stage = RidgeTrack(self.rates, params, emission_power, self.check_rhythm,
+                                self.chance_factor, self.span)
+        self.lagged = LagTrack(self.rates, params, emission_power, self.check_rhythm,
+                               self.chance_factor, self.span)
         self.reset()
 
     def reset(self) -> None:
-        self.posterior = initial_posterior(len(self.rates))
-        self.hops_seen = 0
-        self._hist_alpha: list[np.ndarray] = []
-        self._hist_em: list[np.ndarray] = []
-        self._hist_w: list[float] = []
-        self._hist_sp: list[np.ndarray] = []
+        self.memory = self.lagged.initial_state()
+
+    @property
+    def posterior(self) -> np.ndarray:
+        return self.memory.posterior
+
+    @property
+    def hops_seen(self) -> int:
+        return self.memory.hops_seen
 
     def track(self, spectra: np.ndarray, weights: np.ndarray, readout: np.ndarray | None = None):
         """Hot path without lag: ``(rate (P,), confidence (P,), concentration (P,))``,
@@ -277,64 +527,24 @@ class RidgeTracker:
         index), in one compiled pass. Hops without rhythm do not pull the posterior."""
         if self.params.lag_hops:
             raise ParameterError("track() is for lag_hops=0; use update()")
-        spectra = np.ascontiguousarray(np.atleast_2d(spectra), dtype=np.float64)
-        readout = spectra if readout is None else np.ascontiguousarray(readout, dtype=np.float64)
-        weights = np.ascontiguousarray(np.clip(weights, 0.0, 1.0), dtype=np.float64)
-        n = len(spectra)
-        position, confidence, concentration = np.empty(n), np.empty(n), np.empty(n)
-        _kernels.track_block(spectra, readout, weights, self.posterior, self.params.transition,
-                             self.params.jump_probability, float(self.power), EMISSION_FLOOR,
-                             float(self.params.halfwidth_bins), self.offset_bins,
-                             self.chance_factor, self.span, self.check_rhythm, position,
-                             confidence, concentration)
-        self.hops_seen += n
-        return self.rates[0] + position * self.step, confidence, concentration
+        spectra = np.atleast_2d(spectra)
+        readout = spectra if readout is None else readout
+        state, out = self.stage.step(TrackState(self.posterior[None], self.hops_seen),
+                                     TrackInput(spectra[None], np.asarray(weights)[None],
+                                                np.asarray(readout)[None]))
+        self.memory = dataclasses.replace(self.memory, posterior=state.posterior[0],
+                                          hops_seen=state.hops_seen)
+        return out.rate[0], out.confidence[0], out.concentration[0]
 
     def rhythm(self, spectra: np.ndarray, readout: np.ndarray | None = None) -> np.ndarray:
         """Rhythm score per hop (see :func:`estimators._kernels.rhythm_scores`); ones when
         the check is off."""
-        spectra = np.ascontiguousarray(np.atleast_2d(spectra), dtype=np.float64)
-        if not self.check_rhythm:
-            return np.ones(len(spectra))
-        readout = spectra if readout is None else np.ascontiguousarray(readout, dtype=np.float64)
-        out = np.empty(len(spectra))
-        _kernels.rhythm_scores(spectra, readout, self.offset_bins,
-                               float(self.params.halfwidth_bins), self.chance_factor,
-                               self.span, out)
-        return out
+        return self.lagged.rhythm(spectra, spectra if readout is None else readout)
 
     def update(self, spectra: np.ndarray, weights: np.ndarray, readout: np.ndarray | None = None):
         """Track the hops of ``spectra`` (P, F) with emission weights (P,) times the
         rhythm score; the rate is read off ``readout`` (P, F) near the posterior mode
-        (default: ``spectra``). The general path (fixed-lag smoothing); :meth:`track` is
-        the compiled hot path for no lag."""
-        readout = spectra if readout is None else readout
-        weights = np.clip(weights, 0.0, 1.0) * self.rhythm(spectra, readout)
-        emissions = emissions_from_spectra(spectra, self.power)
-        self.posterior, posts = forward_step(self.posterior, emissions, weights, self.params)
-        lag = self.params.lag_hops
-        first_hop = self.hops_seen
-        self.hops_seen += len(posts)
-        if lag == 0:
-            rate, conf = read_posterior(posts, self.rates, self.params.halfwidth_bins, readout)
-            return rate, conf, np.arange(first_hop, self.hops_seen)
-        smoothed, index, referred = [], [], []
-        for i in range(len(posts)):
-            self._hist_alpha.append(posts[i])
-            self._hist_em.append(emissions[i])
-            self._hist_sp.append(np.atleast_2d(readout)[i])
-            self._hist_w.append(float(np.clip(weights[i], 0, 1)))
-            if len(self._hist_alpha) > lag + 1:
-                del self._hist_alpha[0], self._hist_em[0], self._hist_w[0], self._hist_sp[0]
-            if len(self._hist_alpha) == lag + 1:
-                smoothed.append(smooth_oldest(np.array(self._hist_alpha),
-                                              np.array(self._hist_em),
-                                              np.array(self._hist_w), self.params))
-                index.append(first_hop + i - lag)
-                referred.append(self._hist_sp[0])
-        if not smoothed:
-            e = np.empty(0)
-            return e, e, np.empty(0, dtype=np.int64)
-        rate, conf = read_posterior(np.array(smoothed), self.rates, self.params.halfwidth_bins,
-                                    np.array(referred))
-        return rate, conf, np.array(index, dtype=np.int64)
+        (default: ``spectra``). The general path (fixed-lag smoothing: a step of
+        :class:`LagTrack`); :meth:`track` is the compiled hot path for no lag."""
+        self.memory, out = self.lagged.step(self.memory, TrackInput(spectra, weights, readout))
+        return out.rate, out.confidence, out.index

@@ -39,10 +39,10 @@ TESTED_KERNELS = {"forward_filter", "backward_pass", "backward_mass", "viterbi",
                   "sos_filter", "preprocess_chunk", "harmonic_score", "track_block",
                   "rhythm_scores", "hop_rhythm", "predict", "cancel_columns",
                   "normalise_or_prior", "spectral_margins", "kth_largest", "limit_sample",
-                  "limit_chunk", "resample_chunk", "modulation_frames",
-                  "shape_modulation_spectra", "track_ridges", "modulation_quality",
-                  "fuse_rates", "interp_point", "calibrate_breathing", "numpy_sum",
-                  "sorted_copy", "upper_quartile", "small_median", "vertex_offset",
+                  "limit_chunk", "preprocess_channels", "track_channels", "resample_chunk",
+                  "modulation_frames", "shape_modulation_spectra", "track_ridges",
+                  "modulation_quality", "fuse_rates", "interp_point", "calibrate_breathing",
+                  "numpy_sum", "sorted_copy", "upper_quartile", "small_median", "vertex_offset",
                   "beat_candidates", "remember", "aligned_offset", "scan_beats",
                   "beat_front_end"}
 """Kernels with a test here (the breathing-from-the-pulse kernels, ``resample_chunk`` to
@@ -275,18 +275,18 @@ def test_track_block_compiled_equals_python(rng):
     """The hot-path kernel's two paths agree; the same inputs through both."""
     spectra, _, w = hmm_inputs(rng, 50)
     readout = spectra + 0.2 * rng.random(spectra.shape)
-    compiled, python = [fn for _, fn in both(_kernels.track_block)]
+    compiled, python = [fn for _, fn in both(_kernels.track_channels)]
     live = tracker.RidgeTracker(40 + 0.75 * np.arange(N_BINS),
                                 tracker.make_params(0.75, 0.25, 3.0, 1e-3, 4.0), 2.0)
     results = []
     for fn in (compiled, python):
-        saved = _kernels.track_block
+        saved = _kernels.track_channels
         try:
-            _kernels.track_block = fn
+            _kernels.track_channels = fn
             live.reset()
             results.append(live.track(spectra, w, readout) + (live.posterior.copy(),))
         finally:
-            _kernels.track_block = saved
+            _kernels.track_channels = saved
     for a, b in zip(*results):
         np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-15)
 
@@ -586,3 +586,60 @@ def test_monitor_without_jit_equals_monitor_with_jit(without_jit):
             else:
                 # no fastmath: compiled and plain paths agree to rounding
                 assert x == pytest.approx(y, rel=1e-9, abs=1e-12)
+
+
+def test_track_channels_is_track_block_per_channel(rng):
+    """Several channels in one call: each channel's outputs and posterior are those of
+    :func:`track_block` on that channel alone, compiled and plain."""
+    rows = [hmm_inputs(rng, 30) for _ in range(3)]
+    spectra = np.stack([r[0] for r in rows])
+    weights = np.stack([r[2] for r in rows])
+    readout = spectra + 0.2 * rng.random(spectra.shape)
+    transition = tracker.transition_kernel(1.2)
+    args = (transition, 1e-3, 2.0, 1e-2, 5.0, 53.0, 1.5, 0.3, True)
+    want = []
+    for c in range(3):
+        alpha = np.full(N_BINS, 1.0 / N_BINS)
+        outs = [np.empty(30) for _ in range(3)]
+        _kernels.track_block(spectra[c], readout[c], weights[c], alpha, *args, *outs)
+        want.append((alpha, *outs))
+    for label, fn in both(_kernels.track_channels):
+        alpha = np.full((3, N_BINS), 1.0 / N_BINS)
+        outs = [np.empty((3, 30)) for _ in range(3)]
+        fn(spectra, readout, weights, alpha, *args, *outs)
+        for c in range(3):
+            for got, expected in zip((alpha[c], *[o[c] for o in outs]), want[c]):
+                np.testing.assert_allclose(got, expected, rtol=1e-12, atol=1e-15,
+                                           err_msg=label)
+
+
+@pytest.mark.parametrize("kind", ["ppg", "ecg"])
+def test_preprocess_channels_is_preprocess_chunk_per_channel(rng, kind):
+    """Several channels sharing one chain in one call: each channel's output and state
+    are those of :func:`preprocess_chunk` on that channel alone, compiled and plain."""
+    fs, decimation, min_run = 125.0, 5, 15
+    limiter = Limiter.for_window(8.0, fs)
+    chain = design_chain(kind, "hr", fs, fs / decimation)
+    post = np.zeros((0, 6)) if chain.post is None else chain.post
+    x = np.stack([spiky_rhythm(rng, 3001, fs)[1] for _ in range(3)])
+    t = np.arange(3001) / fs
+    fixed = (limiter.block, limiter.rank, limiter.margin, MAX_ABS, decimation, float(min_run))
+    want = []
+    for c in range(3):
+        state = initial_state(chain, limiter)
+        buf = np.empty((4, 3001 // decimation + 2))
+        n = _kernels.preprocess_chunk(x[c], t, chain.pre, state.zi_pre, chain.envelope, post,
+                                      state.zi_post, state.scalars, state.limiter, *fixed,
+                                      buf[0], buf[1], buf[2], buf[3])
+        want.append((buf[:, :n], state))
+    for label, fn in both(_kernels.preprocess_channels):
+        states = [initial_state(chain, limiter) for _ in range(3)]
+        stacked = [np.stack([getattr(s, name) for s in states])
+                   for name in ("zi_pre", "zi_post", "scalars", "limiter")]
+        out = np.empty((3, 4, 3001 // decimation + 2))
+        n = fn(np.ascontiguousarray(x), t, chain.pre, stacked[0], chain.envelope, post,
+               stacked[1], stacked[2], stacked[3], *fixed, out)
+        for c in range(3):
+            np.testing.assert_array_equal(out[c, :, :n], want[c][0], err_msg=label)
+            np.testing.assert_array_equal(stacked[2][c], want[c][1].scalars, err_msg=label)
+            np.testing.assert_array_equal(stacked[0][c], want[c][1].zi_pre, err_msg=label)

@@ -13,6 +13,7 @@ from estimators.config import get_profile
 from estimators.errors import ParameterError
 from estimators.monitor import FUSED, RateMonitor, offline_estimates
 from tests import signals
+from tests.stage_checks import assert_same
 
 FIELDS = ("quantity", "source", "time_s", "emitted_s", "rate_per_min", "confidence", "quality")
 
@@ -102,6 +103,44 @@ def test_chunked_equals_one_call_multichannel_with_fusion(rng):
     if getattr(get_profile("resp-belt"), "breathing_from_pulse", False):
         want |= {("rr", "finger"), ("rr", "chest")}
     assert sources == want
+
+
+def test_channels_advancing_together_equal_each_channel_alone(rng):
+    """Channels of one kind advance together (one front-end pass, one FFT call, one
+    tracker call for all of them): every channel's estimates, rate now included, equal
+    those of a monitor that has that channel alone, fed the same chunks."""
+    fs = 125.0
+    t = np.arange(int(45 * fs)) / fs
+    columns, channels = [], []
+    for c in range(3):
+        rate = signals.ramp_rate(t, 65.0 + 8 * c, 95.0 - 6 * c)
+        x = signals.rhythm(t, rate, signals.dicrotic_pulse, noise_std=0.3, rng=rng)
+        x[int((12 + 5 * c) * fs):int((12 + 5 * c) * fs) + 20] = np.nan  # a fault each
+        columns.append(x)
+        channels.append((f"ppg{c}", "ppg"))
+    columns.append(signals.rhythm(t, signals.ramp_rate(t, 75.0, 85.0), signals.ecg_like,
+                                  noise_std=0.05, rng=rng))
+    channels.append(("chest", "ecg"))
+    for c in range(2):
+        columns.append(signals.rhythm(t, np.full(len(t), 12.0 + 4 * c),
+                                      signals.dicrotic_pulse, noise_std=0.1, rng=rng))
+        channels.append((f"belt{c}", "resp"))
+    samples = np.column_stack(columns)
+    profile = dataclasses.replace(get_profile("wrist"), breathing_from_pulse=False)
+    sizes = chunk_sizes(rng, len(t), first_ones=40, high=700)
+    bounds = np.cumsum([0, *sizes])
+
+    def run(monitor, x):
+        return [e for a, b in zip(bounds[:-1], bounds[1:])
+                for e in monitor.update(x[a:b], t[a:b])]
+
+    together = run(RateMonitor(channels, fs, profile), samples)
+    assert {e.source for e in together} == {name for name, _ in channels} | {FUSED}
+    for c, channel in enumerate(channels):
+        alone = run(RateMonitor([channel], fs, profile), samples[:, c:c + 1])
+        mine = [e for e in together if e.source == channel[0]]
+        assert len(alone) > 40 and len(mine) == len(alone), channel
+        assert_same(mine, alone, channel[0])
 
 
 @pytest.mark.parametrize("lag", [1, 6])

@@ -1202,3 +1202,389 @@ def calibrate_breathing(raw, quality, centre, scale, beta, knots_score, knots_pr
                            + (x1 - centre[1]) / scale[1] * beta[2])
         prob = min(max(interp_point(score, knots_score, knots_prob), prob_floor), prob_ceil)
         out[i] = prob if np.isfinite(prob) else r
+
+
+# --------------------------------------------------------------------- beat detection
+# The per-candidate work of :func:`estimators.beats.detect_step`. Its numpy twin is the
+# scan in :mod:`estimators.beats` (``_scan``), which :func:`estimators.beats.detect_batch`
+# runs; the two must agree to the last bit (beat times are compared exactly), so every
+# reduction here is done in numpy's own order: :func:`numpy_sum` for ``mean``,
+# :func:`upper_quartile` for ``percentile(..., 75)``, :func:`small_median` for ``median``,
+# rows added in turn for a mean over beats (numpy's order for an axis-0 mean of rows
+# longer than one value) and ``np.dot`` for the cross-correlation (numba calls the same
+# BLAS routine numpy does).
+
+BEAT_SCAN_SIZE = 8
+"""Layout of the scalars a beat scan carries (:func:`scan_beats`): the first candidate
+not yet decided, the last beat's detection index, its position and its feature peak
+(raw samples), then how many beat heights, intervals, R-wave polarities and upstrokes
+are remembered."""
+
+SCAN_NEXT, SCAN_LAST_INDEX, SCAN_LAST_POSITION, SCAN_LAST_PEAK = 0, 1, 2, 3
+SCAN_HEIGHTS, SCAN_INTERVALS, SCAN_POLARITIES, SCAN_UPSTROKES = 4, 5, 6, 7
+
+
+@kernel
+def beat_front_end(x, limiter, block, rank, margin, max_abs, last_accepted, detect_sos,
+                   zi_detect, feature_sos, zi_feature, level_sos, zi_level, last_band, fs,
+                   out_slope, out_band, out_feature, out_level):
+    """The causal filters of beat detection over one chunk, in one call (the compiled
+    twin of ``estimators.beats._front_end`` up to the ECG's moving average).
+
+    Each raw sample is accepted by :func:`limit_sample` (by finiteness and ``max_abs``
+    alone when ``block`` is 0) or held at the last accepted value (``last_accepted``
+    before the chunk); the held samples go through the three filters (:func:`sos_filter`)
+    into ``out_band`` (detection band-pass), ``out_feature`` and ``out_level``;
+    ``out_slope`` is the band-pass's slope per second (``last_band``: its value before the
+    chunk). ``limiter`` and the three filter states are updated in place; returns the
+    last accepted value."""
+    n = x.shape[0]
+    held = np.empty(n)
+    for k in range(n):
+        v = x[k]
+        if block == 0:
+            accepted = np.isfinite(v) and abs(v) <= max_abs
+        else:
+            accepted = limit_sample(v, limiter, block, rank, margin, max_abs)
+        if accepted:
+            last_accepted = v
+        held[k] = last_accepted
+    sos_filter(detect_sos, held, zi_detect, out_band)
+    sos_filter(feature_sos, held, zi_feature, out_feature)
+    sos_filter(level_sos, held, zi_level, out_level)
+    previous = last_band
+    for k in range(n):
+        out_slope[k] = (out_band[k] - previous) * fs
+        previous = out_band[k]
+    return last_accepted
+
+
+@kernel
+def numpy_sum(x, lo, n, square):
+    """Sum of ``x[lo:lo + n]`` (of its squares when ``square``) associated as numpy's
+    ``add.reduce`` does (pairwise: eight running sums per block of at most 128 values,
+    blocks split in halves), so it equals ``np.sum`` to the last bit."""
+    if n < 8:
+        total = 0.0
+        for i in range(lo, lo + n):
+            total += x[i] * x[i] if square else x[i]
+        return total
+    if n <= 128:
+        acc = np.empty(8)
+        for j in range(8):
+            acc[j] = x[lo + j] * x[lo + j] if square else x[lo + j]
+        i = 8
+        while i < n - n % 8:
+            for j in range(8):
+                v = x[lo + i + j]
+                acc[j] += v * v if square else v
+            i += 8
+        total = ((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7]))
+        while i < n:
+            total += x[lo + i] * x[lo + i] if square else x[lo + i]
+            i += 1
+        return total
+    half = n // 2
+    half -= half % 8
+    return numpy_sum(x, lo, half, square) + numpy_sum(x, lo + half, n - half, square)
+
+
+@kernel
+def sorted_copy(values, n):
+    """The first ``n`` of ``values``, sorted (insertion sort: ``n`` is a few beats)."""
+    out = np.empty(n)
+    for i in range(n):
+        v = values[i]
+        j = i - 1
+        while j >= 0 and out[j] > v:
+            out[j + 1] = out[j]
+            j -= 1
+        out[j + 1] = v
+    return out
+
+
+@kernel
+def upper_quartile(values, n):
+    """``np.percentile(values[:n], 75)`` (linear method, numpy's arithmetic: virtual
+    index ``0.75 n + 0.25 - 1``, and the interpolation ``a + (b - a) g`` below
+    ``g = 0.5``, ``b - (b - a) (1 - g)`` from it); finite values, ``n >= 1``."""
+    s = sorted_copy(values, n)
+    virtual = (n * 0.75 + 0.25) - 1.0
+    below = int(np.floor(virtual))
+    if virtual >= n - 1:
+        return s[n - 1]
+    g = virtual - below
+    a, b = s[below], s[below + 1]
+    if g >= 0.5:
+        return b - (b - a) * (1.0 - g)
+    return a + (b - a) * g
+
+
+@kernel
+def small_median(values, n):
+    """``np.median(values[:n])``: the middle value, or the mean of the two middle ones;
+    finite values, ``n >= 1``."""
+    s = sorted_copy(values, n)
+    if n % 2:
+        return s[n // 2]
+    return (s[n // 2 - 1] + s[n // 2]) / 2.0
+
+
+@kernel
+def vertex_offset(y, i, n):
+    """Offset in [-0.5, 0.5] of the vertex of the parabola through ``y[i-1], y[i],
+    y[i+1]`` (``y`` of length ``n``); 0 at the ends or where the parabola does not
+    open downwards."""
+    if i <= 0 or i >= n - 1:
+        return 0.0
+    a, b, c = y[i - 1], y[i], y[i + 1]
+    den = a - 2.0 * b + c
+    if not den < 0:
+        return 0.0
+    v = 0.5 * (a - c) / den
+    if v < -0.5:
+        return -0.5
+    if v > 0.5:
+        return 0.5
+    return v
+
+
+@kernel
+def beat_candidates(detect, lo, hi, r, out):
+    """Indices ``lo <= u < hi`` where ``detect[u]`` is larger than the ``r`` values before
+    it and not smaller than the ``r`` after it (values before 0 or from ``hi + r`` on
+    count as -inf; a NaN among them rejects ``u``), written into ``out``; returns how
+    many. Candidates are more than ``r`` apart, so ``out`` needs ``(hi - lo) // (r + 1)
+    + 1`` places."""
+    end = min(hi + r, detect.shape[0])
+    count = 0
+    for u in range(lo, hi):
+        v = detect[u]
+        keep = True
+        for w in range(max(u - r, 0), u):
+            if not v > detect[w]:
+                keep = False
+                break
+        if keep:
+            for w in range(u + 1, min(u + r + 1, end)):
+                if not v >= detect[w]:
+                    keep = False
+                    break
+        if keep:
+            out[count] = u
+            count += 1
+    return count
+
+
+@kernel
+def remember(values, n, v):
+    """Append ``v`` to the ``n`` remembered ``values`` (oldest first), dropping the oldest
+    when full; returns the new count."""
+    size = values.shape[0]
+    if n < size:
+        values[n] = v
+        return n + 1
+    for i in range(size - 1):
+        values[i] = values[i + 1]
+    values[size - 1] = v
+    return size
+
+
+@kernel
+def aligned_offset(detect, kk, before, after, shift, upstrokes, n_upstrokes, intervals,
+                   n_intervals, fs, cycle_share, min_beats):
+    """Sub-sample offset of the PPG beat whose steepest sample is ``detect[kk]``: the lag
+    (within ``+-shift``) that best aligns its upstroke derivative with the mean of the
+    remembered ``upstrokes`` (rows ``before + after + 1`` long), over at most
+    ``cycle_share`` of the typical interval either side, plus the template's own vertex;
+    the beat's own vertex while fewer than ``min_beats`` are remembered or when the best
+    lag is at the edge. Remembers the upstroke; returns ``(offset, n_upstrokes)``."""
+    n = detect.shape[0]
+    own = vertex_offset(detect, kk, n)
+    if kk - before - shift < 0 or kk + after + shift >= n:
+        return own, n_upstrokes
+    start = kk - before - shift
+    length = before + after + 1
+    offset = own
+    if n_upstrokes >= min_beats:
+        template = np.zeros(length)
+        for i in range(n_upstrokes):
+            for j in range(length):
+                template[j] = template[j] + upstrokes[i, j]
+        for j in range(length):
+            template[j] = template[j] / n_upstrokes
+        lo, hi = 0, length
+        if n_intervals > 0:
+            half = int(cycle_share * small_median(intervals, n_intervals) * fs)
+            lo, hi = max(before - half, 0), min(before + half + 1, length)
+        corr = np.empty(2 * shift + 1)
+        for u in range(2 * shift + 1):
+            corr[u] = np.dot(detect[start + u + lo:start + u + hi], template[lo:hi])
+        best = 0
+        for u in range(1, 2 * shift + 1):
+            if corr[u] > corr[best]:
+                best = u
+        if 0 < best < 2 * shift:
+            offset = (best - shift + vertex_offset(corr, best, 2 * shift + 1)
+                      + vertex_offset(template, before, length))
+    rows = upstrokes.shape[0]
+    if n_upstrokes == rows:
+        for i in range(rows - 1):
+            upstrokes[i, :] = upstrokes[i + 1, :]
+        n_upstrokes -= 1
+    upstrokes[n_upstrokes, :] = detect[kk - before:kk + after + 1]
+    return offset, n_upstrokes + 1
+
+
+@kernel
+def scan_beats(detect, feature, level, band, times, offset, k_stop, is_ppg, fs, refractory,
+               lookahead, search, integrate, qrs_half, max_gap, threshold_fraction,
+               interval_tolerance, align_before, align_after, align_shift, cycle_share,
+               template_min_beats, scan, heights, intervals, polarities, upstrokes,
+               out_index, out_position, out_ready, out_ready_s, out_features, out_time_s):
+    """Decide the beat candidates from ``scan[SCAN_NEXT]`` up to raw index ``k_stop``
+    (the compiled twin of ``estimators.beats._scan``, which documents the rules).
+
+    Signal arrays and ``times`` start at raw index ``offset``. ``scan`` (see
+    :data:`BEAT_SCAN_SIZE`) and the remembered ``heights``, ``intervals``,
+    ``polarities`` and ``upstrokes`` (oldest first; their lengths are the capacities)
+    are updated in place. Each beat decided is written into the ``out_*`` arrays (its
+    detection index, position, ready count, ready timestamp, features and time; room
+    for ``(k_stop - scan[SCAN_NEXT]) // (refractory + 1) + 1`` beats, the most
+    :func:`beat_candidates` can find); returns how many."""
+    n = detect.shape[0]
+    span = max(k_stop - int(scan[SCAN_NEXT]), 0)
+    candidates = np.empty(span // (refractory + 1) + 1, np.int64)
+    n_candidates = beat_candidates(detect, int(scan[SCAN_NEXT]) - offset, k_stop - offset,
+                                   refractory, candidates)
+    if k_stop > scan[SCAN_NEXT]:
+        scan[SCAN_NEXT] = k_stop
+    n_beats = 0
+    for c in range(n_candidates):
+        kk = candidates[c]
+        k = kk + offset
+        height = detect[kk]
+        if not height > 0:
+            continue
+        last_index = int(scan[SCAN_LAST_INDEX])
+        last_peak = int(scan[SCAN_LAST_PEAK])
+        since = k - last_index
+        n_heights = int(scan[SCAN_HEIGHTS])
+        if n_heights > 0:
+            bar = threshold_fraction * upper_quartile(heights, n_heights)
+            bar *= 0.5 ** (max(since - max_gap, 0) / max_gap)
+            if height < bar:
+                continue
+        if since > max_gap:  # a new stretch: learn its beat height afresh
+            n_heights = 0
+            scan[SCAN_POLARITIES] = 0
+            scan[SCAN_UPSTROKES] = 0
+        scan[SCAN_HEIGHTS] = remember(heights, n_heights, height)
+        n_intervals = int(scan[SCAN_INTERVALS])
+        if is_ppg:
+            hi = min(kk + search + 1, n)
+            peak = kk
+            for j in range(kk + 1, hi):
+                if feature[j] > feature[peak]:
+                    peak = j
+            foot_lo = min(max(last_peak - offset, kk - max_gap, 0), kk)
+            foot = feature[foot_lo]
+            for j in range(foot_lo + 1, kk + 1):
+                if feature[j] < foot:
+                    foot = feature[j]
+            if align_before:
+                shifted, n_up = aligned_offset(detect, kk, align_before, align_after,
+                                               align_shift, upstrokes,
+                                               int(scan[SCAN_UPSTROKES]), intervals,
+                                               n_intervals, fs, cycle_share,
+                                               template_min_beats)
+                scan[SCAN_UPSTROKES] = n_up
+                position = k + shifted
+            else:
+                position = k + vertex_offset(detect, kk, n)
+            amplitude = feature[peak] - foot
+            intensity = 0.5 * (feature[peak] + foot)
+        else:
+            # The moving average peaks about half its length after the QRS: search back.
+            lo, hi = max(kk - integrate - search, 0), min(kk + search // 2 + 1, n)
+            steepest = lo + 1
+            slope = abs(band[lo + 1] - band[lo])
+            for j in range(lo + 1, hi - 1):
+                s = abs(band[j + 1] - band[j])
+                if s > slope:
+                    slope, steepest = s, j + 1
+            q_lo = max(steepest - qrs_half, 0)
+            q_hi = min(steepest + qrs_half + 1, n)
+            top, bottom = q_lo, q_lo
+            for j in range(q_lo + 1, q_hi):
+                if feature[j] > feature[top]:
+                    top = j
+                if feature[j] < feature[bottom]:
+                    bottom = j
+            up, down = feature[top], -feature[bottom]
+            if 0.0 > up:
+                up = 0.0
+            if 0.0 > down:
+                down = 0.0
+            polarity = (up - down) / (up + down) if up + down > 0 else 0.0
+            n_polarities = remember(polarities, int(scan[SCAN_POLARITIES]), polarity)
+            scan[SCAN_POLARITIES] = n_polarities
+            vote = 0.0
+            for j in range(n_polarities):
+                vote += polarities[j]
+            if vote == 0:
+                sign = 1.0 if up >= down else -1.0
+            else:
+                sign = 1.0 if vote > 0 else -1.0
+            peak = top if sign > 0 else bottom
+            # The vertex of the R wave, turned upwards by its polarity.
+            a_lo = max(peak - 1, 0)
+            around = np.empty(3)
+            m = min(peak + 2, n) - a_lo
+            for j in range(m):
+                around[j] = sign * feature[a_lo + j]
+            position = peak + offset + vertex_offset(around, min(peak, 1), m)
+            r_lo, r_hi = max(peak - qrs_half, 0), min(peak + qrs_half + 1, n)
+            amplitude = np.sqrt(numpy_sum(feature, r_lo, r_hi - r_lo, True) / (r_hi - r_lo))
+            beat_lo = last_peak - offset
+            if 0 <= beat_lo < peak and peak + offset - last_peak <= max_gap:
+                beat_span = peak - beat_lo
+                intensity = numpy_sum(level, beat_lo + 1, beat_span, False) / beat_span
+            else:
+                intensity = np.nan
+        gap = k - last_index
+        interval = np.nan
+        if gap > max_gap:
+            n_intervals = 0
+        else:
+            interval = (position - scan[SCAN_LAST_POSITION]) / fs
+            typical = small_median(intervals, n_intervals) if n_intervals >= 3 else interval
+            n_intervals = remember(intervals, n_intervals, interval)
+            ratio = interval / typical
+            if abs(ratio - 1.0) > interval_tolerance:
+                # A premature (ectopic) or missed beat: its interval, and the shape of a
+                # premature beat, are dropped.
+                if ratio < 1.0:
+                    intensity = np.nan
+                    amplitude = np.nan
+                interval = np.nan
+        scan[SCAN_INTERVALS] = n_intervals
+        scan[SCAN_LAST_INDEX] = k
+        scan[SCAN_LAST_POSITION] = position
+        scan[SCAN_LAST_PEAK] = peak + offset
+        ready = k + lookahead + 1
+        out_index[n_beats] = k
+        out_position[n_beats] = position
+        out_ready[n_beats] = ready
+        out_ready_s[n_beats] = times[ready - 1 - offset]
+        out_features[n_beats, 0] = intensity
+        out_features[n_beats, 1] = amplitude
+        out_features[n_beats, 2] = interval
+        u = position - offset
+        if n == 1:
+            out_time_s[n_beats] = times[0]
+        else:
+            i = int(min(max(np.floor(u), 0.0), n - 2.0))
+            out_time_s[n_beats] = times[i] + (u - i) * (times[i + 1] - times[i])
+        n_beats += 1
+    return n_beats

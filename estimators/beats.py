@@ -5,8 +5,10 @@ twin.
 largest value of the detection signal within +-0.25 s, accepted when it reaches a
 fraction of the recent beats' heights. Each beat gives a sub-sample position and three
 features (intensity, amplitude, interval; :data:`MODULATIONS` order); premature or
-missed beats drop their interval. :func:`detect_batch` is its twin over a whole record
-(causal, or zero-phase for the offline path).
+missed beats drop their interval. :func:`detect_step` is pure (it returns a new state)
+and decides its candidates in one compiled pass (:func:`estimators._kernels.scan_beats`);
+:func:`detect_batch` is its numpy twin over a whole record (causal, equal to the step to
+the last bit over any chunking, or zero-phase for the offline path).
 
 Fiducial points (where in a beat its time is read)
 --------------------------------------------------
@@ -50,8 +52,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import signal
 
+from estimators import _kernels
 from estimators.errors import ParameterError
-from estimators.preprocess import Limiter, causal_sos, limit_batch, limit_step
+from estimators.preprocess import MAX_ABS, Limiter, causal_sos, limit_batch, limit_step
 
 MODULATIONS = ("intensity", "amplitude", "frequency")
 """Names of the three respiratory modulations, in the column order used throughout."""
@@ -233,17 +236,20 @@ class Beats:
                                     "time_s")))
 
 
-@dataclass
+@dataclass(frozen=True)
 class BeatState:
-    """Everything :func:`detect_step` carries between chunks.
+    """Everything :func:`detect_step` carries between chunks (never changed: every step
+    returns a new one).
 
-    Filter states and the limiter's; the newest raw sample before the chunk
+    Filter states and the limiter's; the newest band-pass value before the chunk
     (``last_band``, for the slope) and the last accepted input; ``count`` raw samples
-    seen; ``next_k`` the first candidate not yet decided; the signal history
-    (``detect[0]`` is raw sample ``count - len(detect)``); recent beat heights and
-    intervals; the R-wave polarities (ECG) or upstroke derivatives (PPG) of the last
-    beats; the last beat's detection index, position and feature peak; ``times``
-    the timestamps of the signal history (aligned with ``detect``).
+    seen; the signal history (``detect[0]`` is raw sample ``count - len(detect)``) and
+    ``times``, the timestamps of that history; ``scan`` the scalars of the beat scan
+    (layout :data:`estimators._kernels.BEAT_SCAN_SIZE`: the first candidate not yet
+    decided, the last beat's detection index, position and feature peak, and how many
+    of each remembered quantity are held); the remembered recent beat ``heights`` and
+    ``intervals``, the R-wave ``polarities`` (ECG) and the ``upstrokes`` (PPG rows of
+    derivative), oldest first, in arrays of their full capacity.
     """
 
     zi_detect: np.ndarray
@@ -251,60 +257,89 @@ class BeatState:
     zi_feature: np.ndarray
     zi_level: np.ndarray
     limiter: np.ndarray
-    last_band: float = 0.0
-    last_accepted: float = 0.0
-    count: int = 0
-    next_k: int = 0
-    detect: np.ndarray = field(default_factory=lambda: np.empty(0))
-    feature: np.ndarray = field(default_factory=lambda: np.empty(0))
-    level: np.ndarray = field(default_factory=lambda: np.empty(0))
-    band: np.ndarray = field(default_factory=lambda: np.empty(0))
-    polarities: list = field(default_factory=list)
-    upstrokes: list = field(default_factory=list)
-    heights: list = field(default_factory=list)
-    intervals: list = field(default_factory=list)
-    last_index: int = -(10 ** 12)
-    last_position: float = np.nan
-    last_peak: int = -(10 ** 12)
-    times: np.ndarray = field(default_factory=lambda: np.empty(0))
+    last_band: float
+    last_accepted: float
+    count: int
+    detect: np.ndarray
+    feature: np.ndarray
+    level: np.ndarray
+    band: np.ndarray
+    times: np.ndarray
+    scan: np.ndarray
+    heights: np.ndarray
+    intervals: np.ndarray
+    polarities: np.ndarray
+    upstrokes: np.ndarray
+
+
+FAR_BEFORE = -(10 ** 12)
+"""Index of the 'last beat' before any beat: far enough back that every gap rule holds."""
 
 
 def beat_initial_state(params: BeatParams) -> BeatState:
     """Filters at rest, nothing seen."""
     zeros = lambda sos: np.zeros((sos.shape[0], 2))  # noqa: E731
+    scan = np.zeros(_kernels.BEAT_SCAN_SIZE)
+    scan[_kernels.SCAN_LAST_INDEX] = scan[_kernels.SCAN_LAST_PEAK] = FAR_BEFORE
+    scan[_kernels.SCAN_LAST_POSITION] = np.nan
+    empty = np.empty(0)
     return BeatState(zeros(params.detect_sos), np.zeros(max(params.integrate - 1, 0)),
                      zeros(params.feature_sos), zeros(params.level_sos),
-                     params.limiter.initial_state())
+                     params.limiter.initial_state(), 0.0, 0.0, 0, empty, empty, empty,
+                     empty, empty, scan, np.zeros(params.history), np.zeros(params.history),
+                     np.zeros(POLARITY_BEATS),
+                     np.zeros((TEMPLATE_BEATS, params.align_before + params.align_after + 1)))
 
 
-def _hold_rejected(state: BeatState, x: np.ndarray, accepted: np.ndarray) -> np.ndarray:
+@dataclass
+class _ScanMemory:
+    """What the numpy scan (:func:`_scan`, the batch twin) updates as it goes: the first
+    candidate not yet decided; recent beat heights and intervals; the R-wave polarities
+    (ECG) or upstroke derivatives (PPG) of the last beats; the last beat's detection
+    index, position and feature peak."""
+
+    next_k: int = 0
+    polarities: list = field(default_factory=list)
+    upstrokes: list = field(default_factory=list)
+    heights: list = field(default_factory=list)
+    intervals: list = field(default_factory=list)
+    last_index: int = FAR_BEFORE
+    last_position: float = np.nan
+    last_peak: int = FAR_BEFORE
+
+
+def _hold_rejected(x: np.ndarray, accepted: np.ndarray,
+                   last_accepted: float) -> tuple[np.ndarray, float]:
     """Rejected samples (non-finite, or outside the running range: spikes) hold the last
-    accepted value: a flat stretch has no beats, and the filters stay bounded."""
+    accepted value (``last_accepted`` before the chunk): a flat stretch has no beats, and
+    the filters stay bounded. Returns the held samples and the new last accepted value."""
     if accepted.all():
-        if len(x):
-            state.last_accepted = float(x[-1])
-        return x
+        return x, (float(x[-1]) if len(x) else last_accepted)
     idx = np.where(accepted, np.arange(len(x)), -1)
     np.maximum.accumulate(idx, out=idx)
-    filled = np.where(idx >= 0, x[np.maximum(idx, 0)], state.last_accepted)
+    filled = np.where(idx >= 0, x[np.maximum(idx, 0)], last_accepted)
     if accepted.any():
-        state.last_accepted = float(x[accepted][-1])
-    return filled
+        last_accepted = float(x[accepted][-1])
+    return filled, last_accepted
 
 
-def _detection_signal(params: BeatParams, state: BeatState,
-                      x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The detection signal and the band-pass it is made from."""
-    band, state.zi_detect = causal_sos(params.detect_sos, x, state.zi_detect)
+def _detection_signal(params: BeatParams, state: BeatState, x: np.ndarray):
+    """The detection signal and the band-pass it is made from, for the chunk ``x`` after
+    ``state``; returns ``(detect, band, zi_detect, zi_integrate)``."""
+    band, zi_detect = causal_sos(params.detect_sos, x, state.zi_detect)
     prev = np.concatenate(([state.last_band], band[:-1]))
-    state.last_band = float(band[-1])
-    slope = (band - prev) * params.fs
+    detect, zi_integrate = _integrate(params, state, (band - prev) * params.fs)
+    return detect, band, zi_detect, zi_integrate
+
+
+def _integrate(params: BeatParams, state: BeatState, slope: np.ndarray):
+    """The detection signal from the band-pass's slope: the slope itself (PPG), or the
+    moving average of its square over ``params.integrate`` samples (ECG); returns it and
+    the moving average's state after it."""
     if params.integrate == 0:
-        return slope, band
+        return slope, state.zi_integrate
     taps = np.full(params.integrate, 1.0 / params.integrate)
-    energy, state.zi_integrate = signal.lfilter(taps, [1.0], slope ** 2,
-                                                zi=state.zi_integrate)
-    return energy, band
+    return signal.lfilter(taps, [1.0], slope ** 2, zi=state.zi_integrate)
 
 
 def _parabolic(y: np.ndarray, i: int) -> float:
@@ -337,7 +372,7 @@ def _candidates(detect: np.ndarray, lo: int, hi: int, r: int) -> np.ndarray:
     return u[keep] + base
 
 
-def _r_wave(state: BeatState, params: BeatParams, qrs: np.ndarray) -> tuple[int, float]:
+def _r_wave(state: _ScanMemory, params: BeatParams, qrs: np.ndarray) -> tuple[int, float]:
     """Index in ``qrs`` (the QRS band-pass around one beat) of its R wave, and the
     polarity of the R waves: the extreme of the polarity most of the last beats had."""
     top, bottom = int(np.argmax(qrs)), int(np.argmin(qrs))
@@ -349,7 +384,7 @@ def _r_wave(state: BeatState, params: BeatParams, qrs: np.ndarray) -> tuple[int,
     return (top if sign > 0 else bottom), sign
 
 
-def _aligned_offset(state: BeatState, params: BeatParams, detect: np.ndarray,
+def _aligned_offset(state: _ScanMemory, params: BeatParams, detect: np.ndarray,
                     kk: int) -> float:
     """Sub-sample offset of the PPG beat whose steepest sample is ``detect[kk]``: the lag
     that best aligns its upstroke derivative with the template (the mean of the last
@@ -379,7 +414,7 @@ def _aligned_offset(state: BeatState, params: BeatParams, detect: np.ndarray,
     return offset
 
 
-def _features(state: BeatState, params: BeatParams, k: int, kk: int, detect: np.ndarray,
+def _features(state: _ScanMemory, params: BeatParams, k: int, kk: int, detect: np.ndarray,
               feature: np.ndarray, level: np.ndarray, band: np.ndarray, offset: int):
     """Position and features of the accepted beat at raw index ``k`` (array index
     ``kk = k - offset``); updates the last-beat state."""
@@ -447,7 +482,7 @@ def _time_at(times: np.ndarray, position: float, offset: int) -> float:
     return float(times[i] + (u - i) * (times[i + 1] - times[i]))
 
 
-def _scan(state: BeatState, params: BeatParams, detect: np.ndarray, feature: np.ndarray,
+def _scan(state: _ScanMemory, params: BeatParams, detect: np.ndarray, feature: np.ndarray,
           level: np.ndarray, band: np.ndarray, offset: int, k_stop: int, t: np.ndarray,
           t_offset: int) -> Beats:
     """Decide the candidates ``state.next_k <= k < k_stop``. Signal arrays start at raw
@@ -490,14 +525,32 @@ def _scan(state: BeatState, params: BeatParams, detect: np.ndarray, feature: np.
                  np.array(ready_s), np.array(features), np.array(time_s))
 
 
+def _front_end(state: BeatState, x: np.ndarray, params: BeatParams):
+    """The causal filters of one chunk after ``state``, one numpy call at a time (the
+    twin of :func:`estimators._kernels.beat_front_end` that :func:`detect_batch` runs):
+    ``(detect, feature, level, band, the held samples' last accepted value, the filter
+    and limiter states after it)``. Pure: the limiter state is copied first."""
+    limiter = state.limiter.copy()
+    x, last_accepted = _hold_rejected(x, limit_step(params.limiter, limiter, x),
+                                      state.last_accepted)
+    detect, band, zi_detect, zi_integrate = _detection_signal(params, state, x)
+    feature, zi_feature = causal_sos(params.feature_sos, x, state.zi_feature)
+    level, zi_level = causal_sos(params.level_sos, x, state.zi_level)
+    return (detect, feature, level, band, last_accepted,
+            (zi_detect, zi_integrate, zi_feature, zi_level, limiter))
+
+
 def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
                 params: BeatParams) -> tuple[BeatState, Beats]:
     """Filter one chunk and decide every candidate it completes (``step(state, inputs,
-    params) -> (state, output)``).
+    params) -> (state, output)``): the filters run in the compiled
+    :func:`estimators._kernels.beat_front_end` and the candidates are decided by
+    :func:`estimators._kernels.scan_beats` (the numpy twin is :func:`detect_batch`).
 
     Parameters
     ----------
-    state : carried state from :func:`beat_initial_state` (updated in place, returned).
+    state : carried state from :func:`beat_initial_state` (or a previous step); never
+        changed.
     x, t : raw samples (non-finite ones and those outside the running range of
         ``params.limiter`` are held at the last accepted value) and their timestamps,
         1-D float64 of equal length.
@@ -505,32 +558,53 @@ def detect_step(state: BeatState, x: np.ndarray, t: np.ndarray,
 
     Returns
     -------
-    (state, the beats decided in this chunk).
+    (the new state, the beats decided in this chunk).
     """
     n = len(x)
     if n == 0:
         return state, Beats.empty()
-    x = np.asarray(x, dtype=np.float64)
-    x = _hold_rejected(state, x, limit_step(params.limiter, state.limiter, x))
-    detect, band = _detection_signal(params, state, x)
-    feature, state.zi_feature = causal_sos(params.feature_sos, x, state.zi_feature)
-    level, state.zi_level = causal_sos(params.level_sos, x, state.zi_level)
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    limiter, zi_detect = state.limiter.copy(), state.zi_detect.copy()
+    zi_feature, zi_level = state.zi_feature.copy(), state.zi_level.copy()
+    slope, band, feature, level = np.empty(n), np.empty(n), np.empty(n), np.empty(n)
+    last_accepted = _kernels.beat_front_end(
+        x, limiter, params.limiter.block, params.limiter.rank, float(params.limiter.margin),
+        MAX_ABS, state.last_accepted, params.detect_sos, zi_detect, params.feature_sos,
+        zi_feature, params.level_sos, zi_level, state.last_band, params.fs, slope, band,
+        feature, level)
+    detect, zi_integrate = _integrate(params, state, slope)
     offset = state.count - len(state.detect)
     all_detect = np.concatenate((state.detect, detect))
     all_feature = np.concatenate((state.feature, feature))
     all_level = np.concatenate((state.level, level))
     all_band = np.concatenate((state.band, band))
     all_times = np.concatenate((state.times, np.asarray(t, dtype=np.float64)))
-    state.count += n
-    beats = _scan(state, params, all_detect, all_feature, all_level, all_band, offset,
-                  state.count - params.lookahead, all_times, offset)
+    count = state.count + n
+    k_stop = count - params.lookahead
+    scan, heights, intervals = state.scan.copy(), state.heights.copy(), state.intervals.copy()
+    polarities, upstrokes = state.polarities.copy(), state.upstrokes.copy()
+    room = max(k_stop - int(scan[_kernels.SCAN_NEXT]), 0) // (params.refractory + 1) + 1
+    index, ready = np.empty(room, np.int64), np.empty(room, np.int64)
+    position, ready_s, time_s = np.empty(room), np.empty(room), np.empty(room)
+    features = np.empty((room, 3))
+    n_beats = _kernels.scan_beats(
+        all_detect, all_feature, all_level, all_band, all_times, offset, k_stop,
+        params.kind == "ppg", params.fs, params.refractory, params.lookahead, params.search,
+        params.integrate, params.qrs_half, params.max_gap, params.threshold_fraction,
+        params.interval_tolerance, params.align_before, params.align_after,
+        params.align_shift, CYCLE_SHARE, TEMPLATE_MIN_BEATS, scan, heights, intervals,
+        polarities, upstrokes, index, position, ready, ready_s, features, time_s)
     keep = min(len(all_detect), params.keep)
-    state.detect = all_detect[len(all_detect) - keep:].copy()
-    state.feature = all_feature[len(all_feature) - keep:].copy()
-    state.level = all_level[len(all_level) - keep:].copy()
-    state.band = all_band[len(all_band) - keep:].copy()
-    state.times = all_times[len(all_times) - keep:].copy()
-    return state, beats
+    cut = len(all_detect) - keep
+    new = BeatState(zi_detect, zi_integrate, zi_feature, zi_level, limiter, float(band[-1]),
+                    float(last_accepted), count,
+                    all_detect[cut:].copy(), all_feature[cut:].copy(), all_level[cut:].copy(),
+                    all_band[cut:].copy(), all_times[cut:].copy(), scan, heights, intervals,
+                    polarities, upstrokes)
+    if n_beats == 0:
+        return new, Beats.empty()
+    return new, Beats(index[:n_beats], position[:n_beats], ready[:n_beats],
+                      ready_s[:n_beats], features[:n_beats], time_s[:n_beats])
 
 
 def _zero_phase(sos: np.ndarray, x: np.ndarray) -> np.ndarray:
@@ -541,23 +615,24 @@ def _zero_phase(sos: np.ndarray, x: np.ndarray) -> np.ndarray:
 
 def detect_batch(x: np.ndarray, t: np.ndarray, params: BeatParams,
                  zero_phase: bool = False) -> Beats:
-    """Beats of a whole record: causal (equal to any chunking of :func:`detect_step`),
-    or with ``zero_phase`` from forward-backward filtered signals (offline twin; the ECG
-    moving average is then centred)."""
-    state = beat_initial_state(params)
-    if not zero_phase:
-        return detect_step(state, x, t, params)[1]
+    """Beats of a whole record in plain numpy: causal (the twin of :func:`detect_step`,
+    equal to it over any chunking), or with ``zero_phase`` from forward-backward filtered
+    signals (offline twin; the ECG moving average is then centred)."""
     if len(x) == 0:
         return Beats.empty()
     x = np.asarray(x, dtype=np.float64)
-    x = _hold_rejected(state, x, limit_batch(params.limiter, x))
-    band = _zero_phase(params.detect_sos, x)
-    detect = np.diff(band, prepend=band[0]) * params.fs
-    if params.integrate:
-        taps = np.full(params.integrate, 1.0 / params.integrate)
-        detect = np.convolve(detect ** 2, taps, mode="same")
-    feature = _zero_phase(params.feature_sos, x)
-    level = _zero_phase(params.level_sos, x)
-    state.count = len(x)
-    return _scan(state, params, detect, feature, level, band, 0, len(x) - params.lookahead,
-                 np.asarray(t, dtype=np.float64), 0)
+    t = np.asarray(t, dtype=np.float64)
+    state = beat_initial_state(params)
+    if not zero_phase:
+        detect, feature, level, band = _front_end(state, x, params)[:4]
+    else:
+        x = _hold_rejected(x, limit_batch(params.limiter, x), state.last_accepted)[0]
+        band = _zero_phase(params.detect_sos, x)
+        detect = np.diff(band, prepend=band[0]) * params.fs
+        if params.integrate:
+            taps = np.full(params.integrate, 1.0 / params.integrate)
+            detect = np.convolve(detect ** 2, taps, mode="same")
+        feature = _zero_phase(params.feature_sos, x)
+        level = _zero_phase(params.level_sos, x)
+    return _scan(_ScanMemory(), params, detect, feature, level, band, 0,
+                 len(x) - params.lookahead, t, 0)

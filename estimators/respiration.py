@@ -63,7 +63,6 @@ analysis sample, ``p`` hop, ``f`` frequency bin, ``i`` beat.
 
 from __future__ import annotations
 
-import copy
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -159,17 +158,6 @@ class ModulationSamples:
         return _concat_fields(ModulationSamples, parts, ModulationSamples._FIELDS)
 
 
-def _copy_state(state):
-    """A copy of a (dataclass) state with its array and list fields copied too: what a
-    pure step hands to a function that updates its state in place."""
-    new = copy.copy(state)
-    fields = new.__dict__
-    for name, value in fields.items():
-        if isinstance(value, (np.ndarray, list)):
-            fields[name] = value.copy()
-    return new
-
-
 # --------------------------------------------------------------------- beats
 
 
@@ -177,9 +165,9 @@ def _copy_state(state):
 class BeatDetection:
     """Stage 1: beats of a raw PPG or ECG, ``(x, t) -> PulseBeats``.
 
-    A stage wrapper of :func:`estimators.beats.detect_step` (which updates the state it
-    is given, so the step hands it a copy) and :func:`estimators.beats.detect_batch`
-    (its causal twin)."""
+    A stage wrapper of :func:`estimators.beats.detect_step` (pure: it never changes the
+    state it is given) and :func:`estimators.beats.detect_batch` (its causal numpy
+    twin)."""
 
     params: BeatParams
 
@@ -189,7 +177,7 @@ class BeatDetection:
     def step(self, state: BeatState, x) -> tuple[BeatState, PulseBeats]:
         samples, t = x
         t = np.asarray(t, dtype=np.float64)
-        state, beats = detect_step(_copy_state(state), samples, t, self.params)
+        state, beats = detect_step(state, samples, t, self.params)
         return state, PulseBeats(beats, t)
 
     def batch(self, x) -> PulseBeats:

@@ -124,3 +124,58 @@ def test_ppg_template_alignment_steadies_the_intervals(rng, zero_phase):
         errors = interval_errors_ms(beats - lag, truth, match)[10:]
         rms.append(np.sqrt(np.mean(errors ** 2)))
     assert rms[0] <= 0.5 * rms[1]
+
+
+FIELDS = ("index", "position", "ready", "ready_s", "features", "time_s")
+
+
+def _stepped(x, t, params, sizes):
+    """detect_step over chunks of the given sizes (cycled), checking after every update
+    that the step left the state it was given as it was."""
+    import copy
+
+    from estimators.beats import Beats
+    from tests.stage_checks import assert_same
+    state, parts, k, p = beat_initial_state(params), [], 0, 0
+    while k < len(t):
+        n = int(sizes[p % len(sizes)])
+        kept = copy.deepcopy(state)
+        new, beats = detect_step(state, x[k:k + n], t[k:k + n], params)
+        assert_same(state, kept, "state given to detect_step")
+        state, k, p = new, k + n, p + 1
+        parts.append(beats)
+    return Beats.concat(parts)
+
+
+@pytest.mark.parametrize("kind, fs", [("ppg", 40.0), ("ppg", 500.0), ("ecg", 125.0),
+                                      ("ecg", 360.0)])
+def test_compiled_step_equals_the_numpy_twin_across_gaps_and_spikes(rng, kind, fs):
+    # Beats, sub-sample times, features and dropped intervals equal to the last bit:
+    # across a 3 s dropout (longer than the 2 s gap, so every remembered quantity is
+    # learnt again), a flat stretch, spikes, ectopic beats (ECG: a beat 35 % early) and
+    # a polarity that turns (ECG: inverted after 25 s), at the lowest rate (PPG) and high ones.
+    truth = 0.6 + np.cumsum(sinus_intervals_ms(rng, 45)) / 1e3
+    truth[[12, 30]] -= 0.35 * 0.8
+    if kind == "ecg":
+        x, t = ecg_from_beats(truth, fs, truth[-1] + 1.0, rng)
+        x[t > 25.0] *= -1.0
+    else:
+        t = np.arange(int((truth[-1] + 1.0) * fs)) / fs
+        x = dicrotic_pulse(np.interp(t, truth, np.arange(len(truth))) % 1.0)
+        x += rng.normal(0, 0.02, len(t))
+    x[(t > 9.0) & (t < 12.0)] = np.nan
+    x[(t > 16.0) & (t < 17.0)] = x[np.searchsorted(t, 16.0)]
+    x[rng.choice(len(x), 5, replace=False)] = 50.0
+    params = beat_params(kind, fs)
+    whole = detect_batch(x, t, params)
+    assert len(whole) >= len(truth) - 8 and np.isnan(whole.features).any()
+    head = int(6 * fs)  # 1-sample chunks over the first seconds only, to stay quick
+    runs = [("1-sample", [1], head), ("1 s", [int(fs)], len(t)),
+            ("random", rng.integers(1, int(3 * fs), size=50), len(t))]
+    for label, sizes, n in runs:
+        got = _stepped(x[:n], t[:n], params, sizes)
+        expected = whole if n == len(t) else detect_batch(x[:n], t[:n], params)
+        assert len(expected) > 2
+        for name in FIELDS:
+            np.testing.assert_array_equal(getattr(got, name), getattr(expected, name),
+                                          err_msg=f"{name}, {label} chunks")

@@ -41,12 +41,17 @@ TESTED_KERNELS = {"forward_filter", "backward_pass", "backward_mass", "viterbi",
                   "normalise_or_prior", "spectral_margins", "kth_largest", "limit_sample",
                   "limit_chunk", "preprocess_channels", "track_channels", "resample_chunk",
                   "modulation_frames", "shape_modulation_spectra", "track_ridges",
-                  "modulation_quality", "fuse_rates", "interp_point", "calibrate_breathing"}
+                  "modulation_quality", "fuse_rates", "interp_point", "calibrate_breathing",
+                  "numpy_sum", "sorted_copy", "upper_quartile", "small_median", "vertex_offset",
+                  "beat_candidates", "remember", "aligned_offset", "scan_beats",
+                  "beat_front_end"}
 """Kernels with a test here (the breathing-from-the-pulse kernels, ``resample_chunk`` to
 ``calibrate_breathing`` and ``interp_point``, in test_stage_conformance_breathing.py; ``cancel_columns`` in test_motion.py,
 ``harmonic_score`` in test_quality.py, ``spectral_margins`` in test_calibration.py,
 ``track_block`` also
-through ``RidgeTracker.track`` in test_tracker.py)."""
+through ``RidgeTracker.track`` in test_tracker.py; the beat detection kernels, ``beat_front_end``
+and ``numpy_sum`` to ``scan_beats``, here and through ``detect_step`` against ``detect_batch`` in
+test_beats.py and test_stage_conformance_breathing.py)."""
 
 
 def test_every_kernel_is_tested_and_exposes_its_python_path():
@@ -348,6 +353,192 @@ def test_hop_rhythm_is_one_row_of_rhythm_scores(rng):
             assert score == pytest.approx(block[p], rel=1e-12, abs=1e-15), label
             assert peak == spectra[p].max()
             np.testing.assert_array_equal(pw, readout[p] ** 2)
+
+
+# --------------------------------------------------------------- beat detection
+# The beat scan must equal its numpy twin to the last bit, so these compare exactly.
+
+
+def _reals(rng, n):
+    """Values of mixed scale and sign, with repeats (ties) and signed zeros."""
+    x = rng.normal(size=n) * 10.0 ** rng.uniform(-3, 3, size=n) + rng.normal()
+    x[rng.random(n) < 0.1] = 0.0
+    x[rng.random(n) < 0.05] = -0.0
+    if n > 3:
+        x[1] = x[3]
+    return x
+
+
+def test_numpy_sum_is_numpy_summation_to_the_last_bit(rng):
+    # Lengths across numpy's cases: under 8, one block (<= 128), split blocks.
+    for label, fn in both(_kernels.numpy_sum):
+        for n in [0, 1, 2, 7, 8, 9, 15, 16, 17, 127, 128, 129, 130, 257, 1000, 2047, 4100]:
+            x = _reals(rng, n + 5)
+            assert fn(x, 3, n, False) == np.sum(x[3:3 + n]), (label, n)
+            assert fn(x, 3, n, True) == np.sum(x[3:3 + n] ** 2), (label, n)
+            if n:
+                assert fn(x, 3, n, True) / n == np.mean(x[3:3 + n] ** 2), (label, n)
+
+
+def test_order_statistics_are_numpys_to_the_last_bit(rng):
+    for label, fn in both(_kernels.upper_quartile):
+        for n in range(1, 33):
+            for _ in range(20):
+                v = _reals(rng, n)
+                assert fn(v, n) == np.percentile(v, 75.0), (label, n, v)
+    for label, fn in both(_kernels.small_median):
+        for n in range(1, 33):
+            for _ in range(20):
+                v = _reals(rng, n)
+                assert fn(v, n) == np.median(v), (label, n, v)
+    for label, fn in both(_kernels.sorted_copy):
+        v = _reals(rng, 40)
+        np.testing.assert_array_equal(fn(v, 25), np.sort(v[:25]))
+        assert len(fn(v, 0)) == 0
+
+
+def test_vertex_offset_is_the_parabolic_refinement(rng):
+    from estimators.beats import _parabolic
+    y = rng.normal(size=30)
+    y[10:13] = [1.0, 1.0, 1.0]  # a flat top: no vertex
+    y[20:23] = [0.0, 1.0, 1.9]  # not a peak: the vertex lies beyond, clipped
+    for label, fn in both(_kernels.vertex_offset):
+        for i in range(-1, 31):
+            assert fn(y, i, len(y)) == _parabolic(y, i), (label, i)
+        assert fn(y, 21, len(y)) == 0.5 and fn(y, 11, len(y)) == 0.0
+
+
+def test_beat_candidates_equal_the_window_maxima(rng):
+    from estimators.beats import _candidates
+    # Plateaus (ties) and a NaN: a tie keeps the first sample, a NaN nearby rejects.
+    detect = np.round(rng.normal(size=600), 1)
+    detect[100:105] = 5.0
+    detect[300] = np.nan
+    for label, fn in both(_kernels.beat_candidates):
+        for lo, hi, r in [(0, 600, 7), (0, 593, 7), (50, 400, 1), (10, 20, 30), (40, 40, 5)]:
+            expected = _candidates(detect, lo, hi, r)
+            out = np.empty(max(hi - lo, 0) // (r + 1) + 1, np.int64)
+            n = fn(detect, lo, hi, r, out)
+            np.testing.assert_array_equal(out[:n], expected, err_msg=f"{label} {lo} {hi} {r}")
+            assert np.all(np.diff(out[:n]) > r)
+
+
+def test_remember_keeps_the_newest_in_order():
+    for label, fn in both(_kernels.remember):
+        values, n, kept = np.zeros(4), 0, []
+        for v in range(1, 8):
+            n = fn(values, n, float(v))
+            kept = (kept + [float(v)])[-4:]
+            assert values[:n].tolist() == kept, label
+
+
+@pytest.mark.parametrize("with_intervals", [False, True])
+def test_aligned_offset_equals_the_numpy_alignment(rng, with_intervals):
+    from estimators.beats import (TEMPLATE_BEATS, _aligned_offset, _parabolic, _ScanMemory,
+                                  beat_params)
+    params = beat_params("ppg", 125.0)
+    b, a, m = params.align_before, params.align_after, params.align_shift
+    period = 100
+    u = np.arange(40 * period)
+    detect = np.exp(-0.5 * ((u % period - 50) / 6.0) ** 2) + 0.05 * rng.normal(size=len(u))
+    intervals = [0.8, 0.82, 0.79] if with_intervals else []
+    for label, fn in both(_kernels.aligned_offset):
+        memory = _ScanMemory(intervals=list(intervals))
+        upstrokes = np.zeros((TEMPLATE_BEATS, b + a + 1))
+        n_up, aligned = 0, 0
+        # The first beat is too near the start to be aligned (and is not remembered).
+        for kk in [20] + list(range(50, len(u) - period, period)):
+            expected = _aligned_offset(memory, params, detect, kk)
+            got, n_up = fn(detect, kk, b, a, m, upstrokes, n_up, np.array(intervals),
+                           len(intervals), params.fs, 0.5, 4)
+            assert got == expected, (label, kk)
+            aligned += got != _parabolic(detect, kk)
+            assert n_up == len(memory.upstrokes)
+            np.testing.assert_array_equal(upstrokes[:n_up],
+                                          np.reshape(memory.upstrokes, (n_up, b + a + 1)))
+        assert n_up == TEMPLATE_BEATS and aligned > 20  # the template was used
+
+
+@pytest.mark.parametrize("kind", ["ppg", "ecg"])
+@pytest.mark.parametrize("limited", [True, False])
+def test_beat_front_end_equals_the_filters_one_call_at_a_time(rng, kind, limited):
+    # Chunk by chunk, both carrying their states: held samples (NaN, spikes, values
+    # beyond MAX_ABS), the three filters, the slope, the last accepted value and the
+    # filter and limiter states equal to the last bit.
+    import dataclasses
+
+    from estimators.beats import _front_end, beat_initial_state, beat_params
+    from estimators.preprocess import MAX_ABS, NO_LIMIT
+    fs = 125.0
+    params = beat_params(kind, fs)
+    if not limited:
+        params = dataclasses.replace(params, limiter=NO_LIMIT)
+    x = spiky_rhythm(rng, 3000, fs)[1]
+    x[700] = 2e100
+    start = beat_initial_state(params)
+    for label, fn in both(_kernels.beat_front_end):
+        state = start
+        limiter, zi = start.limiter.copy(), [z.copy() for z in (start.zi_detect,
+                                                                start.zi_feature,
+                                                                start.zi_level)]
+        last_accepted = 0.0
+        for lo in range(0, len(x), 97):
+            chunk = np.ascontiguousarray(x[lo:lo + 97])
+            detect, feature, level, band, held_last, filters = _front_end(state, chunk, params)
+            out = [np.empty(len(chunk)) for _ in range(4)]
+            last_accepted = fn(chunk, limiter, params.limiter.block, params.limiter.rank,
+                               float(params.limiter.margin), MAX_ABS, last_accepted,
+                               params.detect_sos, zi[0], params.feature_sos, zi[1],
+                               params.level_sos, zi[2], state.last_band, fs, *out)
+            np.testing.assert_array_equal(out[0], np.diff(np.concatenate((
+                [state.last_band], band))) * fs, err_msg=label)
+            if kind == "ppg":
+                np.testing.assert_array_equal(out[0], detect, err_msg=label)
+            for got, want in zip(out[1:], (band, feature, level)):
+                np.testing.assert_array_equal(got, want, err_msg=label)
+            assert last_accepted == held_last, label
+            for got, want in zip((zi[0], zi[1], zi[2], limiter),
+                                 (filters[0], filters[2], filters[3], filters[4])):
+                np.testing.assert_array_equal(got, want, err_msg=label)
+            state = dataclasses.replace(state, zi_detect=filters[0], zi_integrate=filters[1],
+                                        zi_feature=filters[2], zi_level=filters[3],
+                                        limiter=filters[4], last_accepted=held_last,
+                                        last_band=float(band[-1]))
+        assert np.isnan(x).any() and last_accepted == x[np.isfinite(x)][-1]
+
+
+def test_scan_beats_plain_path_equals_the_compiled_one(rng):
+    # The whole scan on the two kinds through detect_step with the plain Python paths of
+    # the beat kernels swapped in (the numpy twin comparison is in test_beats.py).
+    import estimators.beats as beats_mod
+    from tests.beat_signals import ecg_from_beats, sinus_intervals_ms
+    names = ("scan_beats", "aligned_offset", "beat_candidates", "numpy_sum", "sorted_copy",
+             "upper_quartile", "small_median", "vertex_offset", "remember", "beat_front_end")
+    fs = 125.0
+    truth = 0.6 + np.cumsum(sinus_intervals_ms(rng, 40)) / 1e3
+    x_ecg, t = ecg_from_beats(truth, fs, truth[-1] + 1.0, rng)
+    x_ppg = signals.dicrotic_pulse((np.interp(t, truth, np.arange(len(truth)))) % 1.0)
+    for kind, x in (("ecg", x_ecg), ("ppg", x_ppg)):
+        params = beats_mod.beat_params(kind, fs)
+        runs = []
+        for plain in (False, True):
+            saved = {name: getattr(_kernels, name) for name in names}
+            if plain:
+                for name in names:
+                    setattr(_kernels, name, saved[name].py_func)
+            try:
+                state, parts = beats_mod.beat_initial_state(params), []
+                for k in range(0, len(t), 113):
+                    state, got = beats_mod.detect_step(state, x[k:k + 113], t[k:k + 113],
+                                                       params)
+                    parts.append(got)
+            finally:
+                for name in names:
+                    setattr(_kernels, name, saved[name])
+            runs.append(beats_mod.Beats.concat(parts))
+        assert len(runs[0]) >= len(truth) - 2
+        for field in ("index", "position", "ready", "ready_s", "features", "time_s"):
+            np.testing.assert_array_equal(getattr(runs[1], field), getattr(runs[0], field))
 
 
 # --------------------------------------------------------- the engine without the JIT

@@ -167,14 +167,28 @@ def stepped_deshape_case():
     return Stepped(stage, tuple(range(7, len(x), 7))), x
 
 
+def stepped_beats_ppg_case():
+    stage, x = beats_ppg_case()
+    return Stepped(stage, tuple(range(97, len(x[0]), 97))), x
+
+
+def stepped_beats_ecg_case():
+    stage, x = beats_ecg_case()
+    return Stepped(stage, tuple(range(61, len(x[0]), 61))), x
+
+
 @pytest.mark.parametrize("name", ["chain_ppg_case", "stepped_ppg_case", "stepped_ecg_lag_case",
-                                  "stepped_deshape_case"])
+                                  "stepped_deshape_case", "stepped_beats_ppg_case",
+                                  "stepped_beats_ecg_case"])
 def test_the_path_without_jit_equals_the_compiled_path(name):
     check_without_jit(MODULE, name)
 
 
 BREATHING_KERNELS = ("resample_chunk", "modulation_frames", "shape_modulation_spectra",
-                     "track_ridges", "modulation_quality", "fuse_rates", "calibrate_breathing")
+                     "track_ridges", "modulation_quality", "fuse_rates", "calibrate_breathing",
+                     "scan_beats", "aligned_offset", "beat_candidates", "numpy_sum",
+                     "sorted_copy", "upper_quartile", "small_median", "vertex_offset",
+                     "remember", "beat_front_end")
 
 
 def test_each_kernel_equals_its_plain_python_path(monkeypatch):

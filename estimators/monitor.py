@@ -50,7 +50,7 @@ from estimators.estimate import Estimate
 from estimators.preprocess import (FilterChain, FrontEnd, Limiter, STUCK_RUN_S,
                                    chain_group_delay_s, design_chain)
 from estimators.respiration import MIN_FS_HZ, PulseBreathing
-from estimators.stage import Chain, Parallel
+from estimators.stage import Chain, Parallel, concat_fields
 from estimators.stft import (Columns, HopGatherer, SpectrumStage, batch_hop_count,
                              gather_hops)
 
@@ -262,12 +262,9 @@ class ChannelBlocks:
 
     @staticmethod
     def concat(parts) -> "ChannelBlocks":
-        def join(name, axis):
-            arrays = [getattr(p, name) for p in parts]
-            return None if arrays[0] is None else np.concatenate(arrays, axis=axis)
-        return ChannelBlocks(join("spectra", 1), join("time_s", 0), join("emitted_s", 0),
-                             join("integrity", 1), join("magnitude", 1), join("columns", 1),
-                             join("recent", 1))
+        return concat_fields(parts, {"spectra": 1, "time_s": 0, "emitted_s": 0,
+                                     "integrity": 1, "magnitude": 1, "columns": 1,
+                                     "recent": 1})
 
 
 @dataclass(frozen=True, eq=False)

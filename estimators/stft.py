@@ -39,6 +39,7 @@ import numpy as np
 from scipy.signal import get_window
 
 from estimators.errors import ParameterError
+from estimators.stage import concat_fields
 
 
 @dataclass(frozen=True)
@@ -86,12 +87,9 @@ class Columns:
     @staticmethod
     def concat(parts) -> "Columns":
         """Columns (with a channel axis) one after the other in time."""
-        def join(name, axis):
-            arrays = [getattr(p, name) for p in parts]
-            return None if arrays[0] is None else np.concatenate(arrays, axis=axis)
-        return Columns(join("spectra", 1), join("spectra_dw", 1), join("time_s", 0),
-                       join("emitted_s", 0), join("first_count", 0), join("last_count", 0),
-                       join("aux_before", 2), join("aux_last", 2), join("recent", 1))
+        return concat_fields(parts, {"spectra": 1, "spectra_dw": 1, "time_s": 0,
+                                     "emitted_s": 0, "first_count": 0, "last_count": 0,
+                                     "aux_before": 2, "aux_last": 2, "recent": 1})
 
 
 def analysis_window(length: int) -> tuple[np.ndarray, np.ndarray]:
